@@ -1,0 +1,1 @@
+//! pathfold: prices exotic equity payoffs by Monte Carlo.
