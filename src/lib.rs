@@ -1,1 +1,10 @@
 //! pathfold: prices exotic equity payoffs by Monte Carlo.
+//!
+//! The pipeline, one module per stage: [`syntax`] (text → tree) → [`check`] (names, types,
+//! parameters) → [`compile`] (tree + market → flat program over a time grid) → [`sim`]
+//! (paths, variance reduction, statistics) → [`report`] (table, JSON). [`driver`] chains
+//! them; `main.rs` only parses arguments.
+
+pub mod date;
+pub mod diagnostic;
+pub mod syntax;

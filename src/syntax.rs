@@ -1,0 +1,659 @@
+//! Stage 1: text → syntax tree.
+//!
+//! The pest grammar in `grammar/payoff.pest` recognises a payoff file; one pass here lowers
+//! pest's pairs into our own tree, where every node carries its byte span. No pest type
+//! leaves this module: a pest error becomes a [`Diagnostic`] at the border.
+
+use pest::iterators::Pair;
+use pest::pratt_parser::{Assoc, Op, PrattParser};
+use pest::Parser as _;
+
+use crate::date::Date;
+use crate::diagnostic::{Diagnostic, Span};
+
+#[derive(pest_derive::Parser)]
+#[grammar = "../grammar/payoff.pest"]
+struct PayoffParser;
+
+/// A name as written, with where it was written.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Name {
+    pub text: String,
+    pub span: Span,
+}
+
+/// A whole payoff file.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct File {
+    pub items: Vec<Item>,
+}
+
+/// A top-level line or block.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Item {
+    /// `product "Three-name worst-of note"`
+    Product(String, Span),
+    /// `currency USD`
+    Currency(Name),
+    /// `notional 1_000_000`
+    Notional(Expr),
+    /// `underlyings ZPHX, QMEN, OSMP`
+    Underlyings(Vec<Name>),
+    /// `market "market.toml"`: default market file, relative to the payoff file.
+    Market(String, Span),
+    /// `start 2026-12-01`: the initial fixing date (default: the valuation date).
+    Start(Expr),
+    /// `param coupon = 2.25%`
+    Param(Name, Expr),
+    /// `dates quarterly = every 3m from 2027-03-01 to 2029-12-01`
+    Dates(Name, Schedule),
+    /// `state missed = 0`
+    State(Name, Expr),
+    /// `for each t in quarterly { ... }`
+    Each { var: Name, schedule: Name, body: Vec<Stmt>, span: Span },
+    /// `at last(quarterly) { ... }`
+    At { date: Expr, body: Vec<Stmt>, span: Span },
+    /// A statement written outside any block; always an error in the check.
+    Stray(Stmt, Span),
+}
+
+/// A date as written in a schedule.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum DateTerm {
+    /// `2027-03-01`
+    Iso(Date),
+    /// `1.5y`: years after the valuation date.
+    Years(f64),
+    /// `start`: the initial fixing date.
+    Start,
+}
+
+/// A schedule of dates.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Schedule {
+    pub kind: ScheduleKind,
+    pub span: Span,
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub enum ScheduleKind {
+    /// `2027-06-01, 2027-12-01` or `0.5y, 1y`
+    List(Vec<(DateTerm, Span)>),
+    /// `every 3m from 2027-03-01 to 2029-12-01`: both ends included.
+    Every { count: u32, unit: PeriodUnit, from: (DateTerm, Span), to: (DateTerm, Span) },
+    /// `252 steps from start to 1y`: the ends of `n` equal steps; `from` itself excluded.
+    Steps { n: u32, from: (DateTerm, Span), to: (DateTerm, Span) },
+    /// `business days from 2026-12-02 to 2027-12-01`: Monday to Friday, both ends included.
+    BusinessDays { from: (DateTerm, Span), to: (DateTerm, Span) },
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum PeriodUnit {
+    Days,
+    Weeks,
+    Months,
+    Years,
+}
+
+/// A statement inside a `for each` or `at` block, run in date order.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Stmt {
+    /// `let worst = min(perf(A), perf(B))`
+    Let(Name, Expr),
+    /// `missed = missed + 1` (assigns a `state`)
+    Assign(Name, Expr),
+    /// `if cond { ... } else { ... }`
+    If { cond: Expr, then: Vec<Stmt>, otherwise: Vec<Stmt>, span: Span },
+    /// `pay amount` or `pay amount on 2030-01-03`
+    Pay { amount: Expr, on: Option<Expr>, span: Span },
+    /// `end`: the product ends on this path; nothing later happens.
+    End(Span),
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub struct Expr {
+    pub kind: ExprKind,
+    pub span: Span,
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub enum ExprKind {
+    /// `2.5`, `1_000_000`, `70%` (stored as 0.7)
+    Number(f64),
+    /// `true`, `false`
+    Flag(bool),
+    /// `2027-12-01`, `0.5y`, `start`
+    Date(DateTerm),
+    /// `coupon`, `t`, `notional`
+    Name(String),
+    /// `-x`, `not x`
+    Unary(UnaryOp, Box<Expr>),
+    /// `a + b`, `a and b`, `a <= b`
+    Binary(BinaryOp, Box<Expr>, Box<Expr>),
+    /// `if c then a else b`
+    If(Box<Expr>, Box<Expr>, Box<Expr>),
+    /// `max(a, b, c)`, `perf(ZPHX)`, `level(ZPHX, 0.5y)`
+    Call(Name, Vec<Expr>),
+    /// `average(perf(ZPHX) over fixings)`
+    Aggregate(Aggregate, Box<Expr>, Name),
+    /// `touched(perf(OSMP) <= 65% from start to 1y)`
+    Touched { condition: Box<Expr>, from: Box<Expr>, to: Box<Expr> },
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum UnaryOp {
+    Neg,
+    Not,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BinaryOp {
+    Add,
+    Sub,
+    Mul,
+    Div,
+    Lt,
+    Le,
+    Gt,
+    Ge,
+    Eq,
+    Ne,
+    And,
+    Or,
+}
+
+impl BinaryOp {
+    pub fn symbol(self) -> &'static str {
+        match self {
+            BinaryOp::Add => "+",
+            BinaryOp::Sub => "-",
+            BinaryOp::Mul => "*",
+            BinaryOp::Div => "/",
+            BinaryOp::Lt => "<",
+            BinaryOp::Le => "<=",
+            BinaryOp::Gt => ">",
+            BinaryOp::Ge => ">=",
+            BinaryOp::Eq => "==",
+            BinaryOp::Ne => "!=",
+            BinaryOp::And => "and",
+            BinaryOp::Or => "or",
+        }
+    }
+}
+
+/// Aggregates over the dates of a schedule up to the current date.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Aggregate {
+    Average,
+    Sum,
+    Highest,
+    Lowest,
+    Count,
+    Any,
+    All,
+}
+
+impl Aggregate {
+    pub fn name(self) -> &'static str {
+        match self {
+            Aggregate::Average => "average",
+            Aggregate::Sum => "sum",
+            Aggregate::Highest => "highest",
+            Aggregate::Lowest => "lowest",
+            Aggregate::Count => "count",
+            Aggregate::Any => "any",
+            Aggregate::All => "all",
+        }
+    }
+}
+
+/// Parses a payoff file's text into a syntax tree.
+pub fn parse(source: &str) -> Result<File, Diagnostic> {
+    let mut pairs = PayoffParser::parse(Rule::file, source).map_err(from_pest)?;
+    let file = pairs.next().expect("the file rule always yields one pair");
+    let mut lowering = Lowering { errors: Vec::new() };
+    let items = file
+        .into_inner()
+        .filter(|p| p.as_rule() != Rule::EOI)
+        .map(|p| lowering.item(p))
+        .collect();
+    match lowering.errors.into_iter().next() {
+        Some(e) => Err(e),
+        None => Ok(File { items }),
+    }
+}
+
+fn pratt() -> PrattParser<Rule> {
+    PrattParser::new()
+        .op(Op::infix(Rule::or, Assoc::Left))
+        .op(Op::infix(Rule::and, Assoc::Left))
+        .op(Op::prefix(Rule::not))
+        .op(Op::infix(Rule::lt, Assoc::Left)
+            | Op::infix(Rule::le, Assoc::Left)
+            | Op::infix(Rule::gt, Assoc::Left)
+            | Op::infix(Rule::ge, Assoc::Left)
+            | Op::infix(Rule::eq, Assoc::Left)
+            | Op::infix(Rule::ne, Assoc::Left))
+        .op(Op::infix(Rule::add, Assoc::Left) | Op::infix(Rule::sub, Assoc::Left))
+        .op(Op::infix(Rule::mul, Assoc::Left) | Op::infix(Rule::div, Assoc::Left))
+        .op(Op::prefix(Rule::neg))
+}
+
+fn span_of(pair: &Pair<'_, Rule>) -> Span {
+    let s = pair.as_span();
+    Span::new(s.start(), s.end())
+}
+
+static PRATT: std::sync::LazyLock<PrattParser<Rule>> = std::sync::LazyLock::new(pratt);
+
+struct Lowering {
+    errors: Vec<Diagnostic>,
+}
+
+impl Lowering {
+    fn item(&mut self, pair: Pair<'_, Rule>) -> Item {
+        let span = span_of(&pair);
+        let rule = pair.as_rule();
+        let mut inner = children(pair);
+        match rule {
+            Rule::product_item => {
+                let s = inner.next().unwrap();
+                Item::Product(string_text(&s), span_of(&s))
+            }
+            Rule::currency_item => Item::Currency(name(inner.next().unwrap())),
+            Rule::notional_item => Item::Notional(self.expr(inner.next().unwrap())),
+            Rule::underlyings_item => Item::Underlyings(inner.map(name).collect()),
+            Rule::market_item => {
+                let s = inner.next().unwrap();
+                Item::Market(string_text(&s), span_of(&s))
+            }
+            Rule::start_item => Item::Start(self.expr(inner.next().unwrap())),
+            Rule::param_item => {
+                let n = name(inner.next().unwrap());
+                Item::Param(n, self.expr(inner.next().unwrap()))
+            }
+            Rule::state_item => {
+                let n = name(inner.next().unwrap());
+                Item::State(n, self.expr(inner.next().unwrap()))
+            }
+            Rule::dates_item => {
+                let n = name(inner.next().unwrap());
+                Item::Dates(n, self.schedule(inner.next().unwrap()))
+            }
+            Rule::each_block => {
+                let var = name(inner.next().unwrap());
+                let schedule = name(inner.next().unwrap());
+                let body = self.block(inner.next().unwrap());
+                Item::Each { var, schedule, body, span }
+            }
+            Rule::at_block => {
+                let date = self.expr(inner.next().unwrap());
+                let body = self.block(inner.next().unwrap());
+                Item::At { date, body, span }
+            }
+            Rule::stray_stmt => Item::Stray(self.stmt(inner.next().unwrap()), span),
+            other => unreachable!("grammar yields no item {other:?}"),
+        }
+    }
+
+    fn schedule(&mut self, pair: Pair<'_, Rule>) -> Schedule {
+        let span = span_of(&pair);
+        let rule = pair.as_rule();
+        let mut inner = children(pair);
+        let kind = match rule {
+            Rule::date_list => ScheduleKind::List(inner.map(|p| self.date_term(p)).collect()),
+            Rule::every_sched => {
+                let period = inner.next().unwrap();
+                let text = period.as_str();
+                let (digits, unit) = text.split_at(text.len() - 1);
+                let unit = match unit {
+                    "d" => PeriodUnit::Days,
+                    "w" => PeriodUnit::Weeks,
+                    "m" => PeriodUnit::Months,
+                    _ => PeriodUnit::Years,
+                };
+                let count = self.count(digits, span_of(&period));
+                let from = self.date_term(inner.next().unwrap());
+                let to = self.date_term(inner.next().unwrap());
+                ScheduleKind::Every { count, unit, from, to }
+            }
+            Rule::steps_sched => {
+                let n = inner.next().unwrap();
+                let n = self.count(n.as_str(), span_of(&n));
+                let from = self.date_term(inner.next().unwrap());
+                let to = self.date_term(inner.next().unwrap());
+                ScheduleKind::Steps { n, from, to }
+            }
+            Rule::business_sched => {
+                let from = self.date_term(inner.next().unwrap());
+                let to = self.date_term(inner.next().unwrap());
+                ScheduleKind::BusinessDays { from, to }
+            }
+            other => unreachable!("grammar yields no schedule {other:?}"),
+        };
+        Schedule { kind, span }
+    }
+
+    fn count(&mut self, digits: &str, span: Span) -> u32 {
+        match digits.parse::<u32>() {
+            Ok(n) if n > 0 => n,
+            _ => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("`{digits}` is not a usable count"))
+                        .with_fix("write a whole number from 1 up, such as `3` in `every 3m`"),
+                );
+                1
+            }
+        }
+    }
+
+    fn date_term(&mut self, pair: Pair<'_, Rule>) -> (DateTerm, Span) {
+        let span = span_of(&pair);
+        let term = match pair.as_rule() {
+            Rule::iso_date => self.iso_date(pair.as_str(), span),
+            Rule::year_offset => DateTerm::Years(decimal(&pair.as_str()[..pair.as_str().len() - 1])),
+            Rule::start_ref => DateTerm::Start,
+            other => unreachable!("grammar yields no date term {other:?}"),
+        };
+        (term, span)
+    }
+
+    fn iso_date(&mut self, text: &str, span: Span) -> DateTerm {
+        match Date::parse(text) {
+            Some(d) => DateTerm::Iso(d),
+            None => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("`{text}` is not a calendar date"))
+                        .with_fix("write an ISO 8601 date YYYY-MM-DD that exists, such as 2027-02-28"),
+                );
+                DateTerm::Years(0.0)
+            }
+        }
+    }
+
+    fn block(&mut self, pair: Pair<'_, Rule>) -> Vec<Stmt> {
+        children(pair).map(|p| self.stmt(p)).collect()
+    }
+
+    fn stmt(&mut self, pair: Pair<'_, Rule>) -> Stmt {
+        let span = span_of(&pair);
+        let rule = pair.as_rule();
+        let mut inner = children(pair);
+        match rule {
+            Rule::let_stmt => {
+                let n = name(inner.next().unwrap());
+                Stmt::Let(n, self.expr(inner.next().unwrap()))
+            }
+            Rule::assign_stmt => {
+                let n = name(inner.next().unwrap());
+                Stmt::Assign(n, self.expr(inner.next().unwrap()))
+            }
+            Rule::if_stmt => {
+                let cond = self.expr(inner.next().unwrap());
+                let then = self.block(inner.next().unwrap());
+                let otherwise = match inner.next() {
+                    None => Vec::new(),
+                    Some(p) if p.as_rule() == Rule::if_stmt => vec![self.stmt(p)],
+                    Some(p) => self.block(p),
+                };
+                Stmt::If { cond, then, otherwise, span }
+            }
+            Rule::pay_stmt => {
+                let amount = self.expr(inner.next().unwrap());
+                let on = inner.next().map(|p| self.expr(p));
+                Stmt::Pay { amount, on, span }
+            }
+            Rule::end_stmt => Stmt::End(span),
+            other => unreachable!("grammar yields no statement {other:?}"),
+        }
+    }
+
+    fn expr(&mut self, pair: Pair<'_, Rule>) -> Expr {
+        PRATT
+            .map_primary(|p| self.primary(p))
+            .map_prefix(|op, rhs| {
+                let span = span_of(&op).join(rhs.span);
+                let op = if op.as_rule() == Rule::neg { UnaryOp::Neg } else { UnaryOp::Not };
+                Expr { kind: ExprKind::Unary(op, Box::new(rhs)), span }
+            })
+            .map_infix(|lhs, op, rhs| {
+                let op = match op.as_rule() {
+                    Rule::add => BinaryOp::Add,
+                    Rule::sub => BinaryOp::Sub,
+                    Rule::mul => BinaryOp::Mul,
+                    Rule::div => BinaryOp::Div,
+                    Rule::lt => BinaryOp::Lt,
+                    Rule::le => BinaryOp::Le,
+                    Rule::gt => BinaryOp::Gt,
+                    Rule::ge => BinaryOp::Ge,
+                    Rule::eq => BinaryOp::Eq,
+                    Rule::ne => BinaryOp::Ne,
+                    Rule::and => BinaryOp::And,
+                    _ => BinaryOp::Or,
+                };
+                let span = lhs.span.join(rhs.span);
+                Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span }
+            })
+            .parse(children(pair))
+    }
+
+    fn primary(&mut self, pair: Pair<'_, Rule>) -> Expr {
+        let span = span_of(&pair);
+        let text = pair.as_str();
+        let kind = match pair.as_rule() {
+            Rule::expr => return self.expr(pair),
+            Rule::number => ExprKind::Number(decimal(text)),
+            Rule::percent => ExprKind::Number(decimal(&text[..text.len() - 1]) / 100.0),
+            Rule::boolean => ExprKind::Flag(text == "true"),
+            Rule::iso_date => ExprKind::Date(self.iso_date(text, span)),
+            Rule::year_offset => ExprKind::Date(DateTerm::Years(decimal(&text[..text.len() - 1]))),
+            Rule::start_ref => ExprKind::Date(DateTerm::Start),
+            Rule::ident => ExprKind::Name(text.to_string()),
+            Rule::if_expr => {
+                let mut inner = children(pair);
+                let c = self.expr(inner.next().unwrap());
+                let a = self.expr(inner.next().unwrap());
+                let b = self.expr(inner.next().unwrap());
+                ExprKind::If(Box::new(c), Box::new(a), Box::new(b))
+            }
+            Rule::touched => {
+                let mut inner = children(pair);
+                let condition = Box::new(self.expr(inner.next().unwrap()));
+                let from = Box::new(self.expr(inner.next().unwrap()));
+                let to = Box::new(self.expr(inner.next().unwrap()));
+                ExprKind::Touched { condition, from, to }
+            }
+            Rule::aggregate => {
+                let mut inner = children(pair);
+                let agg = match inner.next().unwrap().as_str() {
+                    "average" => Aggregate::Average,
+                    "sum" => Aggregate::Sum,
+                    "highest" => Aggregate::Highest,
+                    "lowest" => Aggregate::Lowest,
+                    "count" => Aggregate::Count,
+                    "any" => Aggregate::Any,
+                    _ => Aggregate::All,
+                };
+                let body = self.expr(inner.next().unwrap());
+                let schedule = name(inner.next().unwrap());
+                ExprKind::Aggregate(agg, Box::new(body), schedule)
+            }
+            Rule::call => {
+                let mut inner = children(pair);
+                let callee = name(inner.next().unwrap());
+                ExprKind::Call(callee, inner.map(|p| self.expr(p)).collect())
+            }
+            other => unreachable!("grammar yields no primary {other:?}"),
+        };
+        Expr { kind, span }
+    }
+}
+
+/// The children of a pair without the keywords, which carry no meaning once parsed.
+fn children(pair: Pair<'_, Rule>) -> impl Iterator<Item = Pair<'_, Rule>> {
+    pair.into_inner().filter(|p| !is_keyword(p.as_rule()))
+}
+
+fn is_keyword(rule: Rule) -> bool {
+    matches!(
+        rule,
+        Rule::kw_product | Rule::kw_currency | Rule::kw_notional | Rule::kw_underlyings | Rule::kw_market | Rule::kw_start | Rule::kw_param | Rule::kw_dates | Rule::kw_state | Rule::kw_for | Rule::kw_each | Rule::kw_in | Rule::kw_at | Rule::kw_let | Rule::kw_if | Rule::kw_then | Rule::kw_else | Rule::kw_pay | Rule::kw_on | Rule::kw_end | Rule::kw_and | Rule::kw_or | Rule::kw_not | Rule::kw_every | Rule::kw_from | Rule::kw_to | Rule::kw_steps | Rule::kw_business | Rule::kw_days | Rule::kw_over | Rule::kw_touched
+    )
+}
+
+fn name(pair: Pair<'_, Rule>) -> Name {
+    Name { text: pair.as_str().to_string(), span: span_of(&pair) }
+}
+
+fn string_text(pair: &Pair<'_, Rule>) -> String {
+    pair.clone().into_inner().next().map(|p| p.as_str().to_string()).unwrap_or_default()
+}
+
+/// `1_000_000.5` → 1000000.5 (the grammar guarantees the digits).
+fn decimal(text: &str) -> f64 {
+    text.replace('_', "").parse().expect("the grammar only passes decimal digits")
+}
+
+/// Turns pest's error into our diagnostic, with words a payoff writer would use.
+fn from_pest(err: pest::error::Error<Rule>) -> Diagnostic {
+    use pest::error::{ErrorVariant, InputLocation};
+    let at = match err.location {
+        InputLocation::Pos(p) => p,
+        InputLocation::Span((s, _)) => s,
+    };
+    let mut expected = match &err.variant {
+        ErrorVariant::ParsingError { positives, .. } => {
+            positives.iter().filter_map(|r| describe(*r)).collect::<Vec<_>>()
+        }
+        ErrorVariant::CustomError { message } => vec![message.clone()],
+    };
+    expected.sort();
+    expected.dedup();
+    let message = if expected.is_empty() {
+        "this is not valid payoff syntax".to_string()
+    } else {
+        format!("expected {}", join_or(&expected))
+    };
+    Diagnostic::at(Span::new(at, at + 1), message).with_fix(
+        "compare the line with the syntax in grammar/REFERENCE.md; a name may not be a reserved word",
+    )
+}
+
+fn join_or(items: &[String]) -> String {
+    match items {
+        [] => String::new(),
+        [one] => one.clone(),
+        [init @ .., last] => format!("{} or {}", init.join(", "), last),
+    }
+}
+
+fn describe(rule: Rule) -> Option<String> {
+    let s = match rule {
+        Rule::EOI => "the end of the file",
+        Rule::product_item
+        | Rule::currency_item
+        | Rule::notional_item
+        | Rule::underlyings_item
+        | Rule::market_item
+        | Rule::start_item
+        | Rule::param_item
+        | Rule::dates_item
+        | Rule::state_item
+        | Rule::each_block
+        | Rule::at_block => "a top-level line (product, currency, notional, underlyings, market, start, param, dates, state, for each, at)",
+        Rule::expr | Rule::primary => "an expression",
+        Rule::ident => "a name",
+        Rule::string => "a quoted text",
+        Rule::schedule | Rule::every_sched | Rule::steps_sched | Rule::business_sched | Rule::date_list => {
+            "a schedule (dates, `every 3m from .. to ..`, `N steps from .. to ..` or `business days from .. to ..`)"
+        }
+        Rule::iso_date | Rule::year_offset | Rule::start_ref => "a date (2027-03-01, 1.5y or start)",
+        Rule::period => "a period such as 3m, 1w, 1d or 1y",
+        Rule::integer => "a whole number",
+        Rule::block => "`{`",
+        Rule::let_stmt | Rule::if_stmt | Rule::pay_stmt | Rule::end_stmt | Rule::assign_stmt => {
+            "a statement (let, if, pay, end, or `name = value`)"
+        }
+        Rule::or | Rule::and | Rule::le | Rule::ge | Rule::ne | Rule::eq | Rule::lt | Rule::gt
+        | Rule::add | Rule::sub | Rule::mul | Rule::div => "an operator",
+        Rule::number | Rule::percent => "a number",
+        _ => return None,
+    };
+    Some(s.to_string())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A compact printed form of an expression, for tests.
+    fn show(e: &Expr) -> String {
+        match &e.kind {
+            ExprKind::Number(x) => format!("{x}"),
+            ExprKind::Flag(b) => format!("{b}"),
+            ExprKind::Date(d) => format!("{d:?}"),
+            ExprKind::Name(n) => n.clone(),
+            ExprKind::Unary(UnaryOp::Neg, a) => format!("(- {})", show(a)),
+            ExprKind::Unary(UnaryOp::Not, a) => format!("(not {})", show(a)),
+            ExprKind::Binary(op, a, b) => format!("({} {} {})", op.symbol(), show(a), show(b)),
+            ExprKind::If(c, a, b) => format!("(if {} {} {})", show(c), show(a), show(b)),
+            ExprKind::Call(n, args) => {
+                format!("({} {})", n.text, args.iter().map(show).collect::<Vec<_>>().join(" "))
+            }
+            ExprKind::Aggregate(a, body, s) => format!("({} {} {})", a.name(), show(body), s.text),
+            ExprKind::Touched { condition, from, to } => {
+                format!("(touched {} {} {})", show(condition), show(from), show(to))
+            }
+        }
+    }
+
+    fn expr_of(src: &str) -> String {
+        let file = parse(&format!("param x = {src}")).unwrap();
+        match &file.items[0] {
+            Item::Param(_, e) => show(e),
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn precedence_and_literals() {
+        assert_eq!(expr_of("1 + 2 * 3"), "(+ 1 (* 2 3))");
+        assert_eq!(expr_of("-a * b"), "(* (- a) b)");
+        assert_eq!(expr_of("a < b and not c or d"), "(or (and (< a b) (not c)) d)");
+        assert_eq!(expr_of("70% * 1_000_000"), "(* 0.7 1000000)");
+        assert_eq!(expr_of("if a >= 60% then 1 else a"), "(if (>= a 0.6) 1 a)");
+        assert_eq!(expr_of("max(a, b, c) - 1"), "(- (max a b c) 1)");
+        assert_eq!(expr_of("average(perf(ZPHX) over fixings)"), "(average (perf ZPHX) fixings)");
+        assert_eq!(expr_of("level(ZPHX, 0.5y)"), "(level ZPHX Years(0.5))");
+        assert_eq!(
+            expr_of("touched(perf(OSMP) <= 65% from start to 2027-12-01)"),
+            "(touched (<= (perf OSMP) 0.65) Start Iso(Date(21153)))"
+        );
+    }
+
+    #[test]
+    fn statements_split_on_newlines_without_separators() {
+        let file = parse("for each t in q {\n pay notional * c\n missed = 0\n end\n}").unwrap();
+        let Item::Each { body, .. } = &file.items[0] else { panic!() };
+        assert_eq!(body.len(), 3);
+        assert!(matches!(body[1], Stmt::Assign(..)));
+        assert!(matches!(body[2], Stmt::End(_)));
+    }
+
+    #[test]
+    fn schedules() {
+        let file = parse("dates q = every 3m from 2027-03-01 to 2029-12-01\ndates d = 252 steps from start to 1y\ndates days = business days from 2026-12-02 to 2027-12-01").unwrap();
+        assert!(matches!(&file.items[0], Item::Dates(_, Schedule { kind: ScheduleKind::Every { count: 3, unit: PeriodUnit::Months, .. }, .. })));
+        assert!(matches!(&file.items[1], Item::Dates(_, Schedule { kind: ScheduleKind::Steps { n: 252, .. }, .. })));
+        assert!(matches!(&file.items[2], Item::Dates(n, Schedule { kind: ScheduleKind::BusinessDays { .. }, .. }) if n.text == "days"));
+    }
+
+    #[test]
+    fn syntax_errors_point_at_the_place() {
+        let err = parse("product \"x\"\nparam = 5").unwrap_err();
+        assert_eq!(err.span, Some(Span::new(18, 19)));
+        assert_eq!(err.message, "expected a name");
+        let err = parse("dates d = 2027-02-30").unwrap_err();
+        assert_eq!(err.message, "`2027-02-30` is not a calendar date");
+    }
+}
