@@ -5,6 +5,12 @@
 //! (paths, variance reduction, statistics) → [`report`] (table, JSON). [`driver`] chains
 //! them; `main.rs` only parses arguments.
 
+pub mod check;
+pub mod closed_form;
+pub mod compile;
 pub mod date;
 pub mod diagnostic;
+pub mod driver;
+pub mod report;
+pub mod sim;
 pub mod syntax;

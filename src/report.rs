@@ -1,0 +1,162 @@
+//! Stage 5: results → text for people (a table) or for machines (JSON).
+//!
+//! The engine returns numbers; this is the one place that formats them. Every report ends
+//! with the caution line.
+
+use std::io::{self, Write};
+
+use serde_json::json;
+
+use crate::sim::Estimate;
+
+/// The line every report ends with.
+pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
+
+/// Everything a single-file report shows.
+#[derive(Clone, Debug)]
+pub struct Priced {
+    pub file: String,
+    pub market_file: String,
+    pub product: String,
+    pub currency: String,
+    pub notional: f64,
+    pub params: Vec<(String, f64)>,
+    pub estimate: Estimate,
+}
+
+impl Priced {
+    pub fn percent_of_notional(&self) -> f64 {
+        100.0 * self.estimate.price / self.notional
+    }
+
+    /// The 95% confidence interval under the normal approximation.
+    pub fn interval(&self) -> (f64, f64) {
+        let half = 1.959_963_984_540_054 * self.estimate.std_error;
+        (self.estimate.price - half, self.estimate.price + half)
+    }
+}
+
+/// Output formats.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum Format {
+    Table,
+    Json,
+}
+
+/// Writes the report of one priced file.
+pub fn write_one(out: &mut dyn Write, p: &Priced, format: Format) -> io::Result<()> {
+    match format {
+        Format::Table => write_table(out, p),
+        Format::Json => {
+            serde_json::to_writer_pretty(&mut *out, &to_json(p))?;
+            writeln!(out)
+        }
+    }
+}
+
+/// The JSON object of one priced file.
+pub fn to_json(p: &Priced) -> serde_json::Value {
+    let e = &p.estimate;
+    let (lo, hi) = p.interval();
+    let params: serde_json::Map<String, serde_json::Value> = p.params.iter().map(|(n, v)| (n.clone(), json!(v))).collect();
+    json!({
+        "file": p.file,
+        "market_file": p.market_file,
+        "product": p.product,
+        "currency": p.currency,
+        "notional": p.notional,
+        "parameters": params,
+        "price": e.price,
+        "percent_of_notional": p.percent_of_notional(),
+        "std_error": e.std_error,
+        "interval_95": [lo, hi],
+        "paths": e.paths,
+        "seed": e.seed,
+        "antithetic": e.antithetic,
+        "controls": e.controls,
+        "variance_reduction": e.variance_reduction,
+        "elapsed_seconds": e.elapsed.as_secs_f64(),
+        "profile": e.profile.iter().map(|r| json!({
+            "date": r.label,
+            "years": r.time,
+            "end_probability": r.end_probability,
+            "expected_pv": r.expected_pv,
+        })).collect::<Vec<_>>(),
+        "caution": CAUTION,
+    })
+}
+
+fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
+    let e = &p.estimate;
+    let (lo, hi) = p.interval();
+    let ccy = &p.currency;
+    let title = if p.product.is_empty() { p.file.as_str() } else { p.product.as_str() };
+    writeln!(out, "{title}")?;
+    writeln!(out, "  file              {}", p.file)?;
+    writeln!(out, "  market            {}", p.market_file)?;
+    writeln!(out, "  notional          {} {ccy}", group(p.notional, 2))?;
+    if !p.params.is_empty() {
+        let list: Vec<String> = p.params.iter().map(|(n, v)| format!("{n} = {}", short(*v))).collect();
+        writeln!(out, "  parameters        {}", list.join(", "))?;
+    }
+    writeln!(out)?;
+    writeln!(out, "  price             {} {ccy}   ({:.4}% of notional)", group(e.price, 2), p.percent_of_notional())?;
+    writeln!(out, "  standard error    {} {ccy}   ({:.4}% of notional)", group(e.std_error, 2), 100.0 * e.std_error / p.notional)?;
+    writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, 2), group(hi, 2))?;
+    let pairs = if e.antithetic { " in antithetic pairs" } else { "" };
+    writeln!(out, "  paths             {}{pairs}, seed {}", group(e.paths as f64, 0), e.seed)?;
+    let controls = if e.controls.is_empty() { "none".to_string() } else { e.controls.join(", ") };
+    writeln!(out, "  control variates  {controls}")?;
+    match e.variance_reduction {
+        Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
+        None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
+    }
+    writeln!(out, "  time              {:.2} s", e.elapsed.as_secs_f64())?;
+    writeln!(out)?;
+    writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
+    for r in &e.profile {
+        let ends = r.end_probability.map_or("-".to_string(), |x| format!("{:.2}%", 100.0 * x));
+        writeln!(out, "  {:<12} {:>14} {:>22}", r.label, ends, group(r.expected_pv, 2))?;
+    }
+    writeln!(out)?;
+    writeln!(out, "{CAUTION}")
+}
+
+/// `1234567.891` → `1,234,567.89`.
+pub fn group(x: f64, decimals: usize) -> String {
+    if !x.is_finite() {
+        return x.to_string();
+    }
+    let s = format!("{:.*}", decimals, x.abs());
+    let (int, frac) = s.split_once('.').map_or((s.as_str(), None), |(i, f)| (i, Some(f)));
+    let mut grouped = String::new();
+    for (i, c) in int.chars().enumerate() {
+        if i > 0 && (int.len() - i) % 3 == 0 {
+            grouped.push(',');
+        }
+        grouped.push(c);
+    }
+    let sign = if x < 0.0 && s.chars().any(|c| c.is_ascii_digit() && c != '0') { "-" } else { "" };
+    match frac {
+        Some(f) => format!("{sign}{grouped}.{f}"),
+        None => format!("{sign}{grouped}"),
+    }
+}
+
+fn short(v: f64) -> String {
+    let s = format!("{v:.10}");
+    s.trim_end_matches('0').trim_end_matches('.').to_string()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn groups_thousands() {
+        assert_eq!(group(1_234_567.891, 2), "1,234,567.89");
+        assert_eq!(group(-999.5, 0), "-1,000");
+        assert_eq!(group(12.0, 2), "12.00");
+        assert_eq!(group(-0.001, 2), "0.00");
+    }
+}

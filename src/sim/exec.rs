@@ -1,0 +1,302 @@
+//! Runs a compiled program over one block of paths.
+//!
+//! Every operation is a tight loop over the block's lanes (one lane per path), so the
+//! match on the operation is paid once per block and the loops vectorise. Masks are
+//! registers holding 1 or 0 per lane: a statement under `if` runs on all lanes and only
+//! writes where its mask is 1.
+
+use rand_pcg::Pcg64;
+
+use super::paths::{Controls, Model, PathBuffers};
+use super::stats::{BlockResult, Moments};
+use super::{Settings, BLOCK};
+use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
+
+/// One worker's buffers, reused block after block.
+pub struct Workspace {
+    paths: PathBuffers,
+    regs: Vec<Vec<f64>>,
+    monitors: Vec<Vec<f64>>,
+    pv: Vec<f64>,
+    columns: Vec<Vec<f64>>,
+}
+
+/// An operand resolved for one block: a lane slice or one value for all lanes.
+#[derive(Clone, Copy)]
+enum Arg<'a> {
+    Lanes(&'a [f64]),
+    Same(f64),
+}
+
+impl Workspace {
+    pub fn new(p: &Program, model: &Model, controls: &Controls) -> Self {
+        let keep_logs = !p.monitors.is_empty() || controls.needs_logs();
+        Workspace {
+            paths: PathBuffers::new(p, model, keep_logs, BLOCK),
+            regs: vec![vec![0.0; BLOCK]; p.registers],
+            monitors: vec![vec![0.0; BLOCK]; p.monitors.len()],
+            pv: vec![0.0; BLOCK],
+            columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
+        }
+    }
+
+    /// Simulates block `index` (of `lanes` paths) and returns its statistics.
+    pub fn run_block(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        controls: &Controls,
+        settings: &Settings,
+        index: u64,
+        lanes: usize,
+    ) -> BlockResult {
+        let mut rng = block_rng(settings.seed, index);
+        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
+        self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
+        let mut result = BlockResult::new(1 + controls.len(), p.events.len(), p.payments.len());
+        self.execute(p, lanes, &mut result);
+        // Paths still alive after the last operation end on the last run date.
+        if let Some(last) = p.events.len().checked_sub(1) {
+            result.ended[last] += self.regs[ALIVE as usize][..lanes].iter().sum::<f64>();
+        }
+        result.raw = Moments::of_columns(&[&self.pv[..lanes]]);
+        for j in 0..controls.len() {
+            controls.values(j, p, &self.paths, lanes, BLOCK, &mut self.columns[1 + j]);
+        }
+        self.columns[0][..lanes].copy_from_slice(&self.pv[..lanes]);
+        // An antithetic pair is one sample: the mean of its two paths.
+        let units = if settings.antithetic { lanes / 2 } else { lanes };
+        if settings.antithetic {
+            for col in &mut self.columns {
+                for i in 0..units {
+                    col[i] = 0.5 * (col[i] + col[i + units]);
+                }
+            }
+        }
+        let cols: Vec<&[f64]> = self.columns.iter().map(|c| &c[..units]).collect();
+        result.moments = Moments::of_columns(&cols);
+        result
+    }
+
+    fn execute(&mut self, p: &Program, lanes: usize, result: &mut BlockResult) {
+        self.regs[ALIVE as usize][..lanes].fill(1.0);
+        for (s, init) in p.states.iter().enumerate() {
+            self.regs[1 + s][..lanes].fill(*init);
+        }
+        self.pv[..lanes].fill(0.0);
+        for op in &p.ops {
+            match *op {
+                Op::Bin { op, dst, a, b } => {
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let (a, b) = (self.arg(a, lanes), self.arg(b, lanes));
+                    binary(op, &mut out[..lanes], a, b);
+                    self.regs[dst as usize] = out;
+                }
+                Op::Un { op, dst, a } => {
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    unary(op, &mut out[..lanes], self.arg(a, lanes));
+                    self.regs[dst as usize] = out;
+                }
+                Op::Select { dst, cond, a, b } => {
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let (c, a, b) = (self.arg(cond, lanes), self.arg(a, lanes), self.arg(b, lanes));
+                    for (i, o) in out[..lanes].iter_mut().enumerate() {
+                        *o = if at(c, i) != 0.0 { at(a, i) } else { at(b, i) };
+                    }
+                    self.regs[dst as usize] = out;
+                }
+                Op::Acc { op, dst, src } => {
+                    if src == Src::Reg(dst) {
+                        continue;
+                    }
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let s = self.arg(src, lanes);
+                    let out_l = &mut out[..lanes];
+                    match op {
+                        Acc::Add => apply2(out_l, s, |x, y| x + y),
+                        Acc::Min => apply2(out_l, s, f64::min),
+                        Acc::Max => apply2(out_l, s, f64::max),
+                    }
+                    self.regs[dst as usize] = out;
+                }
+                Op::Copy { dst, src } => {
+                    if src == Src::Reg(dst) {
+                        continue;
+                    }
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    match self.arg(src, lanes) {
+                        Arg::Lanes(s) => out[..lanes].copy_from_slice(s),
+                        Arg::Same(x) => out[..lanes].fill(x),
+                    }
+                    self.regs[dst as usize] = out;
+                }
+                Op::Assign { dst, mask, src } => {
+                    if src == Src::Reg(dst) {
+                        continue;
+                    }
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let s = self.arg(src, lanes);
+                    let m = &self.regs[mask as usize][..lanes];
+                    for (i, o) in out[..lanes].iter_mut().enumerate() {
+                        if m[i] != 0.0 {
+                            *o = at(s, i);
+                        }
+                    }
+                    self.regs[dst as usize] = out;
+                }
+                Op::Pay { mask, amount, slot, discount, site } => {
+                    let mut pvs = std::mem::take(&mut self.pv);
+                    let a = self.arg(amount, lanes);
+                    let m = &self.regs[mask as usize][..lanes];
+                    let mut total = 0.0;
+                    let mut finite = true;
+                    for (i, pv) in pvs[..lanes].iter_mut().enumerate() {
+                        if m[i] != 0.0 {
+                            let v = at(a, i) * discount;
+                            finite &= v.is_finite();
+                            *pv += v;
+                            total += v;
+                        }
+                    }
+                    self.pv = pvs;
+                    result.paid[slot as usize] += total;
+                    if !finite && result.bad_site.is_none() {
+                        result.bad_site = Some(site);
+                    }
+                }
+                Op::End { mask, slot } => {
+                    let mut alive = std::mem::take(&mut self.regs[ALIVE as usize]);
+                    let mut ended = 0.0;
+                    if mask == ALIVE {
+                        ended = alive[..lanes].iter().sum();
+                        alive[..lanes].fill(0.0);
+                    } else {
+                        let m = &self.regs[mask as usize][..lanes];
+                        for (a, &m) in alive[..lanes].iter_mut().zip(m) {
+                            if m != 0.0 && *a != 0.0 {
+                                *a = 0.0;
+                                ended += 1.0;
+                            }
+                        }
+                    }
+                    result.ended[slot as usize] += ended;
+                    self.regs[ALIVE as usize] = alive;
+                }
+            }
+        }
+    }
+
+    fn arg(&self, src: Src, lanes: usize) -> Arg<'_> {
+        match src {
+            Src::Reg(r) => Arg::Lanes(&self.regs[r as usize][..lanes]),
+            Src::Level(k) => {
+                let start = k as usize * BLOCK;
+                Arg::Lanes(&self.paths.levels[start..start + lanes])
+            }
+            Src::Const(x) => Arg::Same(x),
+            Src::Monitor(m) => Arg::Lanes(&self.monitors[m as usize][..lanes]),
+        }
+    }
+}
+
+/// The RNG of block `index`: PCG-64 with the seed spread over its state and the block
+/// index as its stream, so blocks are independent and each is reproducible alone.
+pub fn block_rng(seed: u64, index: u64) -> Pcg64 {
+    let hi = splitmix64(seed);
+    let lo = splitmix64(hi ^ 0x5851_f42d_4c95_7f2d);
+    Pcg64::new((u128::from(hi) << 64) | u128::from(lo), u128::from(index))
+}
+
+fn splitmix64(mut x: u64) -> u64 {
+    x = x.wrapping_add(0x9e37_79b9_7f4a_7c15);
+    x = (x ^ (x >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    x = (x ^ (x >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    x ^ (x >> 31)
+}
+
+#[inline(always)]
+fn at(a: Arg<'_>, i: usize) -> f64 {
+    match a {
+        Arg::Lanes(s) => s[i],
+        Arg::Same(x) => x,
+    }
+}
+
+#[inline(always)]
+fn apply2(out: &mut [f64], s: Arg<'_>, f: impl Fn(f64, f64) -> f64) {
+    match s {
+        Arg::Lanes(s) => {
+            for (o, y) in out.iter_mut().zip(s) {
+                *o = f(*o, *y);
+            }
+        }
+        Arg::Same(y) => {
+            for o in out.iter_mut() {
+                *o = f(*o, y);
+            }
+        }
+    }
+}
+
+#[inline(always)]
+fn kernel(out: &mut [f64], a: Arg<'_>, b: Arg<'_>, f: impl Fn(f64, f64) -> f64) {
+    match (a, b) {
+        (Arg::Lanes(a), Arg::Lanes(b)) => {
+            for ((o, x), y) in out.iter_mut().zip(a).zip(b) {
+                *o = f(*x, *y);
+            }
+        }
+        (Arg::Lanes(a), Arg::Same(y)) => {
+            for (o, x) in out.iter_mut().zip(a) {
+                *o = f(*x, y);
+            }
+        }
+        (Arg::Same(x), Arg::Lanes(b)) => {
+            for (o, y) in out.iter_mut().zip(b) {
+                *o = f(x, *y);
+            }
+        }
+        (Arg::Same(x), Arg::Same(y)) => out.fill(f(x, y)),
+    }
+}
+
+fn flag(b: bool) -> f64 {
+    if b {
+        1.0
+    } else {
+        0.0
+    }
+}
+
+fn binary(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
+    match op {
+        Bin::Add => kernel(out, a, b, |x, y| x + y),
+        Bin::Sub => kernel(out, a, b, |x, y| x - y),
+        Bin::Mul => kernel(out, a, b, |x, y| x * y),
+        Bin::Div => kernel(out, a, b, |x, y| x / y),
+        Bin::Min => kernel(out, a, b, f64::min),
+        Bin::Max => kernel(out, a, b, f64::max),
+        Bin::Lt => kernel(out, a, b, |x, y| flag(x < y)),
+        Bin::Le => kernel(out, a, b, |x, y| flag(x <= y)),
+        Bin::Gt => kernel(out, a, b, |x, y| flag(x > y)),
+        Bin::Ge => kernel(out, a, b, |x, y| flag(x >= y)),
+        Bin::Eq => kernel(out, a, b, |x, y| flag(x == y)),
+        Bin::Ne => kernel(out, a, b, |x, y| flag(x != y)),
+        Bin::And => kernel(out, a, b, |x, y| flag(x != 0.0 && y != 0.0)),
+        Bin::Or => kernel(out, a, b, |x, y| flag(x != 0.0 || y != 0.0)),
+        Bin::AndNot => kernel(out, a, b, |x, y| flag(x != 0.0 && y == 0.0)),
+    }
+}
+
+fn unary(op: Un, out: &mut [f64], a: Arg<'_>) {
+    let one = Arg::Same(0.0);
+    match op {
+        Un::Neg => kernel(out, a, one, |x, _| -x),
+        Un::Not => kernel(out, a, one, |x, _| flag(x == 0.0)),
+        Un::Abs => kernel(out, a, one, |x, _| x.abs()),
+        Un::Exp => kernel(out, a, one, |x, _| x.exp()),
+        Un::Log => kernel(out, a, one, |x, _| x.ln()),
+        Un::Sqrt => kernel(out, a, one, |x, _| x.sqrt()),
+        Un::Floor => kernel(out, a, one, |x, _| x.floor()),
+    }
+}
