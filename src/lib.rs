@@ -7,4 +7,5 @@
 
 pub mod date;
 pub mod diagnostic;
+pub mod sim;
 pub mod syntax;
