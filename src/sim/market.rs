@@ -1,0 +1,1422 @@
+//! Stage 4 input: the market the simulation runs on — valuation date, flat rates per
+//! currency and, per underlying, spot, volatility, dividend yield and pairwise correlations,
+//! read from a TOML file.
+//!
+//! Everything is checked here, once, when the file is read: a built [`Market`] holds only
+//! finite numbers in range, so the simulation loop never re-validates. A file with problems
+//! yields every problem found, each with its place in the file and a fix, not just the first.
+//!
+//! The format:
+//!
+//! ```toml
+//! valuation_date = 2026-12-01          # TOML local date
+//!
+//! [rates]                               # continuously compounded, flat, per ISO 4217 code
+//! USD = 0.038
+//!
+//! [underlyings.ZPHX]
+//! spot = 4250.0
+//! volatility = 0.18                     # annual, lognormal
+//! dividend_yield = 0.019                # continuous; 0 when absent
+//!
+//! [correlations]                        # each pair once, either order
+//! ZPHX = { QMEN = 0.55 }
+//! ```
+
+use std::collections::BTreeMap;
+use std::fmt;
+use std::path::Path;
+
+use serde::de::{self, Deserialize, Deserializer, MapAccess, SeqAccess, Visitor};
+
+use crate::date::Date;
+use crate::diagnostic::{closest, Diagnostic, Span};
+
+/// One underlying's parameters, all finite: spot > 0, volatility in (0, 5].
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Underlying {
+    pub spot: f64,
+    /// Annual lognormal volatility, as a fraction (0.18 for 18%).
+    pub volatility: f64,
+    /// Continuous dividend yield, as a fraction; may be negative.
+    pub dividend_yield: f64,
+}
+
+/// Validated market data. Once built, every number in it is usable as is.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Market {
+    pub valuation_date: Date,
+    rates: BTreeMap<String, f64>,
+    /// In file order, so reports list names as the user wrote them.
+    underlyings: Vec<(String, Underlying)>,
+    /// Keyed by the pair in sorted order, so either order finds it.
+    correlations: BTreeMap<(String, String), Given>,
+    /// Names that have their own line under `[correlations]`, with the span of the name:
+    /// a missing pair is best added to an existing line (a second line would be a TOML
+    /// duplicate key).
+    correlation_rows: BTreeMap<String, Option<Span>>,
+}
+
+/// A correlation as given in the file; the span lets later errors point back at it.
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct Given {
+    value: f64,
+    span: Option<Span>,
+}
+
+/// A pivot below this means the correlation matrix is singular up to rounding: names that
+/// move exactly together (or against each other) leave nothing for the next row to divide by.
+const MIN_PIVOT: f64 = 1e-12;
+
+/// Volatilities above this are surely a percentage typed as a number.
+const MAX_VOLATILITY: f64 = 5.0;
+
+impl Market {
+    /// Reads and validates a market file. Errors carry the file path and, where possible,
+    /// the span of the offending value.
+    pub fn load(path: &Path) -> Result<Market, Vec<Diagnostic>> {
+        let text = std::fs::read_to_string(path).map_err(|err| {
+            vec![
+                Diagnostic::new(format!("cannot read the market file: {err}"))
+                    .with_fix("check that the path is right and the file is readable")
+                    .in_file(path),
+            ]
+        })?;
+        Market::from_toml(&text, path)
+    }
+
+    /// Validates market data given as TOML text; `file` is only used to label errors.
+    pub fn from_toml(text: &str, file: &Path) -> Result<Market, Vec<Diagnostic>> {
+        let root = match toml::from_str::<Bare>(text) {
+            Ok(Bare(root)) => root,
+            Err(err) => {
+                let message = err.message().trim_end().to_string();
+                let diagnostic = match err.span() {
+                    Some(range) => Diagnostic::at(Span::new(range.start, range.end), message),
+                    None => Diagnostic::new(message),
+                };
+                return Err(vec![diagnostic
+                    .with_fix("fix the TOML syntax at this place: keys are `name = value`, sections `[rates]`, `[underlyings.NAME]`, `[correlations]`")
+                    .in_file(file)]);
+            }
+        };
+        let mut reader = Reader {
+            file,
+            errors: Vec::new(),
+        };
+        let market = reader.market(root);
+        // In file order; errors without a place (a missing key) last.
+        reader
+            .errors
+            .sort_by_key(|d| d.span.map_or(usize::MAX, |s| s.start));
+        match market {
+            Some(market) if reader.errors.is_empty() => Ok(market),
+            _ => Err(reader.errors),
+        }
+    }
+
+    /// The flat, continuously compounded rate for an ISO 4217 currency code.
+    pub fn rate(&self, currency: &str) -> Option<f64> {
+        self.rates.get(currency).copied()
+    }
+
+    pub fn underlying(&self, name: &str) -> Option<&Underlying> {
+        self.underlyings
+            .iter()
+            .find(|(n, _)| n == name)
+            .map(|(_, u)| u)
+    }
+
+    /// Underlying names in the order the file gives them.
+    pub fn underlying_names(&self) -> impl Iterator<Item = &str> {
+        self.underlyings.iter().map(|(n, _)| n.as_str())
+    }
+
+    /// The correlation of two underlyings: 1 for a defined name with itself, `None` when
+    /// the pair isn't given or a name isn't defined.
+    pub fn correlation(&self, a: &str, b: &str) -> Option<f64> {
+        if a == b {
+            return self.underlying(a).map(|_| 1.0);
+        }
+        self.correlations.get(&pair_key(a, b)).map(|g| g.value)
+    }
+
+    /// Lower-triangular Cholesky factor (row-major) of the correlation matrix of `names` in
+    /// that order, so that `L·Lᵀ` is the matrix. `file` labels the error: the market file.
+    ///
+    /// Errors: an undefined or repeated name; pairs not given (the message names them and
+    /// the fix shows what to add under `[correlations]`); a matrix that is not positive
+    /// definite (the message names the row where the factorisation fails and the pair most
+    /// at odds with the rest).
+    pub fn cholesky(&self, names: &[&str], file: &Path) -> Result<Vec<Vec<f64>>, Diagnostic> {
+        for (i, name) in names.iter().enumerate() {
+            if self.underlying(name).is_none() {
+                let known: Vec<&str> = self.underlying_names().collect();
+                let fix = match closest(name, known.iter().copied()) {
+                    Some(near) => format!("did you mean `{near}`?"),
+                    None => format!(
+                        "add [underlyings.{name}] with spot and volatility to the market file (defined: {})",
+                        list_or_none(&known)
+                    ),
+                };
+                return Err(
+                    Diagnostic::new(format!("no underlying `{name}` in the market file"))
+                        .with_fix(fix)
+                        .in_file(file),
+                );
+            }
+            if names[..i].contains(name) {
+                return Err(
+                    Diagnostic::new(format!("underlying `{name}` is listed twice"))
+                        .with_fix("list each underlying once")
+                        .in_file(file),
+                );
+            }
+        }
+
+        let mut missing = Vec::new();
+        let matrix: Vec<Vec<f64>> = names
+            .iter()
+            .map(|a| {
+                names
+                    .iter()
+                    .map(|b| {
+                        self.correlation(a, b).unwrap_or_else(|| {
+                            // Each unordered pair once, earlier name first.
+                            let (ia, ib) = (position(names, a), position(names, b));
+                            if ia < ib {
+                                missing.push((*a, *b));
+                            }
+                            0.0
+                        })
+                    })
+                    .collect()
+            })
+            .collect();
+        if !missing.is_empty() {
+            return Err(self.missing_pairs(&missing, file));
+        }
+
+        let n = names.len();
+        let mut factor = vec![vec![0.0; n]; n];
+        for i in 0..n {
+            let (done, rest) = factor.split_at_mut(i);
+            let row = &mut rest[0];
+            for (j, upper) in done.iter().enumerate() {
+                row[j] = (matrix[i][j] - dot(&row[..j], &upper[..j])) / upper[j];
+            }
+            let pivot = matrix[i][i] - dot(&row[..i], &row[..i]);
+            if pivot.is_nan() || pivot <= MIN_PIVOT {
+                return Err(self.not_positive_definite(names, i, row, file));
+            }
+            row[i] = pivot.sqrt();
+        }
+        Ok(factor)
+    }
+
+    fn missing_pairs(&self, missing: &[(&str, &str)], file: &Path) -> Diagnostic {
+        let pairs: Vec<String> = missing
+            .iter()
+            .map(|(a, b)| format!("{a} and {b}"))
+            .collect();
+        let message = format!(
+            "no correlation given between {}",
+            pairs.join(", nor between ")
+        );
+
+        // Group what to add by the line it goes on: an existing line of either name, or a
+        // new line for the earlier name.
+        let mut lines: Vec<(&str, bool, Vec<&str>)> = Vec::new();
+        for &(a, b) in missing {
+            let (row, other, exists) = if self.correlation_rows.contains_key(a) {
+                (a, b, true)
+            } else if self.correlation_rows.contains_key(b) {
+                (b, a, true)
+            } else {
+                (a, b, false)
+            };
+            match lines.iter_mut().find(|(r, _, _)| *r == row) {
+                Some((_, _, others)) => others.push(other),
+                None => lines.push((row, exists, vec![other])),
+            }
+        }
+        let steps: Vec<String> = lines
+            .iter()
+            .map(|(row, exists, others)| {
+                let entries: Vec<String> = others
+                    .iter()
+                    .map(|o| format!("{o} = <correlation>"))
+                    .collect();
+                if *exists {
+                    format!(
+                        "add `{}` inside the braces of the `{row} = {{ ... }}` line",
+                        entries.join(", ")
+                    )
+                } else {
+                    format!("add the line `{row} = {{ {} }}`", entries.join(", "))
+                }
+            })
+            .collect();
+        let fix = format!("under [correlations], {}", steps.join("; "));
+
+        let span = lines
+            .first()
+            .and_then(|(row, _, _)| self.correlation_rows.get(*row).copied().flatten());
+        let diagnostic = match span {
+            Some(span) => Diagnostic::at(span, message),
+            None => Diagnostic::new(message),
+        };
+        diagnostic.with_fix(fix).in_file(file)
+    }
+
+    fn not_positive_definite(
+        &self,
+        names: &[&str],
+        failed: usize,
+        row: &[f64],
+        file: &Path,
+    ) -> Diagnostic {
+        let name = names[failed];
+        // The earlier name whose entry in the failing row is largest pulls the row's
+        // variance below zero the most: the pair most at odds with the rest.
+        let culprit = (0..failed)
+            .max_by(|&x, &y| row[x].abs().total_cmp(&row[y].abs()))
+            .unwrap_or(0);
+        let other = names[culprit];
+        let value = self.correlation(name, other).unwrap_or(f64::NAN);
+        let among = names[..=failed].join(", ");
+        let message = format!(
+            "the correlations among {among} cannot all hold at once: the correlation matrix is not positive definite, failing at {name}; the pair {name}–{other} ({value}) is the most at odds with the rest"
+        );
+        let fix = format!(
+            "check {name}–{other} first, then the other correlations among {among}: two names that both move closely with a third cannot move strongly against each other, and distinct names cannot be correlated exactly ±1"
+        );
+        let span = self
+            .correlations
+            .get(&pair_key(name, other))
+            .and_then(|g| g.span);
+        let diagnostic = match span {
+            Some(span) => Diagnostic::at(span, message),
+            None => Diagnostic::new(message),
+        };
+        diagnostic.with_fix(fix).in_file(file)
+    }
+}
+
+fn pair_key(a: &str, b: &str) -> (String, String) {
+    if a <= b {
+        (a.to_string(), b.to_string())
+    } else {
+        (b.to_string(), a.to_string())
+    }
+}
+
+fn position(names: &[&str], name: &str) -> usize {
+    names.iter().position(|n| *n == name).unwrap_or(usize::MAX)
+}
+
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    a.iter().zip(b).map(|(x, y)| x * y).sum()
+}
+
+fn list_or_none(names: &[&str]) -> String {
+    if names.is_empty() {
+        "none".to_string()
+    } else {
+        names.join(", ")
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Validation: from the spanned TOML tree to a `Market`, collecting every problem.
+
+const TOP_KEYS: &[&str] = &["valuation_date", "rates", "underlyings", "correlations"];
+const UNDERLYING_KEYS: &[&str] = &["spot", "volatility", "dividend_yield"];
+
+struct Reader<'a> {
+    file: &'a Path,
+    errors: Vec<Diagnostic>,
+}
+
+impl Reader<'_> {
+    fn error(&mut self, span: Option<Span>, message: String, fix: String) {
+        let diagnostic = match span {
+            Some(span) => Diagnostic::at(span, message),
+            None => Diagnostic::new(message),
+        };
+        self.errors
+            .push(diagnostic.with_fix(fix).in_file(self.file));
+    }
+
+    /// Reports a key that isn't allowed here; returns the allowed key it is likely a typo of.
+    fn unknown_key<'k>(&mut self, key: &Key, place: &str, allowed: &[&'k str]) -> Option<&'k str> {
+        let message = format!("unknown key `{}` in {place}", key.name);
+        let near = closest(&key.name, allowed.iter().copied());
+        let fix = if key.name == "valuation_date" {
+            "move `valuation_date = ...` above the first [section]: TOML puts a key in the table above it".to_string()
+        } else {
+            let hint = near
+                .map(|near| format!("did you mean `{near}`? "))
+                .unwrap_or_default();
+            format!("{hint}allowed keys: {}", allowed.join(", "))
+        };
+        self.error(key.span, message, fix);
+        near
+    }
+
+    /// The entries of a node that must be a table, or `None` (with an error) if it isn't.
+    fn table<'n>(
+        &mut self,
+        node: &'n Node,
+        path: &str,
+        example: &str,
+    ) -> Option<&'n [(Key, Node)]> {
+        match &node.kind {
+            Kind::Table(entries) => Some(entries),
+            other => {
+                self.error(
+                    node.span,
+                    format!("{path} must be a table (got {})", other.describe()),
+                    format!("write it as {example}"),
+                );
+                None
+            }
+        }
+    }
+
+    /// A finite number (integers accepted), or `None` with an error.
+    fn number(&mut self, node: &Node, path: &str, key: &str) -> Option<f64> {
+        let value = match &node.kind {
+            Kind::Integer(i) => *i as f64,
+            Kind::Float(f) => *f,
+            Kind::String(s) if s.trim().parse::<f64>().is_ok() => {
+                let message = format!("{path} must be a number, not a string");
+                self.error(
+                    node.span,
+                    message,
+                    format!("remove the quotes: {key} = {}", s.trim()),
+                );
+                return None;
+            }
+            other => {
+                let message = format!("{path} must be a number (got {})", other.describe());
+                self.error(
+                    node.span,
+                    message,
+                    format!("write a number, e.g. {key} = 0.25"),
+                );
+                return None;
+            }
+        };
+        if !value.is_finite() {
+            let message = format!("{path} must be a finite number (got {value})");
+            self.error(
+                node.span,
+                message,
+                format!("write a finite number, e.g. {key} = 0.25"),
+            );
+            return None;
+        }
+        Some(value)
+    }
+
+    fn market(&mut self, root: Node) -> Option<Market> {
+        let Kind::Table(entries) = root.kind else {
+            self.error(
+                None,
+                "the market file must be a TOML table".into(),
+                "write `valuation_date = ...` and [rates], [underlyings.NAME], [correlations] sections".into(),
+            );
+            return None;
+        };
+        let mut sections: BTreeMap<&str, &Node> = BTreeMap::new();
+        for (key, node) in &entries {
+            if TOP_KEYS.contains(&key.name.as_str()) {
+                sections.insert(key.name.as_str(), node);
+            } else {
+                self.unknown_key(key, "the market file", TOP_KEYS);
+            }
+        }
+
+        let rates = sections
+            .get("rates")
+            .map(|node| self.rates(node))
+            .unwrap_or_default();
+        let (underlyings, declared) = match sections.get("underlyings") {
+            Some(node) => self.underlyings(node),
+            None => (Vec::new(), Vec::new()),
+        };
+        let (correlations, correlation_rows) = match sections.get("correlations") {
+            Some(node) => self.correlations(node, &declared),
+            None => (BTreeMap::new(), BTreeMap::new()),
+        };
+        let valuation_date = match sections.get("valuation_date") {
+            Some(node) => self.valuation_date(node),
+            None => {
+                // A date written below a [section] header is reported there instead
+                // (so the sections are read first).
+                let misplaced = self
+                    .errors
+                    .iter()
+                    .any(|d| d.message.starts_with("unknown key `valuation_date`"));
+                if !misplaced {
+                    self.error(
+                        None,
+                        "missing valuation_date".into(),
+                        "add `valuation_date = YYYY-MM-DD` (a TOML date, no quotes) above the first [section]".into(),
+                    );
+                }
+                None
+            }
+        };
+        Some(Market {
+            valuation_date: valuation_date?,
+            rates,
+            underlyings,
+            correlations,
+            correlation_rows,
+        })
+    }
+
+    fn valuation_date(&mut self, node: &Node) -> Option<Date> {
+        let example = "valuation_date = 2026-12-01";
+        match &node.kind {
+            Kind::Date(text) => {
+                if let Some(date) = Date::parse(text) {
+                    return Some(date);
+                }
+                let fix = match text.get(..10).and_then(Date::parse) {
+                    Some(date) => format!("drop the time: valuation_date = {date}"),
+                    None => format!("write a calendar date, e.g. {example}"),
+                };
+                self.error(
+                    node.span,
+                    format!("valuation_date must be a date without a time (got {text})"),
+                    fix,
+                );
+            }
+            Kind::String(text) if Date::parse(text).is_some() => {
+                self.error(
+                    node.span,
+                    "valuation_date must be a TOML date, not a string".into(),
+                    format!("remove the quotes: valuation_date = {text}"),
+                );
+            }
+            other => {
+                let message = format!("valuation_date must be a date (got {})", other.describe());
+                self.error(
+                    node.span,
+                    message,
+                    format!("write it as YYYY-MM-DD without quotes, e.g. {example}"),
+                );
+            }
+        }
+        None
+    }
+
+    fn rates(&mut self, node: &Node) -> BTreeMap<String, f64> {
+        let mut rates = BTreeMap::new();
+        let Some(entries) = self.table(node, "rates", "[rates] with lines like `USD = 0.038`")
+        else {
+            return rates;
+        };
+        for (key, value) in entries {
+            let code = &key.name;
+            if code == "valuation_date" {
+                self.unknown_key(key, "[rates]", &[]);
+                continue;
+            }
+            let path = format!("rates.{code}");
+            if !(code.len() == 3 && code.bytes().all(|b| b.is_ascii_uppercase())) {
+                let fix = if code.len() == 3 && code.bytes().all(|b| b.is_ascii_alphabetic()) {
+                    format!("write the code in capitals: {}", code.to_ascii_uppercase())
+                } else {
+                    "use a three-letter ISO 4217 code such as USD".to_string()
+                };
+                self.error(
+                    key.span,
+                    format!("`{code}` in [rates] is not an ISO 4217 currency code"),
+                    fix,
+                );
+                continue;
+            }
+            let Some(rate) = self.number(value, &path, code) else {
+                continue;
+            };
+            if rate.abs() > 1.0 {
+                let message = format!("{path} must be between -1 and 1 (got {})", show(rate));
+                self.error(value.span, message, percent_fix(code, rate));
+                continue;
+            }
+            rates.insert(code.clone(), rate);
+        }
+        rates
+    }
+
+    /// The valid underlyings, and every name declared (valid or not), so that correlations
+    /// naming a broken underlying aren't reported a second time as naming an unknown one.
+    fn underlyings(&mut self, node: &Node) -> (Vec<(String, Underlying)>, Vec<String>) {
+        let mut valid = Vec::new();
+        let mut declared = Vec::new();
+        let Some(entries) = self.table(node, "underlyings", "[underlyings.NAME] sections") else {
+            return (valid, declared);
+        };
+        for (key, node) in entries {
+            let name = &key.name;
+            if !is_name(name) {
+                self.error(
+                    key.span,
+                    format!("underlying name `{name}` cannot be written in a payoff"),
+                    "use letters, digits and _, starting with a letter, e.g. ZPHX".into(),
+                );
+                continue;
+            }
+            declared.push(name.clone());
+            if let Some(underlying) = self.underlying(key, node) {
+                valid.push((name.clone(), underlying));
+            }
+        }
+        (valid, declared)
+    }
+
+    fn underlying(&mut self, key: &Key, node: &Node) -> Option<Underlying> {
+        let name = &key.name;
+        let example =
+            format!("[underlyings.{name}] with spot, volatility and dividend_yield lines");
+        let entries = self.table(node, &format!("underlyings.{name}"), &example)?;
+        let (mut spot, mut volatility, mut dividend_yield) = (None, None, Some(0.0));
+        let mut broken = false;
+        // A misspelt key is already reported; don't report its field as missing too.
+        let mut misspelt = Vec::new();
+        for (field, value) in entries {
+            let path = format!("underlyings.{name}.{}", field.name);
+            let slot = match field.name.as_str() {
+                "spot" => &mut spot,
+                "volatility" => &mut volatility,
+                "dividend_yield" => &mut dividend_yield,
+                _ => {
+                    if let Some(near) =
+                        self.unknown_key(field, &format!("[underlyings.{name}]"), UNDERLYING_KEYS)
+                    {
+                        misspelt.push(near);
+                    }
+                    broken = true;
+                    continue;
+                }
+            };
+            let Some(x) = self.number(value, &path, &field.name) else {
+                broken = true;
+                *slot = None;
+                continue;
+            };
+            let problem = match field.name.as_str() {
+                "spot" if x <= 0.0 => Some((format!("{path} must be greater than 0 (got {})", show(x)), "a spot price is positive".to_string())),
+                "volatility" if x <= 0.0 => Some((
+                    format!("{path} must be greater than 0 (got {})", show(x)),
+                    "write the annual volatility as a positive fraction, e.g. volatility = 0.25 for 25%".to_string(),
+                )),
+                "volatility" if x > MAX_VOLATILITY => Some((
+                    format!("{path} must be at most {MAX_VOLATILITY} (got {}); it looks like a percentage", show(x)),
+                    percent_fix("volatility", x),
+                )),
+                "dividend_yield" if x.abs() > 1.0 => Some((
+                    format!("{path} must be between -1 and 1 (got {}); it looks like a percentage", show(x)),
+                    percent_fix("dividend_yield", x),
+                )),
+                _ => None,
+            };
+            match problem {
+                Some((message, fix)) => {
+                    self.error(value.span, message, fix);
+                    broken = true;
+                    *slot = None;
+                }
+                None => *slot = Some(x),
+            }
+        }
+        for (field, slot, example) in [
+            ("spot", spot, "spot = 100.0"),
+            ("volatility", volatility, "volatility = 0.25"),
+        ] {
+            let present = entries.iter().any(|(k, _)| k.name == field);
+            if slot.is_none() && !present && !misspelt.contains(&field) {
+                self.error(
+                    key.span.or(node.span),
+                    format!("underlyings.{name} has no {field}"),
+                    format!("add a line such as `{example}` under [underlyings.{name}]"),
+                );
+                broken = true;
+            }
+        }
+        if broken {
+            return None;
+        }
+        Some(Underlying {
+            spot: spot?,
+            volatility: volatility?,
+            dividend_yield: dividend_yield?,
+        })
+    }
+
+    #[allow(clippy::type_complexity)]
+    fn correlations(
+        &mut self,
+        node: &Node,
+        declared: &[String],
+    ) -> (
+        BTreeMap<(String, String), Given>,
+        BTreeMap<String, Option<Span>>,
+    ) {
+        let mut pairs: BTreeMap<(String, String), Given> = BTreeMap::new();
+        let mut rows = BTreeMap::new();
+        let example = "[correlations] with lines like `ZPHX = { QMEN = 0.55 }`";
+        let Some(entries) = self.table(node, "correlations", example) else {
+            return (pairs, rows);
+        };
+        let known: Vec<&str> = declared.iter().map(String::as_str).collect();
+        for (row_key, row) in entries {
+            let a = row_key.name.as_str();
+            let a_known = self.declared(row_key, &format!("correlations.{a}"), &known);
+            let example = format!("`{a} = {{ OTHER = 0.5 }}`");
+            let Some(row_entries) = self.table(row, &format!("correlations.{a}"), &example) else {
+                continue;
+            };
+            if a_known {
+                rows.insert(a.to_string(), row_key.span);
+            }
+            for (col_key, value) in row_entries {
+                let b = col_key.name.as_str();
+                let path = format!("correlations.{a}.{b}");
+                let b_known = self.declared(col_key, &path, &known);
+                let Some(rho) = self.number(value, &path, b) else {
+                    continue;
+                };
+                if !(-1.0..=1.0).contains(&rho) {
+                    let fix = if rho.abs() <= 100.0 {
+                        percent_fix(b, rho)
+                    } else {
+                        "a correlation lies between -1 and 1".to_string()
+                    };
+                    self.error(
+                        value.span,
+                        format!("{path} must be between -1 and 1 (got {})", show(rho)),
+                        fix,
+                    );
+                    continue;
+                }
+                if a == b {
+                    if rho != 1.0 {
+                        self.error(
+                            value.span,
+                            format!(
+                                "{path} is the correlation of {a} with itself, which is 1 (got {})",
+                                show(rho)
+                            ),
+                            format!("remove `{b} = {}`", show(rho)),
+                        );
+                    }
+                    continue;
+                }
+                if !(a_known && b_known) {
+                    continue;
+                }
+                let given = Given {
+                    value: rho,
+                    span: value.span,
+                };
+                match pairs.get(&pair_key(a, b)) {
+                    Some(first) if first.value != rho => {
+                        self.error(
+                            value.span,
+                            format!(
+                                "the correlation of {a} and {b} is given twice with different values ({} and {})",
+                                show(first.value),
+                                show(rho)
+                            ),
+                            "give each pair once, in either order, and delete the other".into(),
+                        );
+                    }
+                    Some(_) => {}
+                    None => {
+                        pairs.insert(pair_key(a, b), given);
+                    }
+                }
+            }
+        }
+        (pairs, rows)
+    }
+
+    /// Whether a name in [correlations] is a declared underlying; reports it if not.
+    fn declared(&mut self, key: &Key, path: &str, known: &[&str]) -> bool {
+        if known.contains(&key.name.as_str()) {
+            return true;
+        }
+        let fix = match closest(&key.name, known.iter().copied()) {
+            Some(near) => format!("did you mean `{near}`?"),
+            None => format!(
+                "define [underlyings.{}] or correct the name (defined: {})",
+                key.name,
+                list_or_none(known)
+            ),
+        };
+        self.error(
+            key.span,
+            format!(
+                "{path} names `{}`, which is not under [underlyings]",
+                key.name
+            ),
+            fix,
+        );
+        false
+    }
+}
+
+/// Names as the payoff language writes them: a letter or `_`, then letters, digits or `_`.
+fn is_name(name: &str) -> bool {
+    let mut chars = name.chars();
+    chars
+        .next()
+        .is_some_and(|c| c.is_ascii_alphabetic() || c == '_')
+        && chars.all(|c| c.is_ascii_alphanumeric() || c == '_')
+}
+
+fn percent_fix(key: &str, value: f64) -> String {
+    let fraction = show(value / 100.0);
+    format!(
+        "write it as a fraction: {fraction} means {}%, so {key} = {fraction}",
+        show(value)
+    )
+}
+
+/// Shortest decimal of a number rounded to 12 places, so `3.8 / 100` shows as 0.038.
+fn show(x: f64) -> String {
+    let rounded = (x * 1e12).round() / 1e12;
+    if rounded.is_finite() {
+        format!("{rounded}")
+    } else {
+        format!("{x}")
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// A TOML tree in which every value and key carries its span.
+//
+// `toml::Spanned<T>` needs the shape known in advance; to report unknown keys and wrong
+// types with their place we read any shape. toml passes spans through serde by the
+// protocol `toml::Spanned` uses: asked for a struct with the names below, it answers with
+// a map of start, end and value. A date comes as a one-entry map under a marker key.
+
+const SPANNED_NAME: &str = "$__serde_spanned_private_Spanned";
+const SPANNED_START: &str = "$__serde_spanned_private_start";
+const SPANNED_END: &str = "$__serde_spanned_private_end";
+const SPANNED_VALUE: &str = "$__serde_spanned_private_value";
+const SPANNED_FIELDS: &[&str] = &[SPANNED_START, SPANNED_END, SPANNED_VALUE];
+const DATE_MARKER: &str = "$__toml_private_datetime";
+
+#[derive(Debug)]
+struct Node {
+    /// `None` for tables TOML creates implicitly (`[a.b]` makes `a`).
+    span: Option<Span>,
+    kind: Kind,
+}
+
+#[derive(Debug)]
+enum Kind {
+    /// Entries in file order.
+    Table(Vec<(Key, Node)>),
+    Integer(i64),
+    Float(f64),
+    Boolean,
+    String(String),
+    /// Any TOML date or date-time, as written.
+    Date(String),
+    Array,
+}
+
+impl Kind {
+    fn describe(&self) -> &'static str {
+        match self {
+            Kind::Table(_) => "a table",
+            Kind::Integer(_) | Kind::Float(_) => "a number",
+            Kind::Boolean => "true or false",
+            Kind::String(_) => "a string",
+            Kind::Date(_) => "a date",
+            Kind::Array => "an array",
+        }
+    }
+}
+
+#[derive(Debug)]
+struct Key {
+    name: String,
+    span: Option<Span>,
+}
+
+impl Node {
+    fn bare(kind: Kind) -> Node {
+        Node { span: None, kind }
+    }
+}
+
+impl<'de> Deserialize<'de> for Node {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        deserializer.deserialize_struct(SPANNED_NAME, SPANNED_FIELDS, NodeVisitor)
+    }
+}
+
+/// A node read without asking for its span: the root, or the value inside a span wrapper
+/// (asking again there would wrap it again, forever).
+struct Bare(Node);
+
+impl<'de> Deserialize<'de> for Bare {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        deserializer.deserialize_any(NodeVisitor).map(Bare)
+    }
+}
+
+struct NodeVisitor;
+
+impl<'de> Visitor<'de> for NodeVisitor {
+    type Value = Node;
+
+    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("a TOML value")
+    }
+
+    fn visit_bool<E>(self, _: bool) -> Result<Node, E> {
+        Ok(Node::bare(Kind::Boolean))
+    }
+
+    fn visit_i64<E>(self, v: i64) -> Result<Node, E> {
+        Ok(Node::bare(Kind::Integer(v)))
+    }
+
+    fn visit_u64<E>(self, v: u64) -> Result<Node, E> {
+        Ok(Node::bare(
+            i64::try_from(v).map_or(Kind::Float(v as f64), Kind::Integer),
+        ))
+    }
+
+    fn visit_f64<E>(self, v: f64) -> Result<Node, E> {
+        Ok(Node::bare(Kind::Float(v)))
+    }
+
+    fn visit_str<E>(self, v: &str) -> Result<Node, E> {
+        Ok(Node::bare(Kind::String(v.to_string())))
+    }
+
+    fn visit_string<E>(self, v: String) -> Result<Node, E> {
+        Ok(Node::bare(Kind::String(v)))
+    }
+
+    fn visit_seq<A: SeqAccess<'de>>(self, mut seq: A) -> Result<Node, A::Error> {
+        // Nothing in a market file is an array; only the fact is kept, for the error.
+        while seq.next_element::<de::IgnoredAny>()?.is_some() {}
+        Ok(Node::bare(Kind::Array))
+    }
+
+    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Node, A::Error> {
+        let Some(first) = map.next_key::<Key>()? else {
+            return Ok(Node::bare(Kind::Table(Vec::new())));
+        };
+        match first.name.as_str() {
+            SPANNED_START => {
+                let start: usize = map.next_value()?;
+                let mut end = start;
+                let mut inner = None;
+                while let Some(key) = map.next_key::<String>()? {
+                    match key.as_str() {
+                        SPANNED_END => end = map.next_value()?,
+                        SPANNED_VALUE => inner = Some(map.next_value::<Bare>()?.0),
+                        other => return Err(de::Error::unknown_field(other, SPANNED_FIELDS)),
+                    }
+                }
+                let mut node = inner.ok_or_else(|| de::Error::missing_field(SPANNED_VALUE))?;
+                node.span = Some(Span::new(start, end));
+                Ok(node)
+            }
+            DATE_MARKER => Ok(Node::bare(Kind::Date(map.next_value()?))),
+            _ => {
+                let mut entries = vec![(first, map.next_value::<Node>()?)];
+                while let Some(key) = map.next_key::<Key>()? {
+                    let value = map.next_value::<Node>()?;
+                    entries.push((key, value));
+                }
+                Ok(Node::bare(Kind::Table(entries)))
+            }
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for Key {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        deserializer.deserialize_struct(SPANNED_NAME, SPANNED_FIELDS, KeyVisitor)
+    }
+}
+
+struct KeyVisitor;
+
+impl<'de> Visitor<'de> for KeyVisitor {
+    type Value = Key;
+
+    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("a TOML key")
+    }
+
+    fn visit_str<E>(self, v: &str) -> Result<Key, E> {
+        Ok(Key {
+            name: v.to_string(),
+            span: None,
+        })
+    }
+
+    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Key, A::Error> {
+        let (mut start, mut end, mut name) = (None, None, None);
+        while let Some(field) = map.next_key::<String>()? {
+            match field.as_str() {
+                SPANNED_START => start = Some(map.next_value::<usize>()?),
+                SPANNED_END => end = Some(map.next_value::<usize>()?),
+                SPANNED_VALUE => name = Some(map.next_value::<String>()?),
+                other => return Err(de::Error::unknown_field(other, SPANNED_FIELDS)),
+            }
+        }
+        let name = name.ok_or_else(|| de::Error::missing_field(SPANNED_VALUE))?;
+        let span = start.zip(end).map(|(s, e)| Span::new(s, e));
+        Ok(Key { name, span })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const DEMO: &str = r#"# pathfold market data
+valuation_date = 2026-12-01          # TOML local date
+
+[rates]                               # continuously compounded, flat, per ISO 4217 currency
+USD = 0.038
+
+[underlyings.ZPHX]
+spot = 4250
+volatility = 0.18                     # annual, lognormal
+dividend_yield = 0.019                # continuous
+
+[underlyings.QMEN]
+spot = 38.40
+volatility = 0.32
+dividend_yield = 0.031
+
+[underlyings.OSMP]
+spot = 112.00
+volatility = 0.26
+dividend_yield = 0.012
+
+[underlyings.VNTL]
+spot = 57.25
+volatility = 0.29
+
+[correlations]                        # each pair once, either order
+ZPHX = { QMEN = 0.55, OSMP = 0.60, VNTL = 0.65 }
+QMEN = { OSMP = 0.40, VNTL = 0.45 }
+VNTL = { OSMP = 0.50 }
+"#;
+
+    fn file() -> &'static Path {
+        Path::new("market.toml")
+    }
+
+    fn errors(text: &str) -> Vec<Diagnostic> {
+        Market::from_toml(text, file()).expect_err("should be refused")
+    }
+
+    /// The single error of `text`, with the text its span covers.
+    fn only_error(text: &str) -> (Diagnostic, String) {
+        let errs = errors(text);
+        assert_eq!(errs.len(), 1, "{errs:#?}");
+        let d = errs.into_iter().next().unwrap();
+        assert_eq!(d.file.as_deref(), Some(file()));
+        let span = d.span.expect("a span");
+        let covered = text[span.start..span.end].to_string();
+        (d, covered)
+    }
+
+    /// The demo file with one line replaced.
+    fn demo_with(line: &str, replacement: &str) -> String {
+        assert!(DEMO.contains(line), "{line}");
+        DEMO.replacen(line, replacement, 1)
+    }
+
+    #[test]
+    fn reads_the_demo_market() {
+        let m = Market::from_toml(DEMO, file()).unwrap();
+        assert_eq!(m.valuation_date, Date::parse("2026-12-01").unwrap());
+        assert_eq!(m.rate("USD"), Some(0.038));
+        assert_eq!(m.rate("EUR"), None);
+        assert_eq!(
+            m.underlying_names().collect::<Vec<_>>(),
+            ["ZPHX", "QMEN", "OSMP", "VNTL"]
+        );
+        assert_eq!(
+            m.underlying("ZPHX"),
+            Some(&Underlying {
+                spot: 4250.0,
+                volatility: 0.18,
+                dividend_yield: 0.019
+            })
+        );
+        assert_eq!(
+            m.underlying("QMEN"),
+            Some(&Underlying {
+                spot: 38.40,
+                volatility: 0.32,
+                dividend_yield: 0.031
+            })
+        );
+        assert_eq!(
+            m.underlying("OSMP"),
+            Some(&Underlying {
+                spot: 112.0,
+                volatility: 0.26,
+                dividend_yield: 0.012
+            })
+        );
+        assert_eq!(
+            m.underlying("VNTL"),
+            Some(&Underlying {
+                spot: 57.25,
+                volatility: 0.29,
+                dividend_yield: 0.0
+            })
+        );
+        assert_eq!(m.correlation("ZPHX", "QMEN"), Some(0.55));
+        assert_eq!(m.correlation("QMEN", "ZPHX"), Some(0.55));
+        assert_eq!(m.correlation("OSMP", "VNTL"), Some(0.50));
+        assert_eq!(m.correlation("OSMP", "OSMP"), Some(1.0));
+        assert_eq!(m.correlation("OSMP", "XXXX"), None);
+        assert_eq!(m.correlation("XXXX", "XXXX"), None);
+        let l = m
+            .cholesky(&["ZPHX", "QMEN", "OSMP", "VNTL"], file())
+            .unwrap();
+        assert_eq!(l.len(), 4);
+        assert!(l
+            .iter()
+            .enumerate()
+            .all(|(i, row)| row[i + 1..].iter().all(|&x| x == 0.0)));
+    }
+
+    #[test]
+    fn refuses_bad_numbers_at_their_place() {
+        let (d, at) = only_error(&demo_with("volatility = 0.32", "volatility = -0.32"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.volatility must be greater than 0 (got -0.32)"
+        );
+        assert_eq!(at, "-0.32");
+        assert!(d.fix.unwrap().contains("positive"));
+
+        let (d, at) = only_error(&demo_with("volatility = 0.32", "volatility = 32"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.volatility must be at most 5 (got 32); it looks like a percentage"
+        );
+        assert_eq!(at, "32");
+        assert_eq!(
+            d.fix.unwrap(),
+            "write it as a fraction: 0.32 means 32%, so volatility = 0.32"
+        );
+
+        let (d, at) = only_error(&demo_with("spot = 38.40", "spot = 0"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.spot must be greater than 0 (got 0)"
+        );
+        assert_eq!(at, "0");
+
+        let (d, at) = only_error(&demo_with("spot = 38.40", "spot = nan"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.spot must be a finite number (got NaN)"
+        );
+        assert_eq!(at, "nan");
+
+        let (d, at) = only_error(&demo_with("spot = 38.40", "spot = \"38.40\""));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.spot must be a number, not a string"
+        );
+        assert_eq!(d.fix.unwrap(), "remove the quotes: spot = 38.40");
+        assert_eq!(at, "\"38.40\"");
+
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "dividend_yield = inf"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.dividend_yield must be a finite number (got inf)"
+        );
+        assert_eq!(at, "inf");
+
+        let (d, at) = only_error(&demo_with("USD = 0.038", "USD = 3.8"));
+        assert_eq!(d.message, "rates.USD must be between -1 and 1 (got 3.8)");
+        assert_eq!(
+            d.fix.unwrap(),
+            "write it as a fraction: 0.038 means 3.8%, so USD = 0.038"
+        );
+        assert_eq!(at, "3.8");
+
+        let (d, at) = only_error(&demo_with("USD = 0.038", "usd = 0.038"));
+        assert_eq!(
+            d.message,
+            "`usd` in [rates] is not an ISO 4217 currency code"
+        );
+        assert_eq!(at, "usd");
+    }
+
+    #[test]
+    fn negative_dividend_yield_is_allowed() {
+        let m = Market::from_toml(
+            &demo_with("dividend_yield = 0.031", "dividend_yield = -0.004"),
+            file(),
+        )
+        .unwrap();
+        assert_eq!(m.underlying("QMEN").unwrap().dividend_yield, -0.004);
+    }
+
+    #[test]
+    fn refuses_unknown_keys_naming_the_allowed_ones() {
+        let (d, at) = only_error(&demo_with("volatility = 0.32", "volatilty = 0.32"));
+        assert_eq!(d.message, "unknown key `volatilty` in [underlyings.QMEN]");
+        assert_eq!(
+            d.fix.unwrap(),
+            "did you mean `volatility`? allowed keys: spot, volatility, dividend_yield"
+        );
+        assert_eq!(at, "volatilty");
+
+        let (d, at) = only_error(&demo_with("[rates]", "[rate]"));
+        assert_eq!(d.message, "unknown key `rate` in the market file");
+        assert!(d.fix.unwrap().starts_with("did you mean `rates`?"));
+        assert_eq!(at, "rate");
+    }
+
+    #[test]
+    fn wrong_shapes_are_reported_not_fatal() {
+        let (d, at) = only_error(&demo_with("spot = 38.40", "spot = 2026-12-01"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.spot must be a number (got a date)"
+        );
+        assert_eq!(at, "2026-12-01");
+
+        let (d, _) = only_error(&demo_with("spot = 38.40", "spot = [38.40]"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.spot must be a number (got an array)"
+        );
+
+        let text = demo_with("[rates]", "rates = true\n[other_rates]").replace("USD = 0.038\n", "");
+        let errs = errors(&text);
+        assert_eq!(errs.len(), 2, "{errs:#?}");
+        assert_eq!(errs[0].message, "rates must be a table (got true or false)");
+        assert_eq!(
+            errs[1].message,
+            "unknown key `other_rates` in the market file"
+        );
+
+        let with_time = "valuation_date = 2026-12-01T09:30:00";
+        let (d, at) = only_error(&demo_with("valuation_date = 2026-12-01", with_time));
+        let message = "valuation_date must be a date without a time (got 2026-12-01T09:30:00)";
+        assert_eq!(d.message, message);
+        assert_eq!(d.fix.unwrap(), "drop the time: valuation_date = 2026-12-01");
+        assert_eq!(at, "2026-12-01T09:30:00");
+
+        // Written below [rates], the date belongs to that table: one error saying so.
+        let text = demo_with("valuation_date = 2026-12-01", "")
+            .replace("USD = 0.038", "USD = 0.038\nvaluation_date = 2026-12-01");
+        let (d, at) = only_error(&text);
+        assert_eq!(d.message, "unknown key `valuation_date` in [rates]");
+        let fix = d.fix.unwrap();
+        assert!(fix.starts_with("move `valuation_date = ...` above the first [section]"));
+        assert_eq!(at, "valuation_date");
+
+        let errs = errors(&demo_with("USD = 0.038", "USD = 0.038\nUSD = 0.04"));
+        assert_eq!(errs.len(), 1);
+        assert!(
+            errs[0].message.contains("duplicate key"),
+            "{}",
+            errs[0].message
+        );
+
+        let missing = Path::new("/nonexistent/market.toml");
+        let errs = Market::load(missing).unwrap_err();
+        assert!(errs[0].message.starts_with("cannot read the market file"));
+        assert_eq!(errs[0].file.as_deref(), Some(missing));
+    }
+
+    #[test]
+    fn missing_fields() {
+        let (d, at) = only_error(&demo_with("spot = 38.40\n", ""));
+        assert_eq!(d.message, "underlyings.QMEN has no spot");
+        assert_eq!(at, "QMEN");
+
+        let errs = errors(&demo_with("valuation_date = 2026-12-01", ""));
+        assert_eq!(errs.len(), 1);
+        assert_eq!(errs[0].message, "missing valuation_date");
+        assert_eq!(errs[0].span, None);
+
+        let (d, at) = only_error(&demo_with(
+            "valuation_date = 2026-12-01",
+            "valuation_date = \"2026-12-01\"",
+        ));
+        assert_eq!(
+            d.message,
+            "valuation_date must be a TOML date, not a string"
+        );
+        assert_eq!(at, "\"2026-12-01\"");
+    }
+
+    #[test]
+    fn refuses_bad_correlations() {
+        let (d, at) = only_error(&demo_with("QMEN = { OSMP = 0.40,", "QMEN = { OSMP = 1.40,"));
+        assert_eq!(
+            d.message,
+            "correlations.QMEN.OSMP must be between -1 and 1 (got 1.4)"
+        );
+        assert_eq!(at, "1.40");
+
+        let (d, at) = only_error(&demo_with(
+            "VNTL = { OSMP = 0.50 }",
+            "VNTL = { OSMP = 0.50, QMEN = 0.46 }",
+        ));
+        assert_eq!(
+            d.message,
+            "the correlation of VNTL and QMEN is given twice with different values (0.45 and 0.46)"
+        );
+        assert_eq!(at, "0.46");
+
+        // The same value twice is harmless.
+        Market::from_toml(
+            &demo_with(
+                "VNTL = { OSMP = 0.50 }",
+                "VNTL = { OSMP = 0.50, QMEN = 0.45 }",
+            ),
+            file(),
+        )
+        .unwrap();
+
+        let (d, at) = only_error(&demo_with(
+            "VNTL = { OSMP = 0.50 }",
+            "VNTL = { OSMP = 0.50, VNTX = 0.3 }",
+        ));
+        assert_eq!(
+            d.message,
+            "correlations.VNTL.VNTX names `VNTX`, which is not under [underlyings]"
+        );
+        assert_eq!(d.fix.unwrap(), "did you mean `VNTL`?");
+        assert_eq!(at, "VNTX");
+
+        let (d, at) = only_error(&demo_with(
+            "VNTL = { OSMP = 0.50 }",
+            "VNTL = { OSMP = 0.50, VNTL = 0.9 }",
+        ));
+        assert_eq!(
+            d.message,
+            "correlations.VNTL.VNTL is the correlation of VNTL with itself, which is 1 (got 0.9)"
+        );
+        assert_eq!(at, "0.9");
+    }
+
+    #[test]
+    fn collects_every_error_of_a_file() {
+        let text = demo_with("volatility = 0.32", "volatility = -0.32")
+            .replace("USD = 0.038", "USD = 3.8");
+        let errs = errors(&text);
+        assert_eq!(errs.len(), 2, "{errs:#?}");
+        assert!(errs[0].message.starts_with("rates.USD"));
+        assert!(errs[1].message.starts_with("underlyings.QMEN.volatility"));
+    }
+
+    #[test]
+    fn syntax_errors_carry_toml_place() {
+        let text = demo_with("USD = 0.038", "USD = = 0.038");
+        let errs = errors(&text);
+        assert_eq!(errs.len(), 1);
+        let span = errs[0].span.expect("a span");
+        assert!(text[..span.start].ends_with("USD = "), "{span:?}");
+        assert!(!errs[0].message.is_empty());
+    }
+
+    #[test]
+    fn cholesky_of_two_reproduces_the_matrix() {
+        let rho = -0.37;
+        let text = format!(
+            "valuation_date = 2026-12-01\n[underlyings.A]\nspot = 1\nvolatility = 0.2\n[underlyings.B]\nspot = 2\nvolatility = 0.3\n[correlations]\nB = {{ A = {rho} }}\n"
+        );
+        let m = Market::from_toml(&text, file()).unwrap();
+        let l = m.cholesky(&["A", "B"], file()).unwrap();
+        let c = [[1.0, rho], [rho, 1.0]];
+        for i in 0..2 {
+            for j in 0..2 {
+                let llt: f64 = (0..2).map(|k| l[i][k] * l[j][k]).sum();
+                assert!((llt - c[i][j]).abs() < 1e-14, "({i},{j}): {llt}");
+            }
+        }
+        assert_eq!(l[0][1], 0.0);
+    }
+
+    #[test]
+    fn refuses_a_matrix_that_is_not_positive_definite() {
+        let text = "valuation_date = 2026-12-01\n\
+            [underlyings.A]\nspot = 1\nvolatility = 0.2\n\
+            [underlyings.B]\nspot = 1\nvolatility = 0.2\n\
+            [underlyings.C]\nspot = 1\nvolatility = 0.2\n\
+            [correlations]\nA = { B = 0.9, C = 0.9 }\nB = { C = -0.9 }\n";
+        let m = Market::from_toml(text, file()).unwrap();
+        let d = m.cholesky(&["A", "B", "C"], file()).unwrap_err();
+        assert!(
+            d.message.contains("not positive definite, failing at C"),
+            "{}",
+            d.message
+        );
+        assert!(d.message.contains("the pair C–B (-0.9)"), "{}", d.message);
+        let span = d.span.unwrap();
+        assert_eq!(&text[span.start..span.end], "-0.9");
+        assert!(d.fix.unwrap().starts_with("check C–B first"));
+    }
+
+    #[test]
+    fn names_a_missing_pair_and_where_to_add_it() {
+        let text = demo_with(
+            "QMEN = { OSMP = 0.40, VNTL = 0.45 }",
+            "QMEN = { OSMP = 0.40 }",
+        );
+        let m = Market::from_toml(&text, file()).unwrap();
+        let d = m.cholesky(&["ZPHX", "QMEN", "VNTL"], file()).unwrap_err();
+        assert_eq!(d.message, "no correlation given between QMEN and VNTL");
+        assert_eq!(
+            d.fix.as_deref(),
+            Some("under [correlations], add `VNTL = <correlation>` inside the braces of the `QMEN = { ... }` line")
+        );
+
+        let text = demo_with("QMEN = { OSMP = 0.40, VNTL = 0.45 }\n", "")
+            .replace("VNTL = { OSMP = 0.50 }\n", "");
+        let m = Market::from_toml(&text, file()).unwrap();
+        let d = m.cholesky(&["QMEN", "VNTL"], file()).unwrap_err();
+        assert_eq!(
+            d.fix.as_deref(),
+            Some("under [correlations], add the line `QMEN = { VNTL = <correlation> }`")
+        );
+
+        let d = m.cholesky(&["QMEN", "VNTX"], file()).unwrap_err();
+        assert_eq!(d.message, "no underlying `VNTX` in the market file");
+    }
+
+    #[test]
+    fn renders_with_a_caret() {
+        let text = demo_with("volatility = 0.32", "volatility = -0.32");
+        let d = &errors(&text)[0];
+        let shown = d.render(Some(&text));
+        assert!(
+            shown.starts_with("market.toml:14:14: underlyings.QMEN.volatility"),
+            "{shown}"
+        );
+        assert!(shown.contains("^^^^^"), "{shown}");
+    }
+}
