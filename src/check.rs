@@ -90,11 +90,17 @@ pub enum TKind {
     If(Box<TExpr>, Box<TExpr>, Box<TExpr>),
     Func(Func, Vec<TExpr>),
     /// `level(X)` / `level(X, d)`: the level of underlying X at the current date or at d.
-    Level { asset: usize, at: Option<DateRef> },
+    Level {
+        asset: usize,
+        at: Option<DateRef>,
+    },
     /// `initial(X)`: the level at the start date.
     Initial(usize),
     /// `perf(X)` / `perf(X, d)`: level / initial.
-    Perf { asset: usize, at: Option<DateRef> },
+    Perf {
+        asset: usize,
+        at: Option<DateRef>,
+    },
     /// `position(t)`: 1 for the first date of the loop's schedule, 2 for the next...
     Position,
     /// `years(d)`: ACT/365 years from the start date to d.
@@ -102,7 +108,14 @@ pub enum TKind {
     /// `average(expr over s)` and friends, over the dates of s up to the current date.
     Aggregate(Aggregate, Box<TExpr>, usize),
     /// `touched(perf(X) <= 65% from a to b)`: continuous monitoring between a and b.
-    Touched { asset: usize, direction: Direction, level: f64, relative: bool, from: DateRef, to: DateRef },
+    Touched {
+        asset: usize,
+        direction: Direction,
+        level: f64,
+        relative: bool,
+        from: DateRef,
+        to: DateRef,
+    },
 }
 
 /// A checked statement.
@@ -238,8 +251,8 @@ impl Default for Product {
 }
 
 const FUNCTIONS: &[&str] = &[
-    "min", "max", "abs", "exp", "log", "sqrt", "floor", "level", "initial", "perf", "position",
-    "years", "first", "last",
+    "min", "max", "abs", "exp", "log", "sqrt", "floor", "level", "initial", "perf", "position", "years", "first",
+    "last",
 ];
 
 impl Checker {
@@ -335,7 +348,11 @@ impl Checker {
                     self.notional_seen = true;
                     if let Some((v, ty)) = self.constant(expr, "the notional") {
                         if ty != Ty::Number || !(v > 0.0 && v.is_finite()) {
-                            self.error(expr.span, "the notional must be a positive number", "write for example `notional 1_000_000`");
+                            self.error(
+                                expr.span,
+                                "the notional must be a positive number",
+                                "write for example `notional 1_000_000`",
+                            );
                         } else {
                             self.product.notional = v;
                         }
@@ -352,7 +369,8 @@ impl Checker {
                 None if names.is_empty() => "this payoff declares no `param`".to_string(),
                 None => format!("this payoff's parameters: {}", names.join(", ")),
             };
-            self.errors.push(Diagnostic::new(format!("`--set {}`: no parameter named `{}`", o.name, o.name)).with_fix(fix));
+            self.errors
+                .push(Diagnostic::new(format!("`--set {}`: no parameter named `{}`", o.name, o.name)).with_fix(fix));
         }
         if !self.seen.contains_key("underlyings") {
             self.errors.push(
@@ -380,7 +398,11 @@ impl Checker {
                     has_block = true;
                     let Some(s) = self.schedule_ref(schedule) else { continue };
                     if self.globals.contains_key(&var.text) {
-                        self.error(var.span, format!("the loop date `{}` hides a name defined above", var.text), "pick another name for the loop date, such as `t`");
+                        self.error(
+                            var.span,
+                            format!("the loop date `{}` hides a name defined above", var.text),
+                            "pick another name for the loop date, such as `t`",
+                        );
                     }
                     self.loop_var = Some((var.text.clone(), s));
                     let body = self.block(body);
@@ -440,8 +462,15 @@ impl Checker {
         if let (Some((_, ty)), Some(dty)) = (v, default_ty) {
             if ty != dty {
                 self.errors.push(
-                    Diagnostic::new(format!("`--set {}={}` gives {} but `{}` is {}", o.name, o.value, ty.describe(), o.name, dty.describe()))
-                        .with_fix(format!("give `{}` {}", o.name, dty.describe())),
+                    Diagnostic::new(format!(
+                        "`--set {}={}` gives {} but `{}` is {}",
+                        o.name,
+                        o.value,
+                        ty.describe(),
+                        o.name,
+                        dty.describe()
+                    ))
+                    .with_fix(format!("give `{}` {}", o.name, dty.describe())),
                 );
                 return None;
             }
@@ -462,7 +491,11 @@ impl Checker {
         match e.kind {
             TKind::Const(v) if e.ty != Ty::Date => Some((v, e.ty)),
             _ if e.ty == Ty::Date => {
-                self.error(expr.span, format!("{what} must be a number or a flag, not a date"), "use a number such as 100% or 1_000_000");
+                self.error(
+                    expr.span,
+                    format!("{what} must be a number or a flag, not a date"),
+                    "use a number such as 100% or 1_000_000",
+                );
                 None
             }
             _ => {
@@ -480,7 +513,11 @@ impl Checker {
         match self.globals.get(&name.text) {
             Some((Global::Schedule(s), _)) => Some(*s),
             Some(_) => {
-                self.error(name.span, format!("`{}` is not a schedule", name.text), "name a schedule declared with `dates NAME = ...`");
+                self.error(
+                    name.span,
+                    format!("`{}` is not a schedule", name.text),
+                    "name a schedule declared with `dates NAME = ...`",
+                );
                 None
             }
             None => {
@@ -511,7 +548,11 @@ impl Checker {
         for stmt in stmts {
             if let Some(end) = ended {
                 let span = stmt_span(stmt);
-                self.error(span, "this statement never runs: the product has ended just before", format!("move it above the `end` at byte {}", end.start));
+                self.error(
+                    span,
+                    "this statement never runs: the product has ended just before",
+                    format!("move it above the `end` at byte {}", end.start),
+                );
                 ended = None;
             }
             if let Stmt::End(span) = stmt {
@@ -526,15 +567,25 @@ impl Checker {
     }
 
     fn lookup_let(&self, name: &str) -> Option<(usize, Ty)> {
-        self.scopes.iter().rev().flat_map(|s| s.iter().rev()).find(|(n, _, _)| n == name).map(|&(_, slot, ty)| (slot, ty))
+        self.scopes
+            .iter()
+            .rev()
+            .flat_map(|s| s.iter().rev())
+            .find(|(n, _, _)| n == name)
+            .map(|&(_, slot, ty)| (slot, ty))
     }
 
     fn stmt(&mut self, stmt: &Stmt) -> Option<TStmt> {
         match stmt {
             Stmt::Let(name, expr) => {
                 let e = self.expr(expr)?;
-                if self.globals.contains_key(&name.text) || self.loop_var.as_ref().is_some_and(|(v, _)| *v == name.text) {
-                    self.error(name.span, format!("`let {}` hides a name defined above", name.text), "pick another name");
+                if self.globals.contains_key(&name.text) || self.loop_var.as_ref().is_some_and(|(v, _)| *v == name.text)
+                {
+                    self.error(
+                        name.span,
+                        format!("`let {}` hides a name defined above", name.text),
+                        "pick another name",
+                    );
                     return None;
                 }
                 let slot = self.product.lets;
@@ -551,7 +602,10 @@ impl Checker {
                         self.error(
                             name.span,
                             format!("`{}` is not a state, so it cannot change", name.text),
-                            format!("declare it at the top with `state {} = 0`; use `let` for a value that does not change", name.text),
+                            format!(
+                                "declare it at the top with `state {} = 0`; use `let` for a value that does not change",
+                                name.text
+                            ),
                         );
                         return None;
                     }
@@ -603,7 +657,11 @@ impl Checker {
         match e.kind {
             TKind::Date(d) => Some(d),
             _ => {
-                self.error(expr.span, format!("expected a date, but this is {}", e.ty.describe()), "write a date such as 2027-12-01, 1y, start, t, first(s) or last(s)");
+                self.error(
+                    expr.span,
+                    format!("expected a date, but this is {}", e.ty.describe()),
+                    "write a date such as 2027-12-01, 1y, start, t, first(s) or last(s)",
+                );
                 None
             }
         }
@@ -622,7 +680,11 @@ impl Checker {
             self.error(arg.span, format!("`{n}` is not an underlying of this payoff"), fix);
             return None;
         }
-        self.error(arg.span, format!("`{func}` takes an underlying's name here"), format!("write for example `{func}(ZPHX)`"));
+        self.error(
+            arg.span,
+            format!("`{func}` takes an underlying's name here"),
+            format!("write for example `{func}(ZPHX)`"),
+        );
         None
     }
 
@@ -655,7 +717,11 @@ impl Checker {
                 let (c, a, b) = (c?, a?, b?);
                 let c = self.expect(c, Ty::Flag, "the condition of `if`")?;
                 if a.ty != b.ty || a.ty == Ty::Date {
-                    self.error(span, format!("`if` gives {} on one side and {} on the other", a.ty.describe(), b.ty.describe()), "make both branches numbers (or both flags)");
+                    self.error(
+                        span,
+                        format!("`if` gives {} on one side and {} on the other", a.ty.describe(), b.ty.describe()),
+                        "make both branches numbers (or both flags)",
+                    );
                     return None;
                 }
                 let ty = a.ty;
@@ -695,7 +761,11 @@ impl Checker {
             Some(Global::State(s)) => Some(TExpr { kind: TKind::State(s), ty: Ty::Number, span }),
             Some(Global::Schedule(s)) => Some(TExpr { kind: TKind::Date(DateRef::Only(s)), ty: Ty::Date, span }),
             Some(Global::Underlying(_)) => {
-                self.error(span, format!("`{n}` is an underlying, not a value"), format!("write `perf({n})` for its performance or `level({n})` for its level"));
+                self.error(
+                    span,
+                    format!("`{n}` is an underlying, not a value"),
+                    format!("write `perf({n})` for its performance or `level({n})` for its level"),
+                );
                 None
             }
             None => {
@@ -741,7 +811,11 @@ impl Checker {
         let f = name.text.as_str();
         let arity = |c: &mut Checker, lo: usize, hi: usize, usage: &str| -> bool {
             if args.len() < lo || args.len() > hi {
-                c.error(span, format!("`{f}` takes {}, not {}", count_words(lo, hi), args.len()), format!("write `{usage}`"));
+                c.error(
+                    span,
+                    format!("`{f}` takes {}, not {}", count_words(lo, hi), args.len()),
+                    format!("write `{usage}`"),
+                );
                 false
             } else {
                 true
@@ -764,7 +838,11 @@ impl Checker {
                 }
                 if out.iter().all(|e| matches!(e.kind, TKind::Const(_))) {
                     let vals = out.iter().map(|e| if let TKind::Const(v) = e.kind { v } else { 0.0 });
-                    let v = if func == Func::Min { vals.fold(f64::INFINITY, f64::min) } else { vals.fold(f64::NEG_INFINITY, f64::max) };
+                    let v = if func == Func::Min {
+                        vals.fold(f64::INFINITY, f64::min)
+                    } else {
+                        vals.fold(f64::NEG_INFINITY, f64::max)
+                    };
                     return number(TKind::Const(v));
                 }
                 number(TKind::Func(func, out))
@@ -814,9 +892,14 @@ impl Checker {
                 if !arity(self, 1, 1, "position(t)") {
                     return None;
                 }
-                let ok = matches!(&args[0].kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
+                let ok =
+                    matches!(&args[0].kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
                 if !ok {
-                    self.error(args[0].span, "`position` takes the date of the enclosing `for each` loop", "write `position(t)` inside `for each t in SCHEDULE { ... }`");
+                    self.error(
+                        args[0].span,
+                        "`position` takes the date of the enclosing `for each` loop",
+                        "write `position(t)` inside `for each t in SCHEDULE { ... }`",
+                    );
                     return None;
                 }
                 number(TKind::Position)
@@ -832,7 +915,11 @@ impl Checker {
                     return None;
                 }
                 let ExprKind::Name(n) = &args[0].kind else {
-                    self.error(args[0].span, format!("`{f}` takes a schedule's name"), format!("write `{f}(quarterly)`"));
+                    self.error(
+                        args[0].span,
+                        format!("`{f}` takes a schedule's name"),
+                        format!("write `{f}(quarterly)`"),
+                    );
                     return None;
                 };
                 let s = self.schedule_ref(&Name { text: n.clone(), span: args[0].span })?;
@@ -850,7 +937,13 @@ impl Checker {
         }
     }
 
-    fn touched(&mut self, condition: &syntax::Expr, from: &syntax::Expr, to: &syntax::Expr, span: Span) -> Option<TExpr> {
+    fn touched(
+        &mut self,
+        condition: &syntax::Expr,
+        from: &syntax::Expr,
+        to: &syntax::Expr,
+        span: Span,
+    ) -> Option<TExpr> {
         let usage = "write `touched(perf(X) <= 65% from start to last(s))` or with `>=` for an up barrier";
         let ExprKind::Binary(op, lhs, rhs) = &condition.kind else {
             self.error(condition.span, "`touched` needs a barrier condition on one underlying", usage);
@@ -862,7 +955,11 @@ impl Checker {
             (BinaryOp::Le | BinaryOp::Lt, _, ExprKind::Call(..)) => (rhs, lhs, Direction::Up),
             (BinaryOp::Ge | BinaryOp::Gt, _, ExprKind::Call(..)) => (rhs, lhs, Direction::Down),
             _ => {
-                self.error(condition.span, "`touched` needs `perf(X)` or `level(X)` compared with a barrier level", usage);
+                self.error(
+                    condition.span,
+                    "`touched` needs `perf(X)` or `level(X)` compared with a barrier level",
+                    usage,
+                );
                 return None;
             }
         };
@@ -876,7 +973,11 @@ impl Checker {
             }
         };
         if args.len() != 1 {
-            self.error(observed.span, "inside `touched`, the level is watched over the whole interval, so give no date", usage);
+            self.error(
+                observed.span,
+                "inside `touched`, the level is watched over the whole interval, so give no date",
+                usage,
+            );
             return None;
         }
         let asset = self.asset_arg(&args[0], &f.text);

@@ -17,7 +17,16 @@ pub fn black_scholes(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, s
     }
 }
 #[allow(clippy::too_many_arguments)]
-pub fn geometric_asian_discrete(kind: OptionKind, s: f64, k: f64, times: &[f64], t_pay: f64, r: f64, b: f64, sigma: f64) -> f64 {
+pub fn geometric_asian_discrete(
+    kind: OptionKind,
+    s: f64,
+    k: f64,
+    times: &[f64],
+    t_pay: f64,
+    r: f64,
+    b: f64,
+    sigma: f64,
+) -> f64 {
     let n = times.len() as f64;
     let mean = s.ln() + (b - 0.5 * sigma * sigma) * times.iter().sum::<f64>() / n;
     let mut var = 0.0;
@@ -30,7 +39,10 @@ pub fn geometric_asian_discrete(kind: OptionKind, s: f64, k: f64, times: &[f64],
     let df = (-r * t_pay).exp();
     let fwd = (mean + 0.5 * var).exp();
     if k <= 0.0 {
-        return match kind { OptionKind::Call => df * (fwd - k), OptionKind::Put => 0.0 };
+        return match kind {
+            OptionKind::Call => df * (fwd - k),
+            OptionKind::Put => 0.0,
+        };
     }
     let sd = var.sqrt();
     let d2 = (mean - k.ln()) / sd;

@@ -181,10 +181,9 @@ pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path
             }),
             None => {
                 let known: Vec<&str> = market.underlying_names().collect();
-                errors.push(
-                    Diagnostic::at(u.span, format!("the market has no underlying `{}`", u.text))
-                        .with_fix(format!("add [underlyings.{}] to the market file, or use one it has: {}", u.text, known.join(", "))),
-                );
+                errors.push(Diagnostic::at(u.span, format!("the market has no underlying `{}`", u.text)).with_fix(
+                    format!("add [underlyings.{}] to the market file, or use one it has: {}", u.text, known.join(", ")),
+                ));
             }
         }
     }
@@ -357,17 +356,15 @@ impl<'p> Compiler<'p> {
             let dates = match &def.schedule.kind {
                 ScheduleKind::List(terms) => terms.iter().filter_map(|&(t, s)| self.term(t, s)).collect::<Vec<_>>(),
                 ScheduleKind::Every { count, unit, from, to } => self.every(*count, *unit, *from, *to),
-                ScheduleKind::Steps { n, from, to } => {
-                    match (self.term(from.0, from.1), self.term(to.0, to.1)) {
-                        (Some(a), Some(b)) => (1..=*n)
-                            .map(|i| {
-                                let t = a.0 + (b.0 - a.0) * f64::from(i) / f64::from(*n);
-                                (t, if i == *n { b.1 } else { None })
-                            })
-                            .collect(),
-                        _ => Vec::new(),
-                    }
-                }
+                ScheduleKind::Steps { n, from, to } => match (self.term(from.0, from.1), self.term(to.0, to.1)) {
+                    (Some(a), Some(b)) => (1..=*n)
+                        .map(|i| {
+                            let t = a.0 + (b.0 - a.0) * f64::from(i) / f64::from(*n);
+                            (t, if i == *n { b.1 } else { None })
+                        })
+                        .collect(),
+                    _ => Vec::new(),
+                },
                 ScheduleKind::BusinessDays { from, to } => match (from.0, to.0) {
                     (DateTerm::Iso(a), DateTerm::Iso(b)) => {
                         if self.term(from.0, from.1).is_none() {
@@ -385,24 +382,40 @@ impl<'p> Compiler<'p> {
                         }
                     }
                     _ => {
-                        self.error(span, "business days need calendar dates at both ends", "write for example `business days from 2026-12-02 to 2027-12-01`");
+                        self.error(
+                            span,
+                            "business days need calendar dates at both ends",
+                            "write for example `business days from 2026-12-02 to 2027-12-01`",
+                        );
                         Vec::new()
                     }
                 },
             };
             if dates.is_empty() && self.errors.is_empty() {
-                self.error(span, format!("the schedule `{}` holds no dates", def.name), "check that its first date is not after its last");
+                self.error(
+                    span,
+                    format!("the schedule `{}` holds no dates", def.name),
+                    "check that its first date is not after its last",
+                );
             }
             for w in dates.windows(2) {
                 if w[1].0 <= w[0].0 + TIME_EPS {
                     let (a, b) = (label(w[0]), label(w[1]));
-                    self.error(span, format!("the schedule `{}` is not in increasing order: {b} comes after {a}", def.name), "list the dates from earliest to latest, each once");
+                    self.error(
+                        span,
+                        format!("the schedule `{}` is not in increasing order: {b} comes after {a}", def.name),
+                        "list the dates from earliest to latest, each once",
+                    );
                     break;
                 }
             }
             if let Some(first) = dates.first() {
                 if first.0 < -TIME_EPS {
-                    self.error(span, format!("the schedule `{}` starts before the valuation date", def.name), "use dates on or after the valuation date");
+                    self.error(
+                        span,
+                        format!("the schedule `{}` starts before the valuation date", def.name),
+                        "use dates on or after the valuation date",
+                    );
                 }
             }
             self.schedules.push(dates);
@@ -504,7 +517,8 @@ impl<'p> Compiler<'p> {
         runs.sort_by(|x, y| x.0.total_cmp(&y.0).then(x.1.cmp(&y.1)));
         if runs.is_empty() && self.errors.is_empty() {
             self.errors.push(
-                Diagnostic::new("no block ever runs: its schedules hold no dates").with_fix("give the `for each` loop a schedule with dates"),
+                Diagnostic::new("no block ever runs: its schedules hold no dates")
+                    .with_fix("give the `for each` loop a schedule with dates"),
             );
         }
         for (_, b, w, position) in runs {
@@ -625,7 +639,15 @@ impl<'p> Compiler<'p> {
                 let pay_at = match on {
                     Some((d, dspan)) => match self.resolve(*d, *dspan, Some(&now)) {
                         Some(w) if w.0 + TIME_EPS < now.event.0 => {
-                            self.error(*dspan, format!("the payment date {} is before the date the amount is known ({})", label(w), label(now.event)), "pay on or after the observation date");
+                            self.error(
+                                *dspan,
+                                format!(
+                                    "the payment date {} is before the date the amount is known ({})",
+                                    label(w),
+                                    label(now.event)
+                                ),
+                                "pay on or after the observation date",
+                            );
                             return false;
                         }
                         Some(w) => w,
@@ -681,7 +703,15 @@ impl<'p> Compiler<'p> {
 
     fn initial(&mut self, asset: usize, span: Span, now: &Now) -> Option<V> {
         if self.start.0 > self.grid[now.idx] + TIME_EPS {
-            self.error(span, format!("the initial fixing on {} is not known yet on {}", label(self.start), label((self.grid[now.idx], None))), "use levels only on or after the start date");
+            self.error(
+                span,
+                format!(
+                    "the initial fixing on {} is not known yet on {}",
+                    label(self.start),
+                    label((self.grid[now.idx], None))
+                ),
+                "use levels only on or after the start date",
+            );
             return None;
         }
         let idx = self.grid_index(self.start.0);
@@ -694,7 +724,11 @@ impl<'p> Compiler<'p> {
         let Some(d) = at else { return Some(now.idx) };
         let w = self.resolve(d, span, Some(now))?;
         if w.0 > self.grid[now.idx] + TIME_EPS {
-            self.error(span, format!("the level on {} is not known yet on {}", label(w), label(now.event)), "read levels only on or before the date of the block (or of the aggregate's fixing)");
+            self.error(
+                span,
+                format!("the level on {} is not known yet on {}", label(w), label(now.event)),
+                "read levels only on or before the date of the block (or of the aggregate's fixing)",
+            );
             return None;
         }
         Some(self.grid_index(w.0))
@@ -806,15 +840,31 @@ impl<'p> Compiler<'p> {
                 let a = self.resolve(*from, e.span, Some(&now))?;
                 let b = self.resolve(*to, e.span, Some(&now))?;
                 if b.0 < a.0 {
-                    self.error(e.span, format!("the monitoring window ends ({}) before it starts ({})", label(b), label(a)), "write the earlier date after `from`");
+                    self.error(
+                        e.span,
+                        format!("the monitoring window ends ({}) before it starts ({})", label(b), label(a)),
+                        "write the earlier date after `from`",
+                    );
                     return None;
                 }
                 if b.0 > now.event.0 + TIME_EPS {
-                    self.error(e.span, format!("whether the barrier was touched up to {} is not known yet on {}", label(b), label(now.event)), "end the monitoring window on or before the date of the block");
+                    self.error(
+                        e.span,
+                        format!(
+                            "whether the barrier was touched up to {} is not known yet on {}",
+                            label(b),
+                            label(now.event)
+                        ),
+                        "end the monitoring window on or before the date of the block",
+                    );
                     return None;
                 }
                 if *relative && a.0 + TIME_EPS < self.start.0 {
-                    self.error(e.span, "a barrier relative to the initial level cannot be watched before the start date", "begin the window at `start` or later");
+                    self.error(
+                        e.span,
+                        "a barrier relative to the initial level cannot be watched before the start date",
+                        "begin the window at `start` or later",
+                    );
                     return None;
                 }
                 let m = Monitor {
@@ -838,11 +888,16 @@ impl<'p> Compiler<'p> {
     }
 
     fn aggregate(&mut self, agg: Aggregate, body: &TExpr, s: usize, span: Span, now: Now) -> Option<V> {
-        let dates: Vec<When_> = self.schedules[s].iter().copied().filter(|w| w.0 <= self.grid[now.idx] + TIME_EPS).collect();
+        let dates: Vec<When_> =
+            self.schedules[s].iter().copied().filter(|w| w.0 <= self.grid[now.idx] + TIME_EPS).collect();
         if dates.is_empty() {
             let name = &self.product.schedules[s].name;
             let msg = format!("`{}` over `{name}` has no fixing on or before {}", agg.name(), label(now.event));
-            self.error(span, msg, "aggregates see only the dates of the schedule up to the date of the block; evaluate it later");
+            self.error(
+                span,
+                msg,
+                "aggregates see only the dates of the schedule up to the date of the block; evaluate it later",
+            );
             return None;
         }
         if agg == Aggregate::Average {
@@ -888,7 +943,9 @@ impl<'p> Compiler<'p> {
                 self.ops.push(Op::Acc { op: acc_op, dst: acc, src: Src::Const(f) });
             }
         }
-        let result = if started { V { src: Src::Reg(acc), temp: true } } else {
+        let result = if started {
+            V { src: Src::Reg(acc), temp: true }
+        } else {
             self.free.push(acc);
             V::konst(folded.unwrap_or(0.0))
         };

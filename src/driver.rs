@@ -148,7 +148,12 @@ fn price_command(args: &PriceArgs) -> ExitCode {
 }
 
 /// Parses, checks, compiles and prices one payoff file.
-pub fn price_file(file: &Path, market: Option<&Path>, overrides: &[Override], settings: &Settings) -> Result<Priced, Failure> {
+pub fn price_file(
+    file: &Path,
+    market: Option<&Path>,
+    overrides: &[Override],
+    settings: &Settings,
+) -> Result<Priced, Failure> {
     let source = fs::read_to_string(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
@@ -181,7 +186,8 @@ pub fn price_file(file: &Path, market: Option<&Path>, overrides: &[Override], se
             Failure::input(in_file(ds), Some(source.clone()))
         }
     })?;
-    let estimate = sim::simulate(&program, settings).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+    let estimate =
+        sim::simulate(&program, settings).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
     Ok(Priced {
         file: file.display().to_string(),
         market_file: market_path.display().to_string(),

@@ -58,7 +58,8 @@ pub fn write_one(out: &mut dyn Write, p: &Priced, format: Format) -> io::Result<
 pub fn to_json(p: &Priced) -> serde_json::Value {
     let e = &p.estimate;
     let (lo, hi) = p.interval();
-    let params: serde_json::Map<String, serde_json::Value> = p.params.iter().map(|(n, v)| (n.clone(), json!(v))).collect();
+    let params: serde_json::Map<String, serde_json::Value> =
+        p.params.iter().map(|(n, v)| (n.clone(), json!(v))).collect();
     json!({
         "file": p.file,
         "market_file": p.market_file,
@@ -101,7 +102,12 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     }
     writeln!(out)?;
     writeln!(out, "  price             {} {ccy}   ({:.4}% of notional)", group(e.price, 2), p.percent_of_notional())?;
-    writeln!(out, "  standard error    {} {ccy}   ({:.4}% of notional)", group(e.std_error, 2), 100.0 * e.std_error / p.notional)?;
+    writeln!(
+        out,
+        "  standard error    {} {ccy}   ({:.4}% of notional)",
+        group(e.std_error, 2),
+        100.0 * e.std_error / p.notional
+    )?;
     writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, 2), group(hi, 2))?;
     let pairs = if e.antithetic { " in antithetic pairs" } else { "" };
     writeln!(out, "  paths             {}{pairs}, seed {}", group(e.paths as f64, 0), e.seed)?;

@@ -212,11 +212,7 @@ pub fn parse(source: &str) -> Result<File, Diagnostic> {
     let mut pairs = PayoffParser::parse(Rule::file, source).map_err(from_pest)?;
     let file = pairs.next().expect("the file rule always yields one pair");
     let mut lowering = Lowering { errors: Vec::new() };
-    let items = file
-        .into_inner()
-        .filter(|p| p.as_rule() != Rule::EOI)
-        .map(|p| lowering.item(p))
-        .collect();
+    let items = file.into_inner().filter(|p| p.as_rule() != Rule::EOI).map(|p| lowering.item(p)).collect();
     match lowering.errors.into_iter().next() {
         Some(e) => Err(e),
         None => Ok(File { items }),
@@ -497,7 +493,37 @@ fn children(pair: Pair<'_, Rule>) -> impl Iterator<Item = Pair<'_, Rule>> {
 fn is_keyword(rule: Rule) -> bool {
     matches!(
         rule,
-        Rule::kw_product | Rule::kw_currency | Rule::kw_notional | Rule::kw_underlyings | Rule::kw_market | Rule::kw_start | Rule::kw_param | Rule::kw_dates | Rule::kw_state | Rule::kw_for | Rule::kw_each | Rule::kw_in | Rule::kw_at | Rule::kw_let | Rule::kw_if | Rule::kw_then | Rule::kw_else | Rule::kw_pay | Rule::kw_on | Rule::kw_end | Rule::kw_and | Rule::kw_or | Rule::kw_not | Rule::kw_every | Rule::kw_from | Rule::kw_to | Rule::kw_steps | Rule::kw_business | Rule::kw_days | Rule::kw_over | Rule::kw_touched
+        Rule::kw_product
+            | Rule::kw_currency
+            | Rule::kw_notional
+            | Rule::kw_underlyings
+            | Rule::kw_market
+            | Rule::kw_start
+            | Rule::kw_param
+            | Rule::kw_dates
+            | Rule::kw_state
+            | Rule::kw_for
+            | Rule::kw_each
+            | Rule::kw_in
+            | Rule::kw_at
+            | Rule::kw_let
+            | Rule::kw_if
+            | Rule::kw_then
+            | Rule::kw_else
+            | Rule::kw_pay
+            | Rule::kw_on
+            | Rule::kw_end
+            | Rule::kw_and
+            | Rule::kw_or
+            | Rule::kw_not
+            | Rule::kw_every
+            | Rule::kw_from
+            | Rule::kw_to
+            | Rule::kw_steps
+            | Rule::kw_business
+            | Rule::kw_days
+            | Rule::kw_over
+            | Rule::kw_touched
     )
 }
 
@@ -534,9 +560,8 @@ fn from_pest(err: pest::error::Error<Rule>) -> Diagnostic {
     } else {
         format!("expected {}", join_or(&expected))
     };
-    Diagnostic::at(Span::new(at, at + 1), message).with_fix(
-        "compare the line with the syntax in grammar/REFERENCE.md; a name may not be a reserved word",
-    )
+    Diagnostic::at(Span::new(at, at + 1), message)
+        .with_fix("compare the line with the syntax in grammar/REFERENCE.md; a name may not be a reserved word")
 }
 
 fn join_or(items: &[String]) -> String {
@@ -643,9 +668,14 @@ mod tests {
     #[test]
     fn schedules() {
         let file = parse("dates q = every 3m from 2027-03-01 to 2029-12-01\ndates d = 252 steps from start to 1y\ndates days = business days from 2026-12-02 to 2027-12-01").unwrap();
-        assert!(matches!(&file.items[0], Item::Dates(_, Schedule { kind: ScheduleKind::Every { count: 3, unit: PeriodUnit::Months, .. }, .. })));
+        assert!(matches!(
+            &file.items[0],
+            Item::Dates(_, Schedule { kind: ScheduleKind::Every { count: 3, unit: PeriodUnit::Months, .. }, .. })
+        ));
         assert!(matches!(&file.items[1], Item::Dates(_, Schedule { kind: ScheduleKind::Steps { n: 252, .. }, .. })));
-        assert!(matches!(&file.items[2], Item::Dates(n, Schedule { kind: ScheduleKind::BusinessDays { .. }, .. }) if n.text == "days"));
+        assert!(
+            matches!(&file.items[2], Item::Dates(n, Schedule { kind: ScheduleKind::BusinessDays { .. }, .. }) if n.text == "days")
+        );
     }
 
     #[test]

@@ -76,11 +76,9 @@ impl Market {
     /// the span of the offending value.
     pub fn load(path: &Path) -> Result<Market, Vec<Diagnostic>> {
         let text = std::fs::read_to_string(path).map_err(|err| {
-            vec![
-                Diagnostic::new(format!("cannot read the market file: {err}"))
-                    .with_fix("check that the path is right and the file is readable")
-                    .in_file(path),
-            ]
+            vec![Diagnostic::new(format!("cannot read the market file: {err}"))
+                .with_fix("check that the path is right and the file is readable")
+                .in_file(path)]
         })?;
         Market::from_toml(&text, path)
     }
@@ -100,15 +98,10 @@ impl Market {
                     .in_file(file)]);
             }
         };
-        let mut reader = Reader {
-            file,
-            errors: Vec::new(),
-        };
+        let mut reader = Reader { file, errors: Vec::new() };
         let market = reader.market(root);
         // In file order; errors without a place (a missing key) last.
-        reader
-            .errors
-            .sort_by_key(|d| d.span.map_or(usize::MAX, |s| s.start));
+        reader.errors.sort_by_key(|d| d.span.map_or(usize::MAX, |s| s.start));
         match market {
             Some(market) if reader.errors.is_empty() => Ok(market),
             _ => Err(reader.errors),
@@ -121,10 +114,7 @@ impl Market {
     }
 
     pub fn underlying(&self, name: &str) -> Option<&Underlying> {
-        self.underlyings
-            .iter()
-            .find(|(n, _)| n == name)
-            .map(|(_, u)| u)
+        self.underlyings.iter().find(|(n, _)| n == name).map(|(_, u)| u)
     }
 
     /// Underlying names in the order the file gives them.
@@ -159,18 +149,14 @@ impl Market {
                         list_or_none(&known)
                     ),
                 };
-                return Err(
-                    Diagnostic::new(format!("no underlying `{name}` in the market file"))
-                        .with_fix(fix)
-                        .in_file(file),
-                );
+                return Err(Diagnostic::new(format!("no underlying `{name}` in the market file"))
+                    .with_fix(fix)
+                    .in_file(file));
             }
             if names[..i].contains(name) {
-                return Err(
-                    Diagnostic::new(format!("underlying `{name}` is listed twice"))
-                        .with_fix("list each underlying once")
-                        .in_file(file),
-                );
+                return Err(Diagnostic::new(format!("underlying `{name}` is listed twice"))
+                    .with_fix("list each underlying once")
+                    .in_file(file));
             }
         }
 
@@ -215,14 +201,8 @@ impl Market {
     }
 
     fn missing_pairs(&self, missing: &[(&str, &str)], file: &Path) -> Diagnostic {
-        let pairs: Vec<String> = missing
-            .iter()
-            .map(|(a, b)| format!("{a} and {b}"))
-            .collect();
-        let message = format!(
-            "no correlation given between {}",
-            pairs.join(", nor between ")
-        );
+        let pairs: Vec<String> = missing.iter().map(|(a, b)| format!("{a} and {b}")).collect();
+        let message = format!("no correlation given between {}", pairs.join(", nor between "));
 
         // Group what to add by the line it goes on: an existing line of either name, or a
         // new line for the earlier name.
@@ -243,15 +223,9 @@ impl Market {
         let steps: Vec<String> = lines
             .iter()
             .map(|(row, exists, others)| {
-                let entries: Vec<String> = others
-                    .iter()
-                    .map(|o| format!("{o} = <correlation>"))
-                    .collect();
+                let entries: Vec<String> = others.iter().map(|o| format!("{o} = <correlation>")).collect();
                 if *exists {
-                    format!(
-                        "add `{}` inside the braces of the `{row} = {{ ... }}` line",
-                        entries.join(", ")
-                    )
+                    format!("add `{}` inside the braces of the `{row} = {{ ... }}` line", entries.join(", "))
                 } else {
                     format!("add the line `{row} = {{ {} }}`", entries.join(", "))
                 }
@@ -259,9 +233,7 @@ impl Market {
             .collect();
         let fix = format!("under [correlations], {}", steps.join("; "));
 
-        let span = lines
-            .first()
-            .and_then(|(row, _, _)| self.correlation_rows.get(*row).copied().flatten());
+        let span = lines.first().and_then(|(row, _, _)| self.correlation_rows.get(*row).copied().flatten());
         let diagnostic = match span {
             Some(span) => Diagnostic::at(span, message),
             None => Diagnostic::new(message),
@@ -269,19 +241,11 @@ impl Market {
         diagnostic.with_fix(fix).in_file(file)
     }
 
-    fn not_positive_definite(
-        &self,
-        names: &[&str],
-        failed: usize,
-        row: &[f64],
-        file: &Path,
-    ) -> Diagnostic {
+    fn not_positive_definite(&self, names: &[&str], failed: usize, row: &[f64], file: &Path) -> Diagnostic {
         let name = names[failed];
         // The earlier name whose entry in the failing row is largest pulls the row's
         // variance below zero the most: the pair most at odds with the rest.
-        let culprit = (0..failed)
-            .max_by(|&x, &y| row[x].abs().total_cmp(&row[y].abs()))
-            .unwrap_or(0);
+        let culprit = (0..failed).max_by(|&x, &y| row[x].abs().total_cmp(&row[y].abs())).unwrap_or(0);
         let other = names[culprit];
         let value = self.correlation(name, other).unwrap_or(f64::NAN);
         let among = names[..=failed].join(", ");
@@ -291,10 +255,7 @@ impl Market {
         let fix = format!(
             "check {name}–{other} first, then the other correlations among {among}: two names that both move closely with a third cannot move strongly against each other, and distinct names cannot be correlated exactly ±1"
         );
-        let span = self
-            .correlations
-            .get(&pair_key(name, other))
-            .and_then(|g| g.span);
+        let span = self.correlations.get(&pair_key(name, other)).and_then(|g| g.span);
         let diagnostic = match span {
             Some(span) => Diagnostic::at(span, message),
             None => Diagnostic::new(message),
@@ -344,8 +305,7 @@ impl Reader<'_> {
             Some(span) => Diagnostic::at(span, message),
             None => Diagnostic::new(message),
         };
-        self.errors
-            .push(diagnostic.with_fix(fix).in_file(self.file));
+        self.errors.push(diagnostic.with_fix(fix).in_file(self.file));
     }
 
     /// Reports a key that isn't allowed here; returns the allowed key it is likely a typo of.
@@ -355,9 +315,7 @@ impl Reader<'_> {
         let fix = if key.name == "valuation_date" {
             "move `valuation_date = ...` above the first [section]: TOML puts a key in the table above it".to_string()
         } else {
-            let hint = near
-                .map(|near| format!("did you mean `{near}`? "))
-                .unwrap_or_default();
+            let hint = near.map(|near| format!("did you mean `{near}`? ")).unwrap_or_default();
             format!("{hint}allowed keys: {}", allowed.join(", "))
         };
         self.error(key.span, message, fix);
@@ -365,12 +323,7 @@ impl Reader<'_> {
     }
 
     /// The entries of a node that must be a table, or `None` (with an error) if it isn't.
-    fn table<'n>(
-        &mut self,
-        node: &'n Node,
-        path: &str,
-        example: &str,
-    ) -> Option<&'n [(Key, Node)]> {
+    fn table<'n>(&mut self, node: &'n Node, path: &str, example: &str) -> Option<&'n [(Key, Node)]> {
         match &node.kind {
             Kind::Table(entries) => Some(entries),
             other => {
@@ -391,30 +344,18 @@ impl Reader<'_> {
             Kind::Float(f) => *f,
             Kind::String(s) if s.trim().parse::<f64>().is_ok() => {
                 let message = format!("{path} must be a number, not a string");
-                self.error(
-                    node.span,
-                    message,
-                    format!("remove the quotes: {key} = {}", s.trim()),
-                );
+                self.error(node.span, message, format!("remove the quotes: {key} = {}", s.trim()));
                 return None;
             }
             other => {
                 let message = format!("{path} must be a number (got {})", other.describe());
-                self.error(
-                    node.span,
-                    message,
-                    format!("write a number, e.g. {key} = 0.25"),
-                );
+                self.error(node.span, message, format!("write a number, e.g. {key} = 0.25"));
                 return None;
             }
         };
         if !value.is_finite() {
             let message = format!("{path} must be a finite number (got {value})");
-            self.error(
-                node.span,
-                message,
-                format!("write a finite number, e.g. {key} = 0.25"),
-            );
+            self.error(node.span, message, format!("write a finite number, e.g. {key} = 0.25"));
             return None;
         }
         Some(value)
@@ -438,10 +379,7 @@ impl Reader<'_> {
             }
         }
 
-        let rates = sections
-            .get("rates")
-            .map(|node| self.rates(node))
-            .unwrap_or_default();
+        let rates = sections.get("rates").map(|node| self.rates(node)).unwrap_or_default();
         let (underlyings, declared) = match sections.get("underlyings") {
             Some(node) => self.underlyings(node),
             None => (Vec::new(), Vec::new()),
@@ -455,10 +393,7 @@ impl Reader<'_> {
             None => {
                 // A date written below a [section] header is reported there instead
                 // (so the sections are read first).
-                let misplaced = self
-                    .errors
-                    .iter()
-                    .any(|d| d.message.starts_with("unknown key `valuation_date`"));
+                let misplaced = self.errors.iter().any(|d| d.message.starts_with("unknown key `valuation_date`"));
                 if !misplaced {
                     self.error(
                         None,
@@ -469,13 +404,7 @@ impl Reader<'_> {
                 None
             }
         };
-        Some(Market {
-            valuation_date: valuation_date?,
-            rates,
-            underlyings,
-            correlations,
-            correlation_rows,
-        })
+        Some(Market { valuation_date: valuation_date?, rates, underlyings, correlations, correlation_rows })
     }
 
     fn valuation_date(&mut self, node: &Node) -> Option<Date> {
@@ -489,11 +418,7 @@ impl Reader<'_> {
                     Some(date) => format!("drop the time: valuation_date = {date}"),
                     None => format!("write a calendar date, e.g. {example}"),
                 };
-                self.error(
-                    node.span,
-                    format!("valuation_date must be a date without a time (got {text})"),
-                    fix,
-                );
+                self.error(node.span, format!("valuation_date must be a date without a time (got {text})"), fix);
             }
             Kind::String(text) if Date::parse(text).is_some() => {
                 self.error(
@@ -504,11 +429,7 @@ impl Reader<'_> {
             }
             other => {
                 let message = format!("valuation_date must be a date (got {})", other.describe());
-                self.error(
-                    node.span,
-                    message,
-                    format!("write it as YYYY-MM-DD without quotes, e.g. {example}"),
-                );
+                self.error(node.span, message, format!("write it as YYYY-MM-DD without quotes, e.g. {example}"));
             }
         }
         None
@@ -516,8 +437,7 @@ impl Reader<'_> {
 
     fn rates(&mut self, node: &Node) -> BTreeMap<String, f64> {
         let mut rates = BTreeMap::new();
-        let Some(entries) = self.table(node, "rates", "[rates] with lines like `USD = 0.038`")
-        else {
+        let Some(entries) = self.table(node, "rates", "[rates] with lines like `USD = 0.038`") else {
             return rates;
         };
         for (key, value) in entries {
@@ -533,11 +453,7 @@ impl Reader<'_> {
                 } else {
                     "use a three-letter ISO 4217 code such as USD".to_string()
                 };
-                self.error(
-                    key.span,
-                    format!("`{code}` in [rates] is not an ISO 4217 currency code"),
-                    fix,
-                );
+                self.error(key.span, format!("`{code}` in [rates] is not an ISO 4217 currency code"), fix);
                 continue;
             }
             let Some(rate) = self.number(value, &path, code) else {
@@ -581,8 +497,7 @@ impl Reader<'_> {
 
     fn underlying(&mut self, key: &Key, node: &Node) -> Option<Underlying> {
         let name = &key.name;
-        let example =
-            format!("[underlyings.{name}] with spot, volatility and dividend_yield lines");
+        let example = format!("[underlyings.{name}] with spot, volatility and dividend_yield lines");
         let entries = self.table(node, &format!("underlyings.{name}"), &example)?;
         let (mut spot, mut volatility, mut dividend_yield) = (None, None, Some(0.0));
         let mut broken = false;
@@ -595,9 +510,7 @@ impl Reader<'_> {
                 "volatility" => &mut volatility,
                 "dividend_yield" => &mut dividend_yield,
                 _ => {
-                    if let Some(near) =
-                        self.unknown_key(field, &format!("[underlyings.{name}]"), UNDERLYING_KEYS)
-                    {
+                    if let Some(near) = self.unknown_key(field, &format!("[underlyings.{name}]"), UNDERLYING_KEYS) {
                         misspelt.push(near);
                     }
                     broken = true;
@@ -610,7 +523,10 @@ impl Reader<'_> {
                 continue;
             };
             let problem = match field.name.as_str() {
-                "spot" if x <= 0.0 => Some((format!("{path} must be greater than 0 (got {})", show(x)), "a spot price is positive".to_string())),
+                "spot" if x <= 0.0 => Some((
+                    format!("{path} must be greater than 0 (got {})", show(x)),
+                    "a spot price is positive".to_string(),
+                )),
                 "volatility" if x <= 0.0 => Some((
                     format!("{path} must be greater than 0 (got {})", show(x)),
                     "write the annual volatility as a positive fraction, e.g. volatility = 0.25 for 25%".to_string(),
@@ -634,10 +550,8 @@ impl Reader<'_> {
                 None => *slot = Some(x),
             }
         }
-        for (field, slot, example) in [
-            ("spot", spot, "spot = 100.0"),
-            ("volatility", volatility, "volatility = 0.25"),
-        ] {
+        for (field, slot, example) in [("spot", spot, "spot = 100.0"), ("volatility", volatility, "volatility = 0.25")]
+        {
             let present = entries.iter().any(|(k, _)| k.name == field);
             if slot.is_none() && !present && !misspelt.contains(&field) {
                 self.error(
@@ -651,11 +565,7 @@ impl Reader<'_> {
         if broken {
             return None;
         }
-        Some(Underlying {
-            spot: spot?,
-            volatility: volatility?,
-            dividend_yield: dividend_yield?,
-        })
+        Some(Underlying { spot: spot?, volatility: volatility?, dividend_yield: dividend_yield? })
     }
 
     #[allow(clippy::type_complexity)]
@@ -663,10 +573,7 @@ impl Reader<'_> {
         &mut self,
         node: &Node,
         declared: &[String],
-    ) -> (
-        BTreeMap<(String, String), Given>,
-        BTreeMap<String, Option<Span>>,
-    ) {
+    ) -> (BTreeMap<(String, String), Given>, BTreeMap<String, Option<Span>>) {
         let mut pairs: BTreeMap<(String, String), Given> = BTreeMap::new();
         let mut rows = BTreeMap::new();
         let example = "[correlations] with lines like `ZPHX = { QMEN = 0.55 }`";
@@ -697,21 +604,14 @@ impl Reader<'_> {
                     } else {
                         "a correlation lies between -1 and 1".to_string()
                     };
-                    self.error(
-                        value.span,
-                        format!("{path} must be between -1 and 1 (got {})", show(rho)),
-                        fix,
-                    );
+                    self.error(value.span, format!("{path} must be between -1 and 1 (got {})", show(rho)), fix);
                     continue;
                 }
                 if a == b {
                     if rho != 1.0 {
                         self.error(
                             value.span,
-                            format!(
-                                "{path} is the correlation of {a} with itself, which is 1 (got {})",
-                                show(rho)
-                            ),
+                            format!("{path} is the correlation of {a} with itself, which is 1 (got {})", show(rho)),
                             format!("remove `{b} = {}`", show(rho)),
                         );
                     }
@@ -720,10 +620,7 @@ impl Reader<'_> {
                 if !(a_known && b_known) {
                     continue;
                 }
-                let given = Given {
-                    value: rho,
-                    span: value.span,
-                };
+                let given = Given { value: rho, span: value.span };
                 match pairs.get(&pair_key(a, b)) {
                     Some(first) if first.value != rho => {
                         self.error(
@@ -753,20 +650,9 @@ impl Reader<'_> {
         }
         let fix = match closest(&key.name, known.iter().copied()) {
             Some(near) => format!("did you mean `{near}`?"),
-            None => format!(
-                "define [underlyings.{}] or correct the name (defined: {})",
-                key.name,
-                list_or_none(known)
-            ),
+            None => format!("define [underlyings.{}] or correct the name (defined: {})", key.name, list_or_none(known)),
         };
-        self.error(
-            key.span,
-            format!(
-                "{path} names `{}`, which is not under [underlyings]",
-                key.name
-            ),
-            fix,
-        );
+        self.error(key.span, format!("{path} names `{}`, which is not under [underlyings]", key.name), fix);
         false
     }
 }
@@ -774,18 +660,13 @@ impl Reader<'_> {
 /// Names as the payoff language writes them: a letter or `_`, then letters, digits or `_`.
 fn is_name(name: &str) -> bool {
     let mut chars = name.chars();
-    chars
-        .next()
-        .is_some_and(|c| c.is_ascii_alphabetic() || c == '_')
+    chars.next().is_some_and(|c| c.is_ascii_alphabetic() || c == '_')
         && chars.all(|c| c.is_ascii_alphanumeric() || c == '_')
 }
 
 fn percent_fix(key: &str, value: f64) -> String {
     let fraction = show(value / 100.0);
-    format!(
-        "write it as a fraction: {fraction} means {}%, so {key} = {fraction}",
-        show(value)
-    )
+    format!("write it as a fraction: {fraction} means {}%, so {key} = {fraction}", show(value))
 }
 
 /// Shortest decimal of a number rounded to 12 places, so `3.8 / 100` shows as 0.038.
@@ -892,9 +773,7 @@ impl<'de> Visitor<'de> for NodeVisitor {
     }
 
     fn visit_u64<E>(self, v: u64) -> Result<Node, E> {
-        Ok(Node::bare(
-            i64::try_from(v).map_or(Kind::Float(v as f64), Kind::Integer),
-        ))
+        Ok(Node::bare(i64::try_from(v).map_or(Kind::Float(v as f64), Kind::Integer)))
     }
 
     fn visit_f64<E>(self, v: f64) -> Result<Node, E> {
@@ -964,10 +843,7 @@ impl<'de> Visitor<'de> for KeyVisitor {
     }
 
     fn visit_str<E>(self, v: &str) -> Result<Key, E> {
-        Ok(Key {
-            name: v.to_string(),
-            span: None,
-        })
+        Ok(Key { name: v.to_string(), span: None })
     }
 
     fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Key, A::Error> {
@@ -1052,131 +928,64 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(m.valuation_date, Date::parse("2026-12-01").unwrap());
         assert_eq!(m.rate("USD"), Some(0.038));
         assert_eq!(m.rate("EUR"), None);
-        assert_eq!(
-            m.underlying_names().collect::<Vec<_>>(),
-            ["ZPHX", "QMEN", "OSMP", "VNTL"]
-        );
-        assert_eq!(
-            m.underlying("ZPHX"),
-            Some(&Underlying {
-                spot: 4250.0,
-                volatility: 0.18,
-                dividend_yield: 0.019
-            })
-        );
-        assert_eq!(
-            m.underlying("QMEN"),
-            Some(&Underlying {
-                spot: 38.40,
-                volatility: 0.32,
-                dividend_yield: 0.031
-            })
-        );
-        assert_eq!(
-            m.underlying("OSMP"),
-            Some(&Underlying {
-                spot: 112.0,
-                volatility: 0.26,
-                dividend_yield: 0.012
-            })
-        );
-        assert_eq!(
-            m.underlying("VNTL"),
-            Some(&Underlying {
-                spot: 57.25,
-                volatility: 0.29,
-                dividend_yield: 0.0
-            })
-        );
+        assert_eq!(m.underlying_names().collect::<Vec<_>>(), ["ZPHX", "QMEN", "OSMP", "VNTL"]);
+        assert_eq!(m.underlying("ZPHX"), Some(&Underlying { spot: 4250.0, volatility: 0.18, dividend_yield: 0.019 }));
+        assert_eq!(m.underlying("QMEN"), Some(&Underlying { spot: 38.40, volatility: 0.32, dividend_yield: 0.031 }));
+        assert_eq!(m.underlying("OSMP"), Some(&Underlying { spot: 112.0, volatility: 0.26, dividend_yield: 0.012 }));
+        assert_eq!(m.underlying("VNTL"), Some(&Underlying { spot: 57.25, volatility: 0.29, dividend_yield: 0.0 }));
         assert_eq!(m.correlation("ZPHX", "QMEN"), Some(0.55));
         assert_eq!(m.correlation("QMEN", "ZPHX"), Some(0.55));
         assert_eq!(m.correlation("OSMP", "VNTL"), Some(0.50));
         assert_eq!(m.correlation("OSMP", "OSMP"), Some(1.0));
         assert_eq!(m.correlation("OSMP", "XXXX"), None);
         assert_eq!(m.correlation("XXXX", "XXXX"), None);
-        let l = m
-            .cholesky(&["ZPHX", "QMEN", "OSMP", "VNTL"], file())
-            .unwrap();
+        let l = m.cholesky(&["ZPHX", "QMEN", "OSMP", "VNTL"], file()).unwrap();
         assert_eq!(l.len(), 4);
-        assert!(l
-            .iter()
-            .enumerate()
-            .all(|(i, row)| row[i + 1..].iter().all(|&x| x == 0.0)));
+        assert!(l.iter().enumerate().all(|(i, row)| row[i + 1..].iter().all(|&x| x == 0.0)));
     }
 
     #[test]
     fn refuses_bad_numbers_at_their_place() {
         let (d, at) = only_error(&demo_with("volatility = 0.32", "volatility = -0.32"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.volatility must be greater than 0 (got -0.32)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.volatility must be greater than 0 (got -0.32)");
         assert_eq!(at, "-0.32");
         assert!(d.fix.unwrap().contains("positive"));
 
         let (d, at) = only_error(&demo_with("volatility = 0.32", "volatility = 32"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.volatility must be at most 5 (got 32); it looks like a percentage"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.volatility must be at most 5 (got 32); it looks like a percentage");
         assert_eq!(at, "32");
-        assert_eq!(
-            d.fix.unwrap(),
-            "write it as a fraction: 0.32 means 32%, so volatility = 0.32"
-        );
+        assert_eq!(d.fix.unwrap(), "write it as a fraction: 0.32 means 32%, so volatility = 0.32");
 
         let (d, at) = only_error(&demo_with("spot = 38.40", "spot = 0"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.spot must be greater than 0 (got 0)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.spot must be greater than 0 (got 0)");
         assert_eq!(at, "0");
 
         let (d, at) = only_error(&demo_with("spot = 38.40", "spot = nan"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.spot must be a finite number (got NaN)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.spot must be a finite number (got NaN)");
         assert_eq!(at, "nan");
 
         let (d, at) = only_error(&demo_with("spot = 38.40", "spot = \"38.40\""));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.spot must be a number, not a string"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.spot must be a number, not a string");
         assert_eq!(d.fix.unwrap(), "remove the quotes: spot = 38.40");
         assert_eq!(at, "\"38.40\"");
 
         let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "dividend_yield = inf"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.dividend_yield must be a finite number (got inf)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.dividend_yield must be a finite number (got inf)");
         assert_eq!(at, "inf");
 
         let (d, at) = only_error(&demo_with("USD = 0.038", "USD = 3.8"));
         assert_eq!(d.message, "rates.USD must be between -1 and 1 (got 3.8)");
-        assert_eq!(
-            d.fix.unwrap(),
-            "write it as a fraction: 0.038 means 3.8%, so USD = 0.038"
-        );
+        assert_eq!(d.fix.unwrap(), "write it as a fraction: 0.038 means 3.8%, so USD = 0.038");
         assert_eq!(at, "3.8");
 
         let (d, at) = only_error(&demo_with("USD = 0.038", "usd = 0.038"));
-        assert_eq!(
-            d.message,
-            "`usd` in [rates] is not an ISO 4217 currency code"
-        );
+        assert_eq!(d.message, "`usd` in [rates] is not an ISO 4217 currency code");
         assert_eq!(at, "usd");
     }
 
     #[test]
     fn negative_dividend_yield_is_allowed() {
-        let m = Market::from_toml(
-            &demo_with("dividend_yield = 0.031", "dividend_yield = -0.004"),
-            file(),
-        )
-        .unwrap();
+        let m = Market::from_toml(&demo_with("dividend_yield = 0.031", "dividend_yield = -0.004"), file()).unwrap();
         assert_eq!(m.underlying("QMEN").unwrap().dividend_yield, -0.004);
     }
 
@@ -1184,10 +993,7 @@ VNTL = { OSMP = 0.50 }
     fn refuses_unknown_keys_naming_the_allowed_ones() {
         let (d, at) = only_error(&demo_with("volatility = 0.32", "volatilty = 0.32"));
         assert_eq!(d.message, "unknown key `volatilty` in [underlyings.QMEN]");
-        assert_eq!(
-            d.fix.unwrap(),
-            "did you mean `volatility`? allowed keys: spot, volatility, dividend_yield"
-        );
+        assert_eq!(d.fix.unwrap(), "did you mean `volatility`? allowed keys: spot, volatility, dividend_yield");
         assert_eq!(at, "volatilty");
 
         let (d, at) = only_error(&demo_with("[rates]", "[rate]"));
@@ -1199,26 +1005,17 @@ VNTL = { OSMP = 0.50 }
     #[test]
     fn wrong_shapes_are_reported_not_fatal() {
         let (d, at) = only_error(&demo_with("spot = 38.40", "spot = 2026-12-01"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.spot must be a number (got a date)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.spot must be a number (got a date)");
         assert_eq!(at, "2026-12-01");
 
         let (d, _) = only_error(&demo_with("spot = 38.40", "spot = [38.40]"));
-        assert_eq!(
-            d.message,
-            "underlyings.QMEN.spot must be a number (got an array)"
-        );
+        assert_eq!(d.message, "underlyings.QMEN.spot must be a number (got an array)");
 
         let text = demo_with("[rates]", "rates = true\n[other_rates]").replace("USD = 0.038\n", "");
         let errs = errors(&text);
         assert_eq!(errs.len(), 2, "{errs:#?}");
         assert_eq!(errs[0].message, "rates must be a table (got true or false)");
-        assert_eq!(
-            errs[1].message,
-            "unknown key `other_rates` in the market file"
-        );
+        assert_eq!(errs[1].message, "unknown key `other_rates` in the market file");
 
         let with_time = "valuation_date = 2026-12-01T09:30:00";
         let (d, at) = only_error(&demo_with("valuation_date = 2026-12-01", with_time));
@@ -1238,11 +1035,7 @@ VNTL = { OSMP = 0.50 }
 
         let errs = errors(&demo_with("USD = 0.038", "USD = 0.038\nUSD = 0.04"));
         assert_eq!(errs.len(), 1);
-        assert!(
-            errs[0].message.contains("duplicate key"),
-            "{}",
-            errs[0].message
-        );
+        assert!(errs[0].message.contains("duplicate key"), "{}", errs[0].message);
 
         let missing = Path::new("/nonexistent/market.toml");
         let errs = Market::load(missing).unwrap_err();
@@ -1261,72 +1054,37 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(errs[0].message, "missing valuation_date");
         assert_eq!(errs[0].span, None);
 
-        let (d, at) = only_error(&demo_with(
-            "valuation_date = 2026-12-01",
-            "valuation_date = \"2026-12-01\"",
-        ));
-        assert_eq!(
-            d.message,
-            "valuation_date must be a TOML date, not a string"
-        );
+        let (d, at) = only_error(&demo_with("valuation_date = 2026-12-01", "valuation_date = \"2026-12-01\""));
+        assert_eq!(d.message, "valuation_date must be a TOML date, not a string");
         assert_eq!(at, "\"2026-12-01\"");
     }
 
     #[test]
     fn refuses_bad_correlations() {
         let (d, at) = only_error(&demo_with("QMEN = { OSMP = 0.40,", "QMEN = { OSMP = 1.40,"));
-        assert_eq!(
-            d.message,
-            "correlations.QMEN.OSMP must be between -1 and 1 (got 1.4)"
-        );
+        assert_eq!(d.message, "correlations.QMEN.OSMP must be between -1 and 1 (got 1.4)");
         assert_eq!(at, "1.40");
 
-        let (d, at) = only_error(&demo_with(
-            "VNTL = { OSMP = 0.50 }",
-            "VNTL = { OSMP = 0.50, QMEN = 0.46 }",
-        ));
-        assert_eq!(
-            d.message,
-            "the correlation of VNTL and QMEN is given twice with different values (0.45 and 0.46)"
-        );
+        let (d, at) = only_error(&demo_with("VNTL = { OSMP = 0.50 }", "VNTL = { OSMP = 0.50, QMEN = 0.46 }"));
+        assert_eq!(d.message, "the correlation of VNTL and QMEN is given twice with different values (0.45 and 0.46)");
         assert_eq!(at, "0.46");
 
         // The same value twice is harmless.
-        Market::from_toml(
-            &demo_with(
-                "VNTL = { OSMP = 0.50 }",
-                "VNTL = { OSMP = 0.50, QMEN = 0.45 }",
-            ),
-            file(),
-        )
-        .unwrap();
+        Market::from_toml(&demo_with("VNTL = { OSMP = 0.50 }", "VNTL = { OSMP = 0.50, QMEN = 0.45 }"), file()).unwrap();
 
-        let (d, at) = only_error(&demo_with(
-            "VNTL = { OSMP = 0.50 }",
-            "VNTL = { OSMP = 0.50, VNTX = 0.3 }",
-        ));
-        assert_eq!(
-            d.message,
-            "correlations.VNTL.VNTX names `VNTX`, which is not under [underlyings]"
-        );
+        let (d, at) = only_error(&demo_with("VNTL = { OSMP = 0.50 }", "VNTL = { OSMP = 0.50, VNTX = 0.3 }"));
+        assert_eq!(d.message, "correlations.VNTL.VNTX names `VNTX`, which is not under [underlyings]");
         assert_eq!(d.fix.unwrap(), "did you mean `VNTL`?");
         assert_eq!(at, "VNTX");
 
-        let (d, at) = only_error(&demo_with(
-            "VNTL = { OSMP = 0.50 }",
-            "VNTL = { OSMP = 0.50, VNTL = 0.9 }",
-        ));
-        assert_eq!(
-            d.message,
-            "correlations.VNTL.VNTL is the correlation of VNTL with itself, which is 1 (got 0.9)"
-        );
+        let (d, at) = only_error(&demo_with("VNTL = { OSMP = 0.50 }", "VNTL = { OSMP = 0.50, VNTL = 0.9 }"));
+        assert_eq!(d.message, "correlations.VNTL.VNTL is the correlation of VNTL with itself, which is 1 (got 0.9)");
         assert_eq!(at, "0.9");
     }
 
     #[test]
     fn collects_every_error_of_a_file() {
-        let text = demo_with("volatility = 0.32", "volatility = -0.32")
-            .replace("USD = 0.038", "USD = 3.8");
+        let text = demo_with("volatility = 0.32", "volatility = -0.32").replace("USD = 0.038", "USD = 3.8");
         let errs = errors(&text);
         assert_eq!(errs.len(), 2, "{errs:#?}");
         assert!(errs[0].message.starts_with("rates.USD"));
@@ -1370,11 +1128,7 @@ VNTL = { OSMP = 0.50 }
             [correlations]\nA = { B = 0.9, C = 0.9 }\nB = { C = -0.9 }\n";
         let m = Market::from_toml(text, file()).unwrap();
         let d = m.cholesky(&["A", "B", "C"], file()).unwrap_err();
-        assert!(
-            d.message.contains("not positive definite, failing at C"),
-            "{}",
-            d.message
-        );
+        assert!(d.message.contains("not positive definite, failing at C"), "{}", d.message);
         assert!(d.message.contains("the pair C–B (-0.9)"), "{}", d.message);
         let span = d.span.unwrap();
         assert_eq!(&text[span.start..span.end], "-0.9");
@@ -1383,10 +1137,7 @@ VNTL = { OSMP = 0.50 }
 
     #[test]
     fn names_a_missing_pair_and_where_to_add_it() {
-        let text = demo_with(
-            "QMEN = { OSMP = 0.40, VNTL = 0.45 }",
-            "QMEN = { OSMP = 0.40 }",
-        );
+        let text = demo_with("QMEN = { OSMP = 0.40, VNTL = 0.45 }", "QMEN = { OSMP = 0.40 }");
         let m = Market::from_toml(&text, file()).unwrap();
         let d = m.cholesky(&["ZPHX", "QMEN", "VNTL"], file()).unwrap_err();
         assert_eq!(d.message, "no correlation given between QMEN and VNTL");
@@ -1395,14 +1146,10 @@ VNTL = { OSMP = 0.50 }
             Some("under [correlations], add `VNTL = <correlation>` inside the braces of the `QMEN = { ... }` line")
         );
 
-        let text = demo_with("QMEN = { OSMP = 0.40, VNTL = 0.45 }\n", "")
-            .replace("VNTL = { OSMP = 0.50 }\n", "");
+        let text = demo_with("QMEN = { OSMP = 0.40, VNTL = 0.45 }\n", "").replace("VNTL = { OSMP = 0.50 }\n", "");
         let m = Market::from_toml(&text, file()).unwrap();
         let d = m.cholesky(&["QMEN", "VNTL"], file()).unwrap_err();
-        assert_eq!(
-            d.fix.as_deref(),
-            Some("under [correlations], add the line `QMEN = { VNTL = <correlation> }`")
-        );
+        assert_eq!(d.fix.as_deref(), Some("under [correlations], add the line `QMEN = { VNTL = <correlation> }`"));
 
         let d = m.cholesky(&["QMEN", "VNTX"], file()).unwrap_err();
         assert_eq!(d.message, "no underlying `VNTX` in the market file");
@@ -1413,10 +1160,7 @@ VNTL = { OSMP = 0.50 }
         let text = demo_with("volatility = 0.32", "volatility = -0.32");
         let d = &errors(&text)[0];
         let shown = d.render(Some(&text));
-        assert!(
-            shown.starts_with("market.toml:14:14: underlyings.QMEN.volatility"),
-            "{shown}"
-        );
+        assert!(shown.starts_with("market.toml:14:14: underlyings.QMEN.volatility"), "{shown}");
         assert!(shown.contains("^^^^^"), "{shown}");
     }
 }

@@ -116,7 +116,12 @@ pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diag
     let n = paths as f64;
     let mut profile: Vec<ProfileRow> = Vec::new();
     for (slot, e) in program.events.iter().enumerate() {
-        profile.push(ProfileRow { label: e.label(), time: e.time, end_probability: Some(total.ended[slot] / n), expected_pv: 0.0 });
+        profile.push(ProfileRow {
+            label: e.label(),
+            time: e.time,
+            end_probability: Some(total.ended[slot] / n),
+            expected_pv: 0.0,
+        });
     }
     for (slot, p) in program.payments.iter().enumerate() {
         let pv = total.paid[slot] / n;
@@ -156,7 +161,7 @@ fn regress(m: &Moments, controls: &Controls) -> (f64, f64, Vec<usize>) {
     let mut l: Vec<Vec<f64>> = Vec::new();
     for j in 0..k {
         let vj = m.cov(1 + j, 1 + j);
-        if !(vj > 0.0) {
+        if vj.is_nan() || vj <= 0.0 {
             continue;
         }
         let mut row: Vec<f64> = Vec::with_capacity(kept.len() + 1);

@@ -78,7 +78,15 @@ impl PathBuffers {
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
     /// (`h = lanes / 2`) with every normal negated.
-    pub fn generate(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, antithetic: bool, block: usize) {
+    pub fn generate(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+    ) {
         let na = p.assets.len();
         let drawn = if antithetic { lanes / 2 } else { lanes };
         for a in 0..na {
@@ -244,7 +252,8 @@ impl Controls {
             let times: Vec<f64> = fixings.iter().map(|&k| p.grid[k]).collect();
             let t_pay = *times.last().unwrap_or(&t);
             let discount = (-p.rate * t_pay).exp();
-            let geometric_forward = geometric_asian_discrete(OptionKind::Call, m.spot, 0.0, &times, t_pay, p.rate, b, m.volatility);
+            let geometric_forward =
+                geometric_asian_discrete(OptionKind::Call, m.spot, 0.0, &times, t_pay, p.rate, b, m.volatility);
             list.push(Control {
                 name: format!("{} geometric average", m.name),
                 kind: ControlKind::Geometric { asset: *a, fixings: fixings.clone() },
@@ -255,7 +264,16 @@ impl Controls {
                 name: format!("{} geometric-average call", m.name),
                 kind: ControlKind::GeometricCall { asset: *a, fixings: fixings.clone(), strike: m.spot },
                 discount,
-                mean: geometric_asian_discrete(OptionKind::Call, m.spot, m.spot, &times, t_pay, p.rate, b, m.volatility),
+                mean: geometric_asian_discrete(
+                    OptionKind::Call,
+                    m.spot,
+                    m.spot,
+                    &times,
+                    t_pay,
+                    p.rate,
+                    b,
+                    m.volatility,
+                ),
             });
         }
         Controls { list }
