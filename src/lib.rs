@@ -1,1 +1,2 @@
 //! pathfold: prices exotic equity payoffs by Monte Carlo.
+pub mod closed_form;
