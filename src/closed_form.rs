@@ -18,11 +18,13 @@
 //! share code with the formula under test.
 
 mod normal;
+mod vanilla;
 
 #[cfg(test)]
 mod test_support;
 
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
+pub use vanilla::{asset_or_nothing, black_scholes, cash_or_nothing, forward_start};
 
 /// Call or put.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
