@@ -17,12 +17,17 @@
 //! against identities or independent numerical integrations that do not
 //! share code with the formula under test.
 
+mod barrier;
 mod normal;
 mod vanilla;
 
 #[cfg(test)]
 mod test_support;
 
+pub use barrier::{
+    barrier_hit_probability, bgk_shifted_barrier, lookback_discrete_shift, standard_barrier,
+    standard_barrier_with_rebate, RebateTiming, BGK_BETA,
+};
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
 pub use vanilla::{asset_or_nothing, black_scholes, cash_or_nothing, forward_start};
 
