@@ -17,6 +17,7 @@
 //! against identities or independent numerical integrations that do not
 //! share code with the formula under test.
 
+mod asian;
 mod barrier;
 mod normal;
 mod vanilla;
@@ -24,6 +25,7 @@ mod vanilla;
 #[cfg(test)]
 mod test_support;
 
+pub use asian::{geometric_asian_continuous, geometric_asian_discrete};
 pub use barrier::{
     barrier_hit_probability, bgk_shifted_barrier, lookback_discrete_shift, standard_barrier,
     standard_barrier_with_rebate, RebateTiming, BGK_BETA,
