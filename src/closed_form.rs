@@ -19,6 +19,7 @@
 
 mod asian;
 mod barrier;
+mod lookback;
 mod normal;
 mod vanilla;
 
@@ -30,6 +31,7 @@ pub use barrier::{
     barrier_hit_probability, bgk_shifted_barrier, lookback_discrete_shift, standard_barrier,
     standard_barrier_with_rebate, RebateTiming, BGK_BETA,
 };
+pub use lookback::{fixed_lookback, floating_lookback};
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
 pub use vanilla::{asset_or_nothing, black_scholes, cash_or_nothing, forward_start};
 
