@@ -21,6 +21,7 @@ mod asian;
 mod barrier;
 mod lookback;
 mod normal;
+mod two_asset;
 mod vanilla;
 
 #[cfg(test)]
@@ -33,6 +34,7 @@ pub use barrier::{
 };
 pub use lookback::{fixed_lookback, floating_lookback};
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
+pub use two_asset::{margrabe, two_asset_extreme};
 pub use vanilla::{asset_or_nothing, black_scholes, cash_or_nothing, forward_start};
 
 /// Call or put.
