@@ -13,9 +13,11 @@
 //! than an error. Callers that take user input must validate it first.
 //!
 //! Because the engine trusts these numbers, each formula is tested against
-//! printed values from the literature (source named beside each check) and
-//! against identities or independent numerical integrations that do not
-//! share code with the formula under test.
+//! printed values from the literature where they reproduce (source named
+//! beside each check; remembered values that did not reproduce are recorded
+//! in comments with what we computed), and against identities and
+//! independent numerical routes (quadratures over a density, first-passage
+//! integrals, exact Monte Carlo of discrete monitoring).
 
 mod asian;
 mod barrier;
