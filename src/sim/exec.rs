@@ -8,7 +8,7 @@
 use rand_pcg::Pcg64;
 
 use super::paths::{Controls, Model, PathBuffers};
-use super::stats::{BlockResult, Moments};
+use super::stats::{sum, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
 
@@ -18,6 +18,8 @@ pub struct Workspace {
     regs: Vec<Vec<f64>>,
     monitors: Vec<Vec<f64>>,
     pv: Vec<f64>,
+    /// Scratch lanes: one payment's amounts, or the lanes one `end` closes.
+    paid: Vec<f64>,
     columns: Vec<Vec<f64>>,
 }
 
@@ -36,6 +38,7 @@ impl Workspace {
             regs: vec![vec![0.0; BLOCK]; p.registers],
             monitors: vec![vec![0.0; BLOCK]; p.monitors.len()],
             pv: vec![0.0; BLOCK],
+            paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
         }
     }
@@ -53,11 +56,12 @@ impl Workspace {
         let mut rng = block_rng(settings.seed, index);
         self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
         self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
-        let mut result = BlockResult::new(1 + controls.len(), p.events.len(), p.payments.len());
+        // Only the per-date tallies are allocated here; the moments are built below.
+        let mut result = BlockResult::new(0, p.events.len(), p.payments.len());
         self.execute(p, lanes, &mut result);
         // Paths still alive after the last operation end on the last run date.
         if let Some(last) = p.events.len().checked_sub(1) {
-            result.ended[last] += self.regs[ALIVE as usize][..lanes].iter().sum::<f64>();
+            result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
         }
         result.raw = Moments::of_columns(&[&self.pv[..lanes]]);
         for j in 0..controls.len() {
@@ -145,39 +149,39 @@ impl Workspace {
                     self.regs[dst as usize] = out;
                 }
                 Op::Pay { mask, amount, slot, discount, site } => {
-                    let mut pvs = std::mem::take(&mut self.pv);
+                    // Branch-free over lanes: the discounted amount where the mask is set,
+                    // else 0, kept in `paid` for the total.
+                    let (mut paid, mut pvs) = (std::mem::take(&mut self.paid), std::mem::take(&mut self.pv));
                     let a = self.arg(amount, lanes);
                     let m = &self.regs[mask as usize][..lanes];
-                    let mut total = 0.0;
-                    let mut finite = true;
-                    for (i, pv) in pvs[..lanes].iter_mut().enumerate() {
-                        if m[i] != 0.0 {
-                            let v = at(a, i) * discount;
-                            finite &= v.is_finite();
-                            *pv += v;
-                            total += v;
-                        }
+                    for (i, (v, pv)) in paid[..lanes].iter_mut().zip(&mut pvs[..lanes]).enumerate() {
+                        *v = if m[i] != 0.0 { at(a, i) * discount } else { 0.0 };
+                        *pv += *v;
                     }
-                    self.pv = pvs;
+                    let total = sum(&paid[..lanes]);
                     result.paid[slot as usize] += total;
-                    if !finite && result.bad_site.is_none() {
+                    // A non-finite amount makes the total non-finite; only then look closer
+                    // (a finite total can also overflow).
+                    if !total.is_finite() && result.bad_site.is_none() && paid[..lanes].iter().any(|v| !v.is_finite()) {
                         result.bad_site = Some(site);
                     }
+                    (self.paid, self.pv) = (paid, pvs);
                 }
                 Op::End { mask, slot } => {
                     let mut alive = std::mem::take(&mut self.regs[ALIVE as usize]);
-                    let mut ended = 0.0;
+                    let ended;
                     if mask == ALIVE {
-                        ended = alive[..lanes].iter().sum();
+                        ended = sum(&alive[..lanes]);
                         alive[..lanes].fill(0.0);
                     } else {
                         let m = &self.regs[mask as usize][..lanes];
-                        for (a, &m) in alive[..lanes].iter_mut().zip(m) {
-                            if m != 0.0 && *a != 0.0 {
-                                *a = 0.0;
-                                ended += 1.0;
-                            }
+                        let gone = &mut self.paid[..lanes];
+                        for (i, (a, g)) in alive[..lanes].iter_mut().zip(gone.iter_mut()).enumerate() {
+                            let end = m[i] != 0.0 && *a != 0.0;
+                            *g = flag(end);
+                            *a = if end { 0.0 } else { *a };
                         }
+                        ended = sum(gone);
                     }
                     result.ended[slot as usize] += ended;
                     self.regs[ALIVE as usize] = alive;
