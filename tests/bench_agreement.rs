@@ -78,3 +78,20 @@ fn w3_autocall_agrees_with_hand_written_loop() {
     same_paths("W3", e, reference::w3_autocall(paths, 31));
     within_3se("W3 (independent seeds)", e, reference::w3_autocall(paths, 32));
 }
+
+#[test]
+fn results_are_bit_identical_on_any_thread_count() {
+    // The seed defines the result (blocks of 256 paths, PCG stream per block, merged in
+    // block order): the thread count must not change a bit. 20,000 paths is 79 blocks, the
+    // last one short, so uneven splits between threads are exercised.
+    let run = |threads: usize| {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("a thread pool");
+        pool.install(|| engine("w3_autocall.payoff", 20_000, 5))
+    };
+    let one = run(1);
+    for threads in [2, 3, 5] {
+        let many = run(threads);
+        assert_eq!(one.0.to_bits(), many.0.to_bits(), "price on {threads} threads: {one:?} vs {many:?}");
+        assert_eq!(one.1.to_bits(), many.1.to_bits(), "standard error on {threads} threads");
+    }
+}

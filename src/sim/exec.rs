@@ -72,8 +72,9 @@ impl Workspace {
         let units = if settings.antithetic { lanes / 2 } else { lanes };
         if settings.antithetic {
             for col in &mut self.columns {
-                for i in 0..units {
-                    col[i] = 0.5 * (col[i] + col[i + units]);
+                let (first, mirror) = col[..2 * units].split_at_mut(units);
+                for (x, y) in first.iter_mut().zip(&*mirror) {
+                    *x = 0.5 * (*x + y);
                 }
             }
         }
@@ -104,9 +105,7 @@ impl Workspace {
                 Op::Select { dst, cond, a, b } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
                     let (c, a, b) = (self.arg(cond, lanes), self.arg(a, lanes), self.arg(b, lanes));
-                    for (i, o) in out[..lanes].iter_mut().enumerate() {
-                        *o = if at(c, i) != 0.0 { at(a, i) } else { at(b, i) };
-                    }
+                    select(&mut out[..lanes], c, a, b);
                     self.regs[dst as usize] = out;
                 }
                 Op::Acc { op, dst, src } => {
@@ -141,10 +140,10 @@ impl Workspace {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
                     let s = self.arg(src, lanes);
                     let m = &self.regs[mask as usize][..lanes];
-                    for (i, o) in out[..lanes].iter_mut().enumerate() {
-                        if m[i] != 0.0 {
-                            *o = at(s, i);
-                        }
+                    // `dst = if m then s else dst`, as a select so the loop vectorises.
+                    match s {
+                        Arg::Lanes(s) => lanes3(&mut out[..lanes], m, s, |m, s, o| if m != 0.0 { s } else { o }),
+                        Arg::Same(x) => lanes3(&mut out[..lanes], m, x, |m, x, o| if m != 0.0 { x } else { o }),
                     }
                     self.regs[dst as usize] = out;
                 }
@@ -154,9 +153,13 @@ impl Workspace {
                     let (mut paid, mut pvs) = (std::mem::take(&mut self.paid), std::mem::take(&mut self.pv));
                     let a = self.arg(amount, lanes);
                     let m = &self.regs[mask as usize][..lanes];
-                    for (i, (v, pv)) in paid[..lanes].iter_mut().zip(&mut pvs[..lanes]).enumerate() {
-                        *v = if m[i] != 0.0 { at(a, i) * discount } else { 0.0 };
-                        *pv += *v;
+                    let pay = |m: f64, a: f64, _: f64| if m != 0.0 { a * discount } else { 0.0 };
+                    match a {
+                        Arg::Lanes(a) => lanes3(&mut paid[..lanes], m, a, pay),
+                        Arg::Same(x) => lanes3(&mut paid[..lanes], m, x, pay),
+                    }
+                    for (pv, v) in pvs[..lanes].iter_mut().zip(&paid[..lanes]) {
+                        *pv += v;
                     }
                     let total = sum(&paid[..lanes]);
                     result.paid[slot as usize] += total;
@@ -223,6 +226,61 @@ fn at(a: Arg<'_>, i: usize) -> f64 {
     match a {
         Arg::Lanes(s) => s[i],
         Arg::Same(x) => x,
+    }
+}
+
+/// A value per lane (a slice) or one for all lanes, read without a branch per lane, so
+/// that loops generic over it vectorise.
+trait Lane: Copy {
+    fn lane(self, i: usize) -> f64;
+}
+
+impl Lane for &[f64] {
+    #[inline(always)]
+    fn lane(self, i: usize) -> f64 {
+        self[i]
+    }
+}
+
+impl Lane for f64 {
+    #[inline(always)]
+    fn lane(self, _: usize) -> f64 {
+        self
+    }
+}
+
+/// `out[i] = f(a[i], b[i], out[i])`.
+#[inline(always)]
+fn lanes3(out: &mut [f64], a: impl Lane, b: impl Lane, f: impl Fn(f64, f64, f64) -> f64) {
+    for (i, o) in out.iter_mut().enumerate() {
+        *o = f(a.lane(i), b.lane(i), *o);
+    }
+}
+
+/// `out = if c then a else b`, one loop per kind of operand.
+fn select(out: &mut [f64], c: Arg<'_>, a: Arg<'_>, b: Arg<'_>) {
+    let n = out.len();
+    let Arg::Lanes(c) = c else {
+        // A constant condition picks one side for every lane.
+        let pick = if at(c, 0) != 0.0 { a } else { b };
+        match pick {
+            Arg::Lanes(s) => out.copy_from_slice(&s[..n]),
+            Arg::Same(x) => out.fill(x),
+        }
+        return;
+    };
+    let c = &c[..n];
+    let f = |c: f64, a: f64, b: f64| if c != 0.0 { a } else { b };
+    match (a, b) {
+        (Arg::Lanes(a), Arg::Lanes(b)) => {
+            let (a, b) = (&a[..n], &b[..n]);
+            for (i, o) in out.iter_mut().enumerate() {
+                *o = f(c[i], a[i], b[i]);
+            }
+        }
+        (Arg::Lanes(a), Arg::Same(y)) => lanes3(out, c, &a[..n], |c, a, _| f(c, a, y)),
+        (Arg::Same(x), Arg::Lanes(b)) => lanes3(out, c, &b[..n], |c, b, _| f(c, x, b)),
+        (Arg::Same(x), Arg::Same(y)) => lanes3(out, c, 0.0, |c, _, _| f(c, x, y)),
     }
 }
 

@@ -100,7 +100,7 @@ fn exp_into_generic(out: &mut [f64], x: &[f64]) {
     }
     if !in_range {
         for (o, &x) in out.iter_mut().zip(x) {
-            if !(x.abs() <= EXP_RANGE) {
+            if x.is_nan() || x.abs() > EXP_RANGE {
                 *o = x.exp();
             }
         }
@@ -115,8 +115,8 @@ fn exp_poly(x: f64) -> f64 {
     // 1.5·2⁵²: adding it rounds to an integer held in the low bits of the mantissa.
     const SHIFT: f64 = 6_755_399_441_055_744.0;
     // ln 2 split so that k·LN2_HI is exact for |k| < 2²⁰.
-    const LN2_HI: f64 = 6.931_471_803_691_238_164_90e-1;
-    const LN2_LO: f64 = 1.908_214_929_270_587_700_02e-10;
+    const LN2_HI: f64 = 6.931_471_803_691_238e-1;
+    const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
     const C: [f64; 14] = [
         1.0,
         1.0,
