@@ -56,8 +56,15 @@ impl Workspace {
         let mut rng = block_rng(settings.seed, index);
         self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
         self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
-        // Only the per-date tallies are allocated here; the moments are built below.
-        let mut result = BlockResult::new(0, p.events.len(), p.payments.len());
+        // Only the per-date tallies are allocated here; the moments are built below
+        // (moments of no dimension allocate nothing).
+        let mut result = BlockResult {
+            moments: Moments::new(0),
+            raw: Moments::new(0),
+            ended: vec![0.0; p.events.len()],
+            paid: vec![0.0; p.payments.len()],
+            bad_site: None,
+        };
         self.execute(p, lanes, &mut result);
         // Paths still alive after the last operation end on the last run date.
         if let Some(last) = p.events.len().checked_sub(1) {
@@ -78,8 +85,18 @@ impl Workspace {
                 }
             }
         }
-        let cols: Vec<&[f64]> = self.columns.iter().map(|c| &c[..units]).collect();
-        result.moments = Moments::of_columns(&cols);
+        // The column slices, on the stack unless there are many controls.
+        const ON_STACK: usize = 8;
+        if self.columns.len() <= ON_STACK {
+            let mut cols: [&[f64]; ON_STACK] = [&[]; ON_STACK];
+            for (c, col) in cols.iter_mut().zip(&self.columns) {
+                *c = &col[..units];
+            }
+            result.moments = Moments::of_columns(&cols[..self.columns.len()]);
+        } else {
+            let cols: Vec<&[f64]> = self.columns.iter().map(|c| &c[..units]).collect();
+            result.moments = Moments::of_columns(&cols);
+        }
         result
     }
 
