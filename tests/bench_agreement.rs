@@ -95,3 +95,23 @@ fn results_are_bit_identical_on_any_thread_count() {
         assert_eq!(one.1.to_bits(), many.1.to_bits(), "standard error on {threads} threads");
     }
 }
+
+#[test]
+fn w1_call_without_antithetic_pairs_and_with_controls_matches_black_scholes() {
+    // Exercises the engine's other settings (independent paths, control variates reading
+    // the terminal levels) against Black–Scholes with dividend yield (src/closed_form,
+    // checked against Hull's worked example, from memory); within 3.5 SE.
+    let bs = black_scholes(OptionKind::Call, 100.0, 105.0, 1.0, 0.03, 0.03 - 0.01, 0.20);
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("benches").join("w1_call.payoff");
+    for (antithetic, control_variates) in [(false, false), (false, true), (true, true)] {
+        let settings = Settings { paths: 200_001, seed: 41, antithetic, control_variates };
+        let e = price_file(&path, None, &[], &settings).unwrap_or_else(|f| panic!("{}", f.render())).estimate;
+        assert!(e.std_error > 0.0, "{settings:?}: {e:?}");
+        assert!(
+            (e.price - bs).abs() <= 3.5 * e.std_error,
+            "{settings:?}: {} ± {} vs Black–Scholes {bs}",
+            e.price,
+            e.std_error
+        );
+    }
+}
