@@ -11,8 +11,6 @@
 //! Shared by `benches/workloads.rs` and, through `#[path]`, `tests/bench_agreement.rs`; it
 //! sits in its own folder so that cargo does not take it for a benchmark of its own.
 
-#![allow(dead_code)]
-
 use pathfold::sim::exec::block_rng;
 use pathfold::sim::BLOCK;
 use rand::Rng;
