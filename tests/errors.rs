@@ -12,7 +12,11 @@ use std::process::Command;
 
 fn run(args: &[String]) -> (String, String, Option<i32>) {
     let out = Command::new(env!("CARGO_BIN_EXE_pathfold")).args(args).output().expect("the binary runs");
-    (String::from_utf8_lossy(&out.stdout).into_owned(), String::from_utf8_lossy(&out.stderr).into_owned(), out.status.code())
+    (
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+        out.status.code(),
+    )
 }
 
 fn files(dir: &str, ext: &str) -> Vec<PathBuf> {
@@ -31,7 +35,8 @@ fn expect_refusal(case: &Path, args: Vec<String>, failures: &mut Vec<String>) {
     if std::env::var_os("PATHFOLD_BLESS").is_some() {
         fs::write(&expected_file, &stderr).expect("writable fixture");
     }
-    let expected = fs::read_to_string(&expected_file).unwrap_or_else(|_| format!("(missing {})", expected_file.display()));
+    let expected =
+        fs::read_to_string(&expected_file).unwrap_or_else(|_| format!("(missing {})", expected_file.display()));
     if code != Some(2) {
         failures.push(format!("{}: exit status {code:?}, expected 2", case.display()));
     }
