@@ -29,6 +29,27 @@ pub struct Cli {
 pub enum Command {
     /// Price a payoff file.
     Price(PriceArgs),
+    /// Price the validation set and compare each case with its closed form.
+    Check(CheckArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct CheckArgs {
+    /// Folder holding the validation payoffs and their `references.toml`.
+    #[arg(long, value_name = "FOLDER", default_value = "payoffs/validation")]
+    pub folder: PathBuf,
+    /// Paths per case.
+    #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
+    pub paths: u64,
+    /// Random seed.
+    #[arg(long, default_value_t = sim::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Worker threads (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
 }
 
 #[derive(Debug, Args)]
@@ -85,6 +106,34 @@ impl Failure {
 pub fn run(cli: Cli) -> ExitCode {
     match cli.command {
         Command::Price(args) => price_command(&args),
+        Command::Check(args) => check_command(&args),
+    }
+}
+
+fn check_command(args: &CheckArgs) -> ExitCode {
+    let settings = Settings { paths: args.paths.max(2), seed: args.seed, ..Settings::default() };
+    let outcomes = match with_threads(args.threads, || crate::validate::run(&args.folder, &settings)) {
+        Ok(Ok(o)) => o,
+        Ok(Err(d)) => {
+            let text = d.file.as_ref().and_then(|f| fs::read_to_string(f).ok());
+            eprint!("{}", d.render(text.as_deref()));
+            return ExitCode::from(2);
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    for o in &outcomes {
+        if let Err(f) = &o.result {
+            eprint!("{}", f.render());
+        }
+    }
+    let stdout = io::stdout();
+    let mut out = stdout.lock();
+    match report::write_checks(&mut out, &outcomes, args.format).and_then(|()| out.flush()) {
+        Ok(()) | Err(_) if outcomes.iter().all(crate::validate::Outcome::passed) => ExitCode::SUCCESS,
+        _ => ExitCode::from(1),
     }
 }
 

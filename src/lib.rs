@@ -14,3 +14,4 @@ pub mod driver;
 pub mod report;
 pub mod sim;
 pub mod syntax;
+pub mod validate;

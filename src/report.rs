@@ -8,6 +8,7 @@ use std::io::{self, Write};
 use serde_json::json;
 
 use crate::sim::Estimate;
+use crate::validate::Outcome;
 
 /// The line every report ends with.
 pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
@@ -126,6 +127,96 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     }
     writeln!(out)?;
     writeln!(out, "{CAUTION}")
+}
+
+/// Writes the outcome of `pathfold check`: one row per case.
+pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -> io::Result<()> {
+    let passed = outcomes.iter().filter(|o| o.passed()).count();
+    match format {
+        Format::Json => {
+            let cases: Vec<serde_json::Value> = outcomes
+                .iter()
+                .map(|o| {
+                    let p = o.result.as_ref().ok();
+                    json!({
+                        "file": o.case.file,
+                        "reference": o.case.reference.name(),
+                        "closed_form": o.reference_value,
+                        "price": p.map(|p| p.estimate.price),
+                        "std_error": p.map(|p| p.estimate.std_error),
+                        "approximation": o.case.approximation,
+                        "z": o.z().filter(|z| z.is_finite()),
+                        "passed": o.passed(),
+                        "error": o.result.as_ref().err().map(|f| f.render()),
+                    })
+                })
+                .collect();
+            let paths =
+                outcomes.iter().find_map(|o| o.result.as_ref().ok()).map(|p| (p.estimate.paths, p.estimate.seed));
+            let v = json!({
+                "cases": cases,
+                "passed": passed,
+                "failed": outcomes.len() - passed,
+                "max_abs_z": crate::validate::MAX_Z,
+                "paths": paths.map(|p| p.0),
+                "seed": paths.map(|p| p.1),
+                "caution": CAUTION,
+            });
+            serde_json::to_writer_pretty(&mut *out, &v)?;
+            writeln!(out)
+        }
+        Format::Table => {
+            writeln!(
+                out,
+                "{:<30} {:<28} {:>12} {:>12} {:>10} {:>8} {:>7}  {}",
+                "case", "closed form", "reference", "Monte Carlo", "std error", "budget", "z", "result"
+            )?;
+            for o in outcomes {
+                let name = o.case.file.trim_end_matches(".payoff");
+                match &o.result {
+                    Ok(p) => {
+                        let z = o.z().unwrap_or(f64::NAN);
+                        let verdict = if o.passed() { "pass" } else { "FAIL" };
+                        writeln!(
+                            out,
+                            "{:<30} {:<28} {:>12.4} {:>12.4} {:>10.4} {:>8} {:>7.2}  {}",
+                            name,
+                            o.case.reference.name(),
+                            o.reference_value,
+                            p.estimate.price,
+                            p.estimate.std_error,
+                            if o.case.approximation > 0.0 {
+                                format!("{:.4}", o.case.approximation * o.reference_value.abs())
+                            } else {
+                                "-".to_string()
+                            },
+                            z,
+                            verdict
+                        )?;
+                    }
+                    Err(_) => writeln!(
+                        out,
+                        "{:<30} {:<28} {:>12.4} {:>12} {:>10} {:>8} {:>7}  FAIL (not priced, see above)",
+                        name,
+                        o.case.reference.name(),
+                        o.reference_value,
+                        "-",
+                        "-",
+                        "-",
+                        "-"
+                    )?,
+                }
+            }
+            writeln!(out)?;
+            writeln!(
+                out,
+                "{passed} of {} cases within {} errors of their closed form; z divides the difference by the standard error and, for BGK-corrected references, their error budget in quadrature.",
+                outcomes.len(),
+                crate::validate::MAX_Z
+            )?;
+            writeln!(out, "{CAUTION}")
+        }
+    }
 }
 
 /// `1234567.891` → `1,234,567.89`.
