@@ -168,8 +168,8 @@ pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -
         Format::Table => {
             writeln!(
                 out,
-                "{:<30} {:<28} {:>12} {:>12} {:>10} {:>8} {:>7}  {}",
-                "case", "closed form", "reference", "Monte Carlo", "std error", "budget", "z", "result"
+                "{:<30} {:<28} {:>12} {:>12} {:>10} {:>8} {:>7}  result",
+                "case", "closed form", "reference", "Monte Carlo", "std error", "budget", "z"
             )?;
             for o in outcomes {
                 let name = o.case.file.trim_end_matches(".payoff");
