@@ -121,9 +121,16 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     writeln!(out, "  time              {:.2} s", e.elapsed.as_secs_f64())?;
     writeln!(out)?;
     writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
-    for r in &e.profile {
+    // Dates on which nothing is paid and nothing ends (most fixings of a daily schedule)
+    // would drown the few that matter; JSON keeps them all.
+    let quiet = |r: &&crate::sim::ProfileRow| r.expected_pv == 0.0 && r.end_probability.unwrap_or(0.0) == 0.0;
+    for r in e.profile.iter().filter(|r| !quiet(r)) {
         let ends = r.end_probability.map_or("-".to_string(), |x| format!("{:.2}%", 100.0 * x));
         writeln!(out, "  {:<12} {:>14} {:>22}", r.label, ends, group(r.expected_pv, 2))?;
+    }
+    let hidden = e.profile.iter().filter(quiet).count();
+    if hidden > 0 {
+        writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
     }
     writeln!(out)?;
     writeln!(out, "{CAUTION}")
