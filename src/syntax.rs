@@ -550,8 +550,13 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     // A reserved word where a name belongs is the likeliest slip: say so plainly.
     let word: String = source[at..].chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
     if RESERVED.contains(&word.as_str()) {
-        return Diagnostic::at(Span::new(at, at + word.len()), format!("`{word}` is a reserved word and cannot be a name"))
-            .with_fix(format!("pick another name, such as `{word}_level`; the reserved words are listed in grammar/REFERENCE.md"));
+        return Diagnostic::at(
+            Span::new(at, at + word.len()),
+            format!("`{word}` is a reserved word and cannot be a name"),
+        )
+        .with_fix(format!(
+            "pick another name, such as `{word}_level`; the reserved words are listed in grammar/REFERENCE.md"
+        ));
     }
     let mut expected = match &err.variant {
         ErrorVariant::ParsingError { positives, .. } => {
@@ -572,8 +577,8 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
 
 /// The grammar's reserved words (rule `keyword`).
 const RESERVED: &[&str] = &[
-    "start", "param", "dates", "state", "for", "at", "let", "if", "then", "else", "pay", "on", "end", "and", "or", "not",
-    "touched", "true", "false", "average", "sum", "highest", "lowest", "count", "any", "all",
+    "start", "param", "dates", "state", "for", "at", "let", "if", "then", "else", "pay", "on", "end", "and", "or",
+    "not", "touched", "true", "false", "average", "sum", "highest", "lowest", "count", "any", "all",
 ];
 
 fn join_or(items: &[String]) -> String {
