@@ -549,6 +549,17 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     };
     // A reserved word where a name belongs is the likeliest slip: say so plainly.
     let word: String = source[at..].chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
+    let line_start = source[..at].rfind('\n').map_or(0, |i| i + 1);
+    let at_line_start = source[line_start..at].trim().is_empty();
+    if at_line_start && !word.is_empty() && !RESERVED.contains(&word.as_str()) {
+        if let Some(near) = crate::diagnostic::closest(&word, TOP_LEVEL.iter().copied()) {
+            return Diagnostic::at(
+                Span::new(at, at + word.len()),
+                format!("`{word}` does not start a line of a payoff file"),
+            )
+            .with_fix(format!("did you mean `{near}`?"));
+        }
+    }
     if RESERVED.contains(&word.as_str()) {
         return Diagnostic::at(
             Span::new(at, at + word.len()),
@@ -571,9 +582,12 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     } else {
         format!("expected {}", join_or(&expected))
     };
-    Diagnostic::at(Span::new(at, at + 1), message)
-        .with_fix("compare the line with the syntax in grammar/REFERENCE.md; a name may not be a reserved word")
+    Diagnostic::at(Span::new(at, at + 1), message).with_fix("compare the line with the syntax in grammar/REFERENCE.md")
 }
+
+/// The words that start a top-level line.
+const TOP_LEVEL: &[&str] =
+    &["product", "currency", "notional", "underlyings", "market", "start", "param", "dates", "state", "for", "at"];
 
 /// The grammar's reserved words (rule `keyword`).
 const RESERVED: &[&str] = &[
