@@ -12,15 +12,7 @@ use super::{black_scholes, norm_cdf, OptionKind};
 /// generalised Black–Scholes price with those inputs.
 ///
 /// Preconditions: `s, k > 0`, `t >= 0`, `sigma >= 0`.
-pub fn geometric_asian_continuous(
-    kind: OptionKind,
-    s: f64,
-    k: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
+pub fn geometric_asian_continuous(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     let sigma_avg = sigma / 3f64.sqrt();
     let b_avg = 0.5 * (b - sigma * sigma / 6.0);
     black_scholes(kind, s, k, t, r, b_avg, sigma_avg)
@@ -50,10 +42,7 @@ pub fn geometric_asian_discrete(
 ) -> f64 {
     debug_assert!(s > 0.0 && k > 0.0, "spot and strike must be positive");
     debug_assert!(!times.is_empty(), "need at least one fixing");
-    debug_assert!(
-        times.iter().all(|&x| x > 0.0),
-        "fixing times must be positive"
-    );
+    debug_assert!(times.iter().all(|&x| x > 0.0), "fixing times must be positive");
     if times.is_empty() {
         return f64::NAN;
     }
@@ -63,11 +52,7 @@ pub fn geometric_asian_discrete(
     // smallest (0-based) is the minimum of 2(n - i) - 1 ordered pairs.
     let mut sorted = times.to_vec();
     sorted.sort_by(f64::total_cmp);
-    let pair_sum: f64 = sorted
-        .iter()
-        .enumerate()
-        .map(|(i, &ti)| ti * (2.0 * (n - i as f64) - 1.0))
-        .sum();
+    let pair_sum: f64 = sorted.iter().enumerate().map(|(i, &ti)| ti * (2.0 * (n - i as f64) - 1.0)).sum();
     let var = sigma * sigma * pair_sum / (n * n);
     let mean_log = s.ln() + (b - 0.5 * sigma * sigma) * mean_time;
     let forward = (mean_log + 0.5 * var).exp();
@@ -105,10 +90,7 @@ mod tests {
             for k in [80.0, 100.0, 120.0] {
                 let disc = geometric_asian_discrete(kind, s, k, &times, t, r, b, sigma);
                 let cont = geometric_asian_continuous(kind, s, k, t, r, b, sigma);
-                assert!(
-                    (disc - cont).abs() < 1e-3,
-                    "{kind:?} K={k}: {disc} vs {cont}"
-                );
+                assert!((disc - cont).abs() < 1e-3, "{kind:?} K={k}: {disc} vs {cont}");
                 // And the error is of order 1/n, not merely small: with 10
                 // fixings the gap is visibly larger.
                 let few: Vec<f64> = (1..=10).map(|i| t * i as f64 / 10.0).collect();
