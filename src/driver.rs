@@ -207,12 +207,7 @@ fn price_command(args: &PriceArgs) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    // Full diagnostics with the caret go to stderr; rows carry a one-line summary.
-    for row in &rows {
-        if let Err(f) = &row.outcome {
-            eprint!("{}", f.render());
-        }
-    }
+    report_failures(&rows);
     let written = if single && p.format != Format::Csv {
         match &rows[0].outcome {
             Ok(priced) => emit(p.output.as_deref(), |w| report::write_one(w, priced, p.format)),
@@ -225,6 +220,20 @@ fn price_command(args: &PriceArgs) -> ExitCode {
         return code;
     }
     batch::exit_status(&rows)
+}
+
+/// Full diagnostics with the caret go to stderr; rows carry a one-line summary. A problem
+/// found in another file (the market) is introduced by the payoff file it stopped.
+fn report_failures(rows: &[batch::Row]) {
+    for row in rows {
+        if let Err(f) = &row.outcome {
+            let text = f.render();
+            if !text.starts_with(&row.file) {
+                eprintln!("{}: could not be priced:", row.file);
+            }
+            eprint!("{text}");
+        }
+    }
 }
 
 fn compare_command(args: &CompareArgs) -> ExitCode {
@@ -266,11 +275,7 @@ fn compare_command(args: &CompareArgs) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    for row in &rows {
-        if let Err(f) = &row.outcome {
-            eprint!("{}", f.render());
-        }
-    }
+    report_failures(&rows);
     let lines = compare::compare(&list, &rows, args.max_z);
     if let Err(code) = emit(p.output.as_deref(), |w| compare::write(w, &lines, p.format)) {
         return code;
