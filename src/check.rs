@@ -154,6 +154,8 @@ pub struct ScheduleDef {
 pub struct StateDef {
     pub name: String,
     pub init: f64,
+    /// A number or a flag, fixed by the starting value.
+    pub ty: Ty,
 }
 
 /// A payoff file after the check: every name resolved, every expression typed.
@@ -336,10 +338,10 @@ impl Checker {
                     }
                 }
                 Item::State(name, expr) => {
-                    if let Some((v, _)) = self.constant(expr, "a state's starting value") {
+                    if let Some((v, ty)) = self.constant(expr, "a state's starting value") {
                         let idx = self.product.states.len();
                         if self.declare(name, Global::State(idx)) {
-                            self.product.states.push(StateDef { name: name.text.clone(), init: v });
+                            self.product.states.push(StateDef { name: name.text.clone(), init: v, ty });
                         }
                     }
                 }
@@ -611,8 +613,13 @@ impl Checker {
                     }
                 };
                 let e = e?;
-                if e.ty == Ty::Date {
-                    self.error(e.span, "a state holds a number or a flag, not a date", "assign a number");
+                let ty = self.product.states[slot].ty;
+                if e.ty != ty {
+                    self.error(
+                        e.span,
+                        format!("`{}` holds {}, but this is {}", name.text, ty.describe(), e.ty.describe()),
+                        format!("assign {} (its type is set by its starting value)", ty.describe()),
+                    );
                     return None;
                 }
                 Some(TStmt::Assign(slot, e))
@@ -758,7 +765,7 @@ impl Checker {
         match self.globals.get(n).map(|(g, _)| *g) {
             Some(Global::Param(v, ty)) => Some(TExpr { kind: TKind::Const(v), ty, span }),
             Some(Global::Notional) => Some(TExpr { kind: TKind::Const(self.product.notional), ty: Ty::Number, span }),
-            Some(Global::State(s)) => Some(TExpr { kind: TKind::State(s), ty: Ty::Number, span }),
+            Some(Global::State(s)) => Some(TExpr { kind: TKind::State(s), ty: self.product.states[s].ty, span }),
             Some(Global::Schedule(s)) => Some(TExpr { kind: TKind::Date(DateRef::Only(s)), ty: Ty::Date, span }),
             Some(Global::Underlying(_)) => {
                 self.error(

@@ -35,6 +35,8 @@ pub enum Command {
     Price(PriceArgs),
     /// Compare an external price list (CSV) with pathfold's prices.
     Compare(CompareArgs),
+    /// Price the validation set and compare each case with its closed form.
+    Check(CheckArgs),
 }
 
 #[derive(Debug, Args)]
@@ -50,6 +52,25 @@ pub struct CompareArgs {
     pub max_z: f64,
     #[command(flatten)]
     pub pricing: PricingArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct CheckArgs {
+    /// Folder holding the validation payoffs and their `references.toml`.
+    #[arg(long, value_name = "FOLDER", default_value = "payoffs/validation")]
+    pub folder: PathBuf,
+    /// Paths per case.
+    #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
+    pub paths: u64,
+    /// Random seed.
+    #[arg(long, default_value_t = sim::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Worker threads (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
 }
 
 #[derive(Debug, Args)]
@@ -125,6 +146,34 @@ pub fn run(cli: Cli) -> ExitCode {
     match cli.command {
         Command::Price(args) => price_command(&args),
         Command::Compare(args) => compare_command(&args),
+        Command::Check(args) => check_command(&args),
+    }
+}
+
+fn check_command(args: &CheckArgs) -> ExitCode {
+    let settings = Settings { paths: args.paths.max(2), seed: args.seed, ..Settings::default() };
+    let outcomes = match with_threads(args.threads, || crate::validate::run(&args.folder, &settings)) {
+        Ok(Ok(o)) => o,
+        Ok(Err(d)) => {
+            let text = d.file.as_ref().and_then(|f| fs::read_to_string(f).ok());
+            eprint!("{}", d.render(text.as_deref()));
+            return ExitCode::from(2);
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    for o in &outcomes {
+        if let Err(f) = &o.result {
+            eprint!("{}", f.render());
+        }
+    }
+    let stdout = io::stdout();
+    let mut out = stdout.lock();
+    match report::write_checks(&mut out, &outcomes, args.format).and_then(|()| out.flush()) {
+        Ok(()) | Err(_) if outcomes.iter().all(crate::validate::Outcome::passed) => ExitCode::SUCCESS,
+        _ => ExitCode::from(1),
     }
 }
 
@@ -223,12 +272,13 @@ fn price_command(args: &PriceArgs) -> ExitCode {
 }
 
 /// Full diagnostics with the caret go to stderr; rows carry a one-line summary. A problem
-/// found in another file (the market) is introduced by the payoff file it stopped.
+/// found in another file (the market) is introduced, in a batch, by the payoff file it
+/// stopped; a single file keeps the plain diagnostic.
 fn report_failures(rows: &[batch::Row]) {
     for row in rows {
         if let Err(f) = &row.outcome {
             let text = f.render();
-            if !text.starts_with(&row.file) {
+            if rows.len() > 1 && !text.starts_with(&row.file) {
                 eprintln!("{}: could not be priced:", row.file);
             }
             eprint!("{text}");

@@ -16,3 +16,4 @@ pub mod driver;
 pub mod report;
 pub mod sim;
 pub mod syntax;
+pub mod validate;

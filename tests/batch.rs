@@ -35,14 +35,22 @@ fn read_csv(text: &str) -> Vec<std::collections::HashMap<String, String>> {
         .collect()
 }
 
+/// Every `.payoff` file under `payoffs/`, as the batch walks them: sorted by path.
 fn demo_payoffs() -> Vec<String> {
-    let mut v: Vec<String> = std::fs::read_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join("payoffs"))
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.extension().is_some_and(|x| x == "payoff"))
-        .map(|p| format!("payoffs/{}", p.file_name().unwrap().to_string_lossy()))
-        .collect();
-    v.sort();
+    fn walk(dir: &Path, out: &mut Vec<String>) {
+        let mut entries: Vec<_> = std::fs::read_dir(dir).unwrap().map(|e| e.unwrap().path()).collect();
+        entries.sort();
+        for p in entries {
+            if p.is_dir() {
+                walk(&p, out);
+            } else if p.extension().is_some_and(|x| x == "payoff") {
+                let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+                out.push(p.strip_prefix(root).unwrap().to_string_lossy().into_owned());
+            }
+        }
+    }
+    let mut v = Vec::new();
+    walk(&Path::new(env!("CARGO_MANIFEST_DIR")).join("payoffs"), &mut v);
     v
 }
 
