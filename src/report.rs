@@ -23,6 +23,35 @@ pub struct Priced {
     pub notional: f64,
     pub params: Vec<(String, f64)>,
     pub estimate: Estimate,
+    /// What it takes to reproduce the number exactly.
+    pub record: Record,
+}
+
+/// The reproducibility record of one result: with the same files (checked by hash), the
+/// same version and these settings, pathfold gives the same bits.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Record {
+    pub version: &'static str,
+    /// SHA-256 of the payoff file's bytes, hex.
+    pub payoff_sha256: String,
+    /// SHA-256 of the market file's bytes, hex.
+    pub market_sha256: String,
+    /// Whether control variates were asked for (the estimate lists those used).
+    pub control_variates: bool,
+    /// The `--set` overrides, as given.
+    pub overrides: Vec<String>,
+    /// The error target of an error-bounded run, if any.
+    pub target: Option<TargetOutcome>,
+}
+
+/// How an error-bounded run (`--target-se`) ended.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TargetOutcome {
+    /// The target standard error, in currency.
+    pub std_error: f64,
+    /// The largest path count allowed.
+    pub max_paths: u64,
+    pub met: bool,
 }
 
 impl Priced {
@@ -42,12 +71,14 @@ impl Priced {
 pub enum Format {
     Table,
     Json,
+    Csv,
 }
 
 /// Writes the report of one priced file.
 pub fn write_one(out: &mut dyn Write, p: &Priced, format: Format) -> io::Result<()> {
     match format {
         Format::Table => write_table(out, p),
+        Format::Csv => crate::batch::write_rows(out, &[crate::batch::Row::priced(p.clone())], Format::Csv),
         Format::Json => {
             serde_json::to_writer_pretty(&mut *out, &to_json(p))?;
             writeln!(out)
@@ -78,6 +109,8 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
         "controls": e.controls,
         "variance_reduction": e.variance_reduction,
         "elapsed_seconds": e.elapsed.as_secs_f64(),
+        "target": target_json(&p.record),
+        "reproduce": record_json(p),
         "profile": e.profile.iter().map(|r| json!({
             "date": r.label,
             "years": r.time,
@@ -85,6 +118,30 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
             "expected_pv": r.expected_pv,
         })).collect::<Vec<_>>(),
         "caution": CAUTION,
+    })
+}
+
+/// The target of an error-bounded run, or null.
+pub fn target_json(r: &Record) -> serde_json::Value {
+    match &r.target {
+        Some(t) => json!({ "std_error": t.std_error, "max_paths": t.max_paths, "met": t.met }),
+        None => serde_json::Value::Null,
+    }
+}
+
+/// The reproducibility record as JSON.
+pub fn record_json(p: &Priced) -> serde_json::Value {
+    let (e, r) = (&p.estimate, &p.record);
+    json!({
+        "pathfold_version": r.version,
+        "seed": e.seed,
+        "paths": e.paths,
+        "antithetic": e.antithetic,
+        "control_variates": r.control_variates,
+        "overrides": r.overrides,
+        "payoff_sha256": r.payoff_sha256,
+        "market_file": p.market_file,
+        "market_sha256": r.market_sha256,
     })
 }
 
@@ -118,7 +175,23 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
         None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
     }
+    if let Some(t) = &p.record.target {
+        let verdict = if t.met { "met" } else { "NOT met" };
+        writeln!(
+            out,
+            "  error target      {} {ccy}: {verdict} (at most {} paths)",
+            group(t.std_error, 2),
+            group(t.max_paths as f64, 0)
+        )?;
+    }
     writeln!(out, "  time              {:.2} s", e.elapsed.as_secs_f64())?;
+    writeln!(
+        out,
+        "  reproduce         pathfold {}, payoff sha256 {}",
+        p.record.version,
+        short_hash(&p.record.payoff_sha256)
+    )?;
+    writeln!(out, "                    market sha256 {}", short_hash(&p.record.market_sha256))?;
     writeln!(out)?;
     writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
     // Dates on which nothing is paid and nothing ends (most fixings of a daily schedule)
@@ -140,6 +213,36 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
 pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -> io::Result<()> {
     let passed = outcomes.iter().filter(|o| o.passed()).count();
     match format {
+        Format::Csv => {
+            let mut w = csv::Writer::from_writer(out);
+            w.write_record([
+                "file",
+                "closed_form",
+                "reference",
+                "price",
+                "std_error",
+                "z",
+                "passed",
+                "error",
+                "caution",
+            ])?;
+            for o in outcomes {
+                let p = o.result.as_ref().ok();
+                let num = |x: Option<f64>| x.map(|x| x.to_string()).unwrap_or_default();
+                w.write_record([
+                    o.case.file.clone(),
+                    o.case.reference.name().to_string(),
+                    o.reference_value.to_string(),
+                    num(p.map(|p| p.estimate.price)),
+                    num(p.map(|p| p.estimate.std_error)),
+                    num(o.z().filter(|z| z.is_finite())),
+                    o.passed().to_string(),
+                    o.result.as_ref().err().map(crate::batch::one_line).unwrap_or_default(),
+                    CAUTION.to_string(),
+                ])?;
+            }
+            w.flush()
+        }
         Format::Json => {
             let cases: Vec<serde_json::Value> = outcomes
                 .iter()
@@ -245,6 +348,11 @@ pub fn group(x: f64, decimals: usize) -> String {
         Some(f) => format!("{sign}{grouped}.{f}"),
         None => format!("{sign}{grouped}"),
     }
+}
+
+/// The first 16 hex digits: enough to tell files apart at a glance (JSON and CSV carry all 64).
+fn short_hash(h: &str) -> &str {
+    &h[..h.len().min(16)]
 }
 
 fn short(v: f64) -> String {
