@@ -235,6 +235,8 @@ struct Checker {
     /// Header lines that may appear once, and where they were.
     seen: HashMap<&'static str, Span>,
     warnings: Vec<Diagnostic>,
+    /// Let slots holding a performance, for the warning on `worst < 70`.
+    performance_lets: std::collections::HashSet<usize>,
 }
 
 impl Default for Product {
@@ -495,7 +497,8 @@ impl Checker {
                         x * 100.0,
                         d
                     ))
-                    .with_fix(format!("if you meant {} percent, write `--set {}={}%`", o.value, o.name, o.value)),
+                    .with_fix(format!("if you meant {} percent, write `--set {}={}%`", o.value, o.name, o.value))
+                    .as_warning(),
                 );
             }
         }
@@ -631,6 +634,9 @@ impl Checker {
                 }
                 let slot = self.product.lets;
                 self.product.lets += 1;
+                if self.is_performance(&e) {
+                    self.performance_lets.insert(slot);
+                }
                 self.product.let_names.push(name.text.clone());
                 self.scopes.last_mut().expect("inside a block").push((name.text.clone(), slot, e.ty));
                 Some(TStmt::Let(slot, e))
@@ -831,6 +837,23 @@ impl Checker {
         }
     }
 
+    /// Whether an expression is a performance (a ratio to the initial level): `perf(X)`,
+    /// an average, highest or lowest of one, a min or max of several, or a `let` of one.
+    fn is_performance(&self, e: &TExpr) -> bool {
+        match &e.kind {
+            TKind::Perf { .. } => true,
+            TKind::Aggregate(Aggregate::Average | Aggregate::Highest | Aggregate::Lowest, body, _) => {
+                self.is_performance(body)
+            }
+            TKind::Func(Func::Min | Func::Max, args) => {
+                args.iter().any(|a| self.is_performance(a))
+                    && args.iter().all(|a| self.is_performance(a) || matches!(a.kind, TKind::Const(_)))
+            }
+            TKind::Let(slot) => self.performance_lets.contains(slot),
+            _ => false,
+        }
+    }
+
     fn binary(&mut self, op: BinaryOp, a: TExpr, b: TExpr, span: Span) -> Option<TExpr> {
         use BinaryOp::*;
         let (want, out) = match op {
@@ -853,7 +876,7 @@ impl Checker {
         }
         if matches!(op, Lt | Le | Gt | Ge) {
             let big = |e: &TExpr| matches!(e.kind, TKind::Const(c) if c.abs() > 5.0);
-            let perf = |e: &TExpr| matches!(e.kind, TKind::Perf { .. });
+            let perf = |e: &TExpr| self.is_performance(e);
             if let Some(k) = [(&a, &b), (&b, &a)].into_iter().find(|(p, k)| perf(p) && big(k)).map(|(_, k)| k) {
                 let TKind::Const(c) = k.kind else { unreachable!("checked above") };
                 self.warnings.push(

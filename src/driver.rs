@@ -276,6 +276,9 @@ fn price_command(args: &PriceArgs) -> ExitCode {
 /// stopped; a single file keeps the plain diagnostic.
 fn report_failures(rows: &[batch::Row]) {
     for row in rows {
+        if let Ok(p) = &row.outcome {
+            eprint!("{}", p.warnings);
+        }
         if let Err(f) = &row.outcome {
             let text = f.render();
             if rows.len() > 1 && !text.starts_with(&row.file) {
@@ -398,7 +401,9 @@ pub fn price_file_to(
         }
     };
     let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+    let warnings = render_all(&in_file(product.warnings.clone()), Some(&source));
     Ok(Priced {
+        warnings,
         file: file.display().to_string(),
         market_file: market_path.display().to_string(),
         product: program.name.clone(),

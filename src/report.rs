@@ -25,6 +25,8 @@ pub struct Priced {
     pub estimate: Estimate,
     /// What it takes to reproduce the number exactly.
     pub record: Record,
+    /// Rendered warnings about the payoff (allowed, but probably not meant).
+    pub warnings: String,
 }
 
 /// The reproducibility record of one result: with the same files (checked by hash), the
@@ -204,6 +206,14 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     let hidden = e.profile.iter().filter(quiet).count();
     if hidden > 0 {
         writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
+    }
+    writeln!(out, "  (plain averages over the paths: they add up to the price before control variates)")?;
+    if e.variance_reduction.is_some_and(|v| v < 1.0) {
+        writeln!(out)?;
+        writeln!(
+            out,
+            "  note: variance reduction made this estimate noisier; antithetic pairs can raise the variance of a payoff that is not monotone in the levels: compare with --no-antithetic"
+        )?;
     }
     writeln!(out)?;
     writeln!(out, "{CAUTION}")

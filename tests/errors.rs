@@ -102,3 +102,25 @@ fn a_payoff_without_a_market_says_how_to_give_one() {
     assert!(stderr.contains("no market data"), "{stderr}");
     assert!(stderr.contains("--market FILE"), "{stderr}");
 }
+
+#[test]
+fn likely_slips_are_warned_about_but_priced() {
+    let (stdout, stderr, code) =
+        run(&["price".into(), "tests/warn/no_percent.payoff".into(), "--paths".into(), "2000".into()]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(stdout.contains("price"), "{stdout}");
+    assert_eq!(
+        stderr,
+        "tests/warn/no_percent.payoff:9:8: warning: a performance is compared with 70, that is 7000% of the initial level\n   9 |     if worst < barrier {\n     |        ^^^^^^^^^^^^^^^\n  fix: if you meant 70 percent, write `70%` (here or where the parameter is given)\n"
+    );
+    let (_, stderr, code) = run(&[
+        "price".into(),
+        "payoffs/digital.payoff".into(),
+        "--paths".into(),
+        "2000".into(),
+        "--set".into(),
+        "payout=15".into(),
+    ]);
+    assert_eq!(code, Some(0));
+    assert!(stderr.contains("warning: `--set payout=15` sets `payout` to 15, that is 1500%"), "{stderr}");
+}
