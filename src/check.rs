@@ -154,6 +154,8 @@ pub struct ScheduleDef {
 pub struct StateDef {
     pub name: String,
     pub init: f64,
+    /// A number or a flag, fixed by the starting value.
+    pub ty: Ty,
 }
 
 /// A payoff file after the check: every name resolved, every expression typed.
@@ -175,6 +177,8 @@ pub struct Product {
     /// Span of each let slot's name, for messages.
     pub let_names: Vec<String>,
     pub blocks: Vec<Block>,
+    /// Things that are allowed but probably not meant, such as `perf(X) < 90`.
+    pub warnings: Vec<Diagnostic>,
 }
 
 /// A `--set NAME=VALUE` override.
@@ -202,6 +206,7 @@ pub fn check(file: &syntax::File, overrides: &[Override]) -> Result<Product, Vec
     let mut c = Checker::default();
     c.run(file, overrides);
     if c.errors.is_empty() {
+        c.product.warnings = std::mem::take(&mut c.warnings);
         Ok(c.product)
     } else {
         c.errors.sort_by_key(|d| d.span.map(|s| s.start));
@@ -229,6 +234,9 @@ struct Checker {
     notional_seen: bool,
     /// Header lines that may appear once, and where they were.
     seen: HashMap<&'static str, Span>,
+    warnings: Vec<Diagnostic>,
+    /// Let slots holding a performance, for the warning on `worst < 70`.
+    performance_lets: std::collections::HashSet<usize>,
 }
 
 impl Default for Product {
@@ -246,6 +254,7 @@ impl Default for Product {
             lets: 0,
             let_names: Vec::new(),
             blocks: Vec::new(),
+            warnings: Vec::new(),
         }
     }
 }
@@ -317,7 +326,9 @@ impl Checker {
                     let value = match overrides_left.iter().position(|o| o.name == name.text) {
                         Some(i) => {
                             let o = overrides_left.remove(i);
-                            self.override_value(o, expr)
+                            // A refused override is reported; the default keeps the
+                            // parameter declared so that its uses raise no further errors.
+                            self.override_value(o, expr).or_else(|| self.constant_quiet(expr))
                         }
                         None => self.constant(expr, "a parameter"),
                     };
@@ -336,10 +347,10 @@ impl Checker {
                     }
                 }
                 Item::State(name, expr) => {
-                    if let Some((v, _)) = self.constant(expr, "a state's starting value") {
+                    if let Some((v, ty)) = self.constant(expr, "a state's starting value") {
                         let idx = self.product.states.len();
                         if self.declare(name, Global::State(idx)) {
-                            self.product.states.push(StateDef { name: name.text.clone(), init: v });
+                            self.product.states.push(StateDef { name: name.text.clone(), init: v, ty });
                         }
                     }
                 }
@@ -412,6 +423,17 @@ impl Checker {
                 Item::At { date, body, span } => {
                     has_block = true;
                     let Some(d) = self.date(date) else { continue };
+                    if let DateRef::Only(s) = d {
+                        if !holds_one_date(&self.product.schedules[s].schedule) {
+                            let n = &self.product.schedules[s].name;
+                            self.error(
+                                date.span,
+                                format!("`{n}` is a schedule of several dates, so `at {n}` has no one date"),
+                                format!("loop over it with `for each t in {n} {{ ... }}`, or write `at last({n})` or `at first({n})`"),
+                            );
+                            continue;
+                        }
+                    }
                     let body = self.block(body);
                     self.product.blocks.push(Block { when: When::At(d, date.span), body, span: *span });
                 }
@@ -455,10 +477,32 @@ impl Checker {
             for e in &mut self.errors[before..] {
                 e.span = None;
                 e.message = format!("`--set {}={}`: {}", o.name, o.value, e.message);
+                e.fix = Some(format!(
+                    "give a number, a percentage or a flag (2.5%, 0.025, true), or a parameter declared above `{}`",
+                    o.name
+                ));
             }
             return None;
         }
-        let default_ty = self.constant_quiet(default).map(|(_, t)| t);
+        let default_value = self.constant_quiet(default);
+        if let (Some((x, Ty::Number)), Some((d, Ty::Number))) = (v, default_value) {
+            if d != 0.0 && d.abs() < 1.0 && x.abs() >= 1.0 && !o.value.contains('%') {
+                self.warnings.push(
+                    Diagnostic::new(format!(
+                        "`--set {}={}` sets `{}` to {}, that is {}%, where the default is {}",
+                        o.name,
+                        o.value,
+                        o.name,
+                        o.value,
+                        x * 100.0,
+                        d
+                    ))
+                    .with_fix(format!("if you meant {} percent, write `--set {}={}%`", o.value, o.name, o.value))
+                    .as_warning(),
+                );
+            }
+        }
+        let default_ty = default_value.map(|(_, t)| t);
         if let (Some((_, ty)), Some(dty)) = (v, default_ty) {
             if ty != dty {
                 self.errors.push(
@@ -590,6 +634,9 @@ impl Checker {
                 }
                 let slot = self.product.lets;
                 self.product.lets += 1;
+                if self.is_performance(&e) {
+                    self.performance_lets.insert(slot);
+                }
                 self.product.let_names.push(name.text.clone());
                 self.scopes.last_mut().expect("inside a block").push((name.text.clone(), slot, e.ty));
                 Some(TStmt::Let(slot, e))
@@ -611,8 +658,13 @@ impl Checker {
                     }
                 };
                 let e = e?;
-                if e.ty == Ty::Date {
-                    self.error(e.span, "a state holds a number or a flag, not a date", "assign a number");
+                let ty = self.product.states[slot].ty;
+                if e.ty != ty {
+                    self.error(
+                        e.span,
+                        format!("`{}` holds {}, but this is {}", name.text, ty.describe(), e.ty.describe()),
+                        format!("assign {} (its type is set by its starting value)", ty.describe()),
+                    );
                     return None;
                 }
                 Some(TStmt::Assign(slot, e))
@@ -758,7 +810,7 @@ impl Checker {
         match self.globals.get(n).map(|(g, _)| *g) {
             Some(Global::Param(v, ty)) => Some(TExpr { kind: TKind::Const(v), ty, span }),
             Some(Global::Notional) => Some(TExpr { kind: TKind::Const(self.product.notional), ty: Ty::Number, span }),
-            Some(Global::State(s)) => Some(TExpr { kind: TKind::State(s), ty: Ty::Number, span }),
+            Some(Global::State(s)) => Some(TExpr { kind: TKind::State(s), ty: self.product.states[s].ty, span }),
             Some(Global::Schedule(s)) => Some(TExpr { kind: TKind::Date(DateRef::Only(s)), ty: Ty::Date, span }),
             Some(Global::Underlying(_)) => {
                 self.error(
@@ -769,14 +821,36 @@ impl Checker {
                 None
             }
             None => {
+                let otherwise = if self.loop_var.is_none() && !self.scopes.is_empty() {
+                    "declare it with `param`, `state`, `let` or `dates`; a loop date such as `t` exists only inside `for each t in SCHEDULE { ... }`"
+                } else {
+                    "declare it with `param`, `state`, `let` or `dates`"
+                };
                 let fix = if n == "notional" && !self.notional_seen {
                     "declare it at the top with `notional 1_000_000`".to_string()
                 } else {
-                    self.suggest(n, "declare it with `param`, `state`, `let` or `dates`")
+                    self.suggest(n, otherwise)
                 };
                 self.error(span, format!("unknown name `{n}`"), fix);
                 None
             }
+        }
+    }
+
+    /// Whether an expression is a performance (a ratio to the initial level): `perf(X)`,
+    /// an average, highest or lowest of one, a min or max of several, or a `let` of one.
+    fn is_performance(&self, e: &TExpr) -> bool {
+        match &e.kind {
+            TKind::Perf { .. } => true,
+            TKind::Aggregate(Aggregate::Average | Aggregate::Highest | Aggregate::Lowest, body, _) => {
+                self.is_performance(body)
+            }
+            TKind::Func(Func::Min | Func::Max, args) => {
+                args.iter().any(|a| self.is_performance(a))
+                    && args.iter().all(|a| self.is_performance(a) || matches!(a.kind, TKind::Const(_)))
+            }
+            TKind::Let(slot) => self.performance_lets.contains(slot),
+            _ => false,
         }
     }
 
@@ -799,6 +873,21 @@ impl Checker {
             };
             self.error(bad.span, format!("{what} must be {}, but this is {}", want.describe(), bad.ty.describe()), fix);
             return None;
+        }
+        if matches!(op, Lt | Le | Gt | Ge) {
+            let big = |e: &TExpr| matches!(e.kind, TKind::Const(c) if c.abs() > 5.0);
+            let perf = |e: &TExpr| self.is_performance(e);
+            if let Some(k) = [(&a, &b), (&b, &a)].into_iter().find(|(p, k)| perf(p) && big(k)).map(|(_, k)| k) {
+                let TKind::Const(c) = k.kind else { unreachable!("checked above") };
+                self.warnings.push(
+                    Diagnostic::at(
+                        span,
+                        format!("a performance is compared with {c}, that is {}% of the initial level", c * 100.0),
+                    )
+                    .with_fix(format!("if you meant {c} percent, write `{c}%` (here or where the parameter is given)"))
+                    .as_warning(),
+                );
+            }
         }
         if let (TKind::Const(x), TKind::Const(y)) = (&a.kind, &b.kind) {
             let v = fold(op, *x, *y);
@@ -989,6 +1078,16 @@ impl Checker {
             return None;
         }
         Some(TExpr { kind: TKind::Touched { asset, direction, level, relative, from, to }, ty: Ty::Flag, span })
+    }
+}
+
+/// Whether a schedule surely holds a single date (a one-date list or one step).
+fn holds_one_date(s: &syntax::Schedule) -> bool {
+    match &s.kind {
+        syntax::ScheduleKind::List(dates) => dates.len() == 1,
+        syntax::ScheduleKind::Steps { n, .. } => *n == 1,
+        syntax::ScheduleKind::Every { from, to, .. } => from.0 == to.0,
+        syntax::ScheduleKind::BusinessDays { .. } => false,
     }
 }
 

@@ -29,7 +29,7 @@ mod vanilla;
 #[cfg(test)]
 mod test_support;
 
-pub use asian::{geometric_asian_continuous, geometric_asian_discrete};
+pub use asian::{geometric_asian_continuous, geometric_asian_discrete, geometric_average_forward};
 pub use barrier::{
     barrier_hit_probability, bgk_shifted_barrier, lookback_discrete_shift, standard_barrier,
     standard_barrier_with_rebate, RebateTiming, BGK_BETA,

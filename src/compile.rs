@@ -258,6 +258,9 @@ struct Compiler<'p> {
     payments: Vec<Slot>,
     pay_sites: Vec<Span>,
     averages: Vec<(usize, Vec<usize>)>,
+    /// Running accumulators of aggregates that read only levels, by (site, schedule):
+    /// the register and how many fixings it already holds.
+    running: std::collections::HashMap<(usize, usize, usize), (u32, usize)>,
 }
 
 /// The date context an expression is compiled in.
@@ -294,6 +297,7 @@ impl<'p> Compiler<'p> {
             payments: Vec::new(),
             pay_sites: Vec::new(),
             averages: Vec::new(),
+            running: std::collections::HashMap::new(),
         }
     }
 
@@ -913,47 +917,59 @@ impl<'p> Compiler<'p> {
             Aggregate::Highest | Aggregate::Any => Acc::Max,
             Aggregate::Lowest | Aggregate::All => Acc::Min,
         };
-        let acc = self.alloc();
-        let mut folded: Option<f64> = None;
-        let mut started = false;
-        for w in &dates {
+        // An aggregate that reads only levels is the same running value at every date of a
+        // loop: keep its accumulator between runs and add only the new fixings, so a daily
+        // `lowest(... over days)` inside `for each t in days` costs one operation a day.
+        let key = (span.start, span.end, s);
+        let cached = if reads_only_levels(body) { self.running.get(&key).copied() } else { None };
+        let (acc, done) = match cached {
+            Some((acc, done)) if done <= dates.len() => (acc, done),
+            _ => (self.alloc(), 0),
+        };
+        for (i, w) in dates.iter().enumerate().skip(done) {
             let inner = Now { idx: self.grid_index(w.0), ..now };
             let v = self.expr(body, inner)?;
-            if let Src::Const(x) = v.src {
-                folded = Some(match folded {
-                    None => x,
-                    Some(f) => match acc_op {
-                        Acc::Add => f + x,
-                        Acc::Min => f.min(x),
-                        Acc::Max => f.max(x),
-                    },
-                });
-                continue;
-            }
-            if started {
-                self.ops.push(Op::Acc { op: acc_op, dst: acc, src: v.src });
-            } else {
+            if i == 0 {
                 self.ops.push(Op::Copy { dst: acc, src: v.src });
-                started = true;
+            } else {
+                self.ops.push(Op::Acc { op: acc_op, dst: acc, src: v.src });
             }
             self.release(v);
         }
-        if let Some(f) = folded {
-            if started {
-                self.ops.push(Op::Acc { op: acc_op, dst: acc, src: Src::Const(f) });
-            }
-        }
-        let result = if started {
-            V { src: Src::Reg(acc), temp: true }
+        let result = if reads_only_levels(body) {
+            // The accumulator lives on for later runs; consumers only read it.
+            self.running.insert(key, (acc, dates.len()));
+            V { src: Src::Reg(acc), temp: false }
         } else {
-            self.free.push(acc);
-            V::konst(folded.unwrap_or(0.0))
+            V { src: Src::Reg(acc), temp: true }
         };
         Some(if agg == Aggregate::Average {
             self.push_bin(Bin::Mul, result, V::konst(1.0 / dates.len() as f64))
         } else {
             result
         })
+    }
+}
+
+/// Whether an expression depends only on levels and constants (not on state, lets, the
+/// loop date or monitors), so its value on a fixing date is the same in every run.
+fn reads_only_levels(e: &TExpr) -> bool {
+    match &e.kind {
+        TKind::Const(_) | TKind::Initial(_) => true,
+        TKind::Level { at, .. } | TKind::Perf { at, .. } => {
+            matches!(at, None | Some(DateRef::Term(_) | DateRef::First(_) | DateRef::Last(_) | DateRef::Only(_)))
+        }
+        TKind::Unary(_, a) => reads_only_levels(a),
+        TKind::Binary(_, a, b) => reads_only_levels(a) && reads_only_levels(b),
+        TKind::If(c, a, b) => reads_only_levels(c) && reads_only_levels(a) && reads_only_levels(b),
+        TKind::Func(_, args) => args.iter().all(reads_only_levels),
+        TKind::Aggregate(_, body, _) => reads_only_levels(body),
+        TKind::Date(_)
+        | TKind::State(_)
+        | TKind::Let(_)
+        | TKind::Position
+        | TKind::Years(_)
+        | TKind::Touched { .. } => false,
     }
 }
 

@@ -36,11 +36,13 @@ pub struct Diagnostic {
     pub message: String,
     /// What would fix it.
     pub fix: Option<String>,
+    /// A warning is shown but does not stop the run.
+    pub warning: bool,
 }
 
 impl Diagnostic {
     pub fn new(message: impl Into<String>) -> Self {
-        Diagnostic { file: None, span: None, message: message.into(), fix: None }
+        Diagnostic { file: None, span: None, message: message.into(), fix: None, warning: false }
     }
 
     pub fn at(span: Span, message: impl Into<String>) -> Self {
@@ -50,6 +52,13 @@ impl Diagnostic {
     #[must_use]
     pub fn with_fix(mut self, fix: impl Into<String>) -> Self {
         self.fix = Some(fix.into());
+        self
+    }
+
+    /// Marks the diagnostic as a warning: shown, but the run goes on.
+    #[must_use]
+    pub fn as_warning(mut self) -> Self {
+        self.warning = true;
         self
     }
 
@@ -73,11 +82,18 @@ impl Diagnostic {
     /// `source` is the text of `self.file`; without it only the first line is drawn.
     pub fn render(&self, source: Option<&str>) -> String {
         let mut out = String::new();
+        let warned;
+        let message = if self.warning {
+            warned = format!("warning: {}", self.message);
+            &warned
+        } else {
+            &self.message
+        };
         let file = self.file.as_ref().map(|f| f.display().to_string());
         match (&file, self.span, source) {
             (Some(file), Some(span), Some(src)) => {
                 let (line_no, col, line) = locate(src, span.start);
-                let _ = writeln!(out, "{file}:{line_no}:{col}: {}", self.message);
+                let _ = writeln!(out, "{file}:{line_no}:{col}: {message}");
                 let gutter = line_no.to_string().len().max(4);
                 let shown = line.replace('\t', " ");
                 let _ = writeln!(out, "{line_no:>gutter$} | {shown}");
@@ -86,10 +102,10 @@ impl Diagnostic {
                 let _ = writeln!(out, "{:>gutter$} | {}{}", "", " ".repeat(col - 1), "^".repeat(width));
             }
             (Some(file), _, _) => {
-                let _ = writeln!(out, "{file}: {}", self.message);
+                let _ = writeln!(out, "{file}: {message}");
             }
             (None, _, _) => {
-                let _ = writeln!(out, "{}", self.message);
+                let _ = writeln!(out, "{message}");
             }
         }
         if let Some(fix) = &self.fix {

@@ -1,7 +1,9 @@
 //! The driver: command-line arguments → pipeline → report and exit status.
 //!
-//! Only this module prints diagnostics and picks exit codes: 0 priced, 2 bad input
-//! (payoff, market or arguments), 1 internal failure.
+//! Only this module prints diagnostics and picks exit codes. `price`: 0 all priced, 2 bad
+//! input (a payoff, market or argument; in a batch, any row that failed), 1 internal
+//! failure. `compare`: 0 all agree, 1 anything disagrees, is missing or failed, 2 the
+//! price list or an argument is unusable.
 
 use std::fs;
 use std::io::{self, Write};
@@ -10,10 +12,12 @@ use std::process::ExitCode;
 
 use clap::{Args, Parser, Subcommand};
 
+use crate::batch::{self, Request, Target};
 use crate::check::{self, Override};
+use crate::compare;
 use crate::compile;
 use crate::diagnostic::{render_all, Diagnostic};
-use crate::report::{self, Format, Priced};
+use crate::report::{self, Format, Priced, Record, TargetOutcome};
 use crate::sim::{self, market::Market, Settings};
 use crate::syntax;
 
@@ -27,21 +31,68 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Price a payoff file.
+    /// Price payoff files.
     Price(PriceArgs),
+    /// Compare an external price list (CSV) with pathfold's prices.
+    Compare(CompareArgs),
+    /// Price the validation set and compare each case with its closed form.
+    Check(CheckArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct CompareArgs {
+    /// The price list: CSV with a header row naming `file` and/or `product`, `price`, and
+    /// optionally `tolerance`.
+    pub prices: PathBuf,
+    /// Payoff files or folders (default: the folder holding the price list).
+    #[arg(value_name = "FILE_OR_FOLDER")]
+    pub files: Vec<PathBuf>,
+    /// Largest difference, in standard errors, that still agrees.
+    #[arg(long, default_value_t = 3.0, value_name = "Z")]
+    pub max_z: f64,
+    #[command(flatten)]
+    pub pricing: PricingArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct CheckArgs {
+    /// Folder holding the validation payoffs and their `references.toml`.
+    #[arg(long, value_name = "FOLDER", default_value = "payoffs/validation")]
+    pub folder: PathBuf,
+    /// Paths per case.
+    #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
+    pub paths: u64,
+    /// Random seed.
+    #[arg(long, default_value_t = sim::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Worker threads (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
 }
 
 #[derive(Debug, Args)]
 pub struct PriceArgs {
-    /// The payoff file.
-    pub file: PathBuf,
-    /// Market data (TOML); default: the file the payoff names with `market "..."`.
+    /// Payoff files, or folders to search for `.payoff` files. One file gives the full
+    /// report; several, or a folder, give one row per file.
+    #[arg(required = true, value_name = "FILE_OR_FOLDER")]
+    pub files: Vec<PathBuf>,
+    #[command(flatten)]
+    pub pricing: PricingArgs,
+}
+
+/// The pricing options `compare` shares with `price`.
+#[derive(Debug, Args)]
+pub struct PricingArgs {
+    /// Market data (TOML); default: the file each payoff names with `market "..."`.
     #[arg(long, value_name = "FILE")]
     pub market: Option<PathBuf>,
     /// Number of paths.
     #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
     pub paths: u64,
-    /// Random seed; the same seed gives the same result on any number of threads.
+    /// Random seed.
     #[arg(long, default_value_t = sim::DEFAULT_SEED)]
     pub seed: u64,
     /// Override a parameter: `--set coupon=2.5%` (repeatable).
@@ -59,6 +110,15 @@ pub struct PriceArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
+    /// Add paths until the standard error is at most this (amount or `X%` of notional).
+    #[arg(long, value_name = "SE")]
+    pub target_se: Option<String>,
+    /// The most paths an error-bounded run may use.
+    #[arg(long, value_name = "N", default_value_t = batch::DEFAULT_MAX_PATHS)]
+    pub max_paths: u64,
+    /// Write the result to this file (replaced whole, never left half-written).
+    #[arg(long, value_name = "FILE")]
+    pub output: Option<PathBuf>,
 }
 
 /// Why a file could not be priced.
@@ -85,6 +145,35 @@ impl Failure {
 pub fn run(cli: Cli) -> ExitCode {
     match cli.command {
         Command::Price(args) => price_command(&args),
+        Command::Compare(args) => compare_command(&args),
+        Command::Check(args) => check_command(&args),
+    }
+}
+
+fn check_command(args: &CheckArgs) -> ExitCode {
+    let settings = Settings { paths: args.paths.max(2), seed: args.seed, ..Settings::default() };
+    let outcomes = match with_threads(args.threads, || crate::validate::run(&args.folder, &settings)) {
+        Ok(Ok(o)) => o,
+        Ok(Err(d)) => {
+            let text = d.file.as_ref().and_then(|f| fs::read_to_string(f).ok());
+            eprint!("{}", d.render(text.as_deref()));
+            return ExitCode::from(2);
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    for o in &outcomes {
+        if let Err(f) = &o.result {
+            eprint!("{}", f.render());
+        }
+    }
+    let stdout = io::stdout();
+    let mut out = stdout.lock();
+    match report::write_checks(&mut out, &outcomes, args.format).and_then(|()| out.flush()) {
+        Ok(()) | Err(_) if outcomes.iter().all(crate::validate::Outcome::passed) => ExitCode::SUCCESS,
+        _ => ExitCode::from(1),
     }
 }
 
@@ -100,15 +189,10 @@ fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -
     }
 }
 
-fn price_command(args: &PriceArgs) -> ExitCode {
-    let overrides: Result<Vec<Override>, Diagnostic> = args.set.iter().map(|s| Override::parse(s)).collect();
-    let overrides = match overrides {
-        Ok(o) => o,
-        Err(d) => {
-            eprint!("{}", d.render(None));
-            return ExitCode::from(2);
-        }
-    };
+/// Turns the pricing options into a request, or the message for a bad option.
+fn request(args: &PricingArgs) -> Result<Request, String> {
+    let overrides: Vec<Override> =
+        args.set.iter().map(|s| Override::parse(s)).collect::<Result<_, Diagnostic>>().map_err(|d| d.render(None))?;
     let settings = Settings {
         paths: args.paths,
         seed: args.seed,
@@ -116,35 +200,140 @@ fn price_command(args: &PriceArgs) -> ExitCode {
         control_variates: !args.no_control,
     };
     if settings.paths < 2 {
-        eprintln!("--paths must be at least 2");
-        return ExitCode::from(2);
+        return Err("--paths must be at least 2\n".into());
     }
-    let result = with_threads(args.threads, || price_file(&args.file, args.market.as_deref(), &overrides, &settings));
-    let result = match result {
+    let target = match &args.target_se {
+        Some(t) => Some(Target::parse(t).map_err(|e| format!("--target-se {t}: {e}\n"))?),
+        None => None,
+    };
+    Ok(Request { market: args.market.clone(), overrides, settings, target, max_paths: args.max_paths })
+}
+
+/// Writes a report to stdout, or atomically to `--output`; returns the exit status on failure.
+fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>) -> Result<(), ExitCode> {
+    let result = match output {
+        Some(path) => batch::write_atomically(path, |w| write(w)),
+        None => {
+            let stdout = io::stdout();
+            let mut out = stdout.lock();
+            write(&mut out).and_then(|()| out.flush())
+        }
+    };
+    match result {
+        Ok(()) => Ok(()),
+        Err(e) if output.is_none() && e.kind() == io::ErrorKind::BrokenPipe => Ok(()),
+        Err(e) => {
+            match output {
+                Some(path) => eprintln!("could not write {}: {e}", path.display()),
+                None => eprintln!("could not write the report: {e}"),
+            }
+            Err(ExitCode::from(1))
+        }
+    }
+}
+
+fn price_command(args: &PriceArgs) -> ExitCode {
+    let p = &args.pricing;
+    let request = match request(p) {
+        Ok(r) => r,
+        Err(e) => {
+            eprint!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    let single = args.files.len() == 1 && !args.files[0].is_dir();
+    let rows = with_threads(p.threads, || {
+        let files = batch::collect_files(&args.files);
+        let progress = batch::Progress::new(files.len(), !single);
+        let rows = batch::price_all(files, &request, &progress);
+        progress.done();
+        rows
+    });
+    let rows = match rows {
         Ok(r) => r,
         Err(e) => {
             eprintln!("{e}");
             return ExitCode::from(2);
         }
     };
-    match result {
-        Ok(priced) => {
-            let stdout = io::stdout();
-            let mut out = stdout.lock();
-            match report::write_one(&mut out, &priced, args.format).and_then(|()| out.flush()) {
-                Ok(()) => ExitCode::SUCCESS,
-                Err(e) if e.kind() == io::ErrorKind::BrokenPipe => ExitCode::SUCCESS,
-                Err(e) => {
-                    eprintln!("could not write the report: {e}");
-                    ExitCode::from(1)
-                }
-            }
+    report_failures(&rows);
+    let written = if single && p.format != Format::Csv {
+        match &rows[0].outcome {
+            Ok(priced) => emit(p.output.as_deref(), |w| report::write_one(w, priced, p.format)),
+            Err(_) => Ok(()),
         }
-        Err(f) => {
-            eprint!("{}", f.render());
-            ExitCode::from(if f.internal { 1 } else { 2 })
+    } else {
+        emit(p.output.as_deref(), |w| batch::write_rows(w, &rows, p.format))
+    };
+    if let Err(code) = written {
+        return code;
+    }
+    batch::exit_status(&rows)
+}
+
+/// Full diagnostics with the caret go to stderr; rows carry a one-line summary. A problem
+/// found in another file (the market) is introduced, in a batch, by the payoff file it
+/// stopped; a single file keeps the plain diagnostic.
+fn report_failures(rows: &[batch::Row]) {
+    for row in rows {
+        if let Ok(p) = &row.outcome {
+            eprint!("{}", p.warnings);
+        }
+        if let Err(f) = &row.outcome {
+            let text = f.render();
+            if rows.len() > 1 && !text.starts_with(&row.file) {
+                eprintln!("{}: could not be priced:", row.file);
+            }
+            eprint!("{text}");
         }
     }
+}
+
+fn compare_command(args: &CompareArgs) -> ExitCode {
+    let p = &args.pricing;
+    let request = match request(p) {
+        Ok(r) => r,
+        Err(e) => {
+            eprint!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    if !(args.max_z.is_finite() && args.max_z > 0.0) {
+        eprintln!("--max-z must be a positive number, not {}", args.max_z);
+        return ExitCode::from(2);
+    }
+    let list = match compare::read_list(&args.prices) {
+        Ok(l) => l,
+        Err(d) => {
+            eprint!("{}", d.render(fs::read_to_string(&args.prices).ok().as_deref()));
+            return ExitCode::from(2);
+        }
+    };
+    let inputs = if args.files.is_empty() {
+        vec![args.prices.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new(".")).to_path_buf()]
+    } else {
+        args.files.clone()
+    };
+    let rows = with_threads(p.threads, || {
+        let files = batch::collect_files(&inputs);
+        let progress = batch::Progress::new(files.len(), true);
+        let rows = batch::price_all(files, &request, &progress);
+        progress.done();
+        rows
+    });
+    let rows = match rows {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("{e}");
+            return ExitCode::from(2);
+        }
+    };
+    report_failures(&rows);
+    let lines = compare::compare(&list, &rows, args.max_z);
+    if let Err(code) = emit(p.output.as_deref(), |w| compare::write(w, &lines, p.format)) {
+        return code;
+    }
+    compare::exit_status(&lines)
 }
 
 /// Parses, checks, compiles and prices one payoff file.
@@ -153,6 +342,18 @@ pub fn price_file(
     market: Option<&Path>,
     overrides: &[Override],
     settings: &Settings,
+) -> Result<Priced, Failure> {
+    price_file_to(file, market, overrides, settings, None)
+}
+
+/// [`price_file`], optionally adding paths until the standard error meets a target
+/// (`(target, max_paths)`).
+pub fn price_file_to(
+    file: &Path,
+    market: Option<&Path>,
+    overrides: &[Override],
+    settings: &Settings,
+    target: Option<(Target, u64)>,
 ) -> Result<Priced, Failure> {
     let source = fs::read_to_string(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
@@ -186,9 +387,23 @@ pub fn price_file(
             Failure::input(in_file(ds), Some(source.clone()))
         }
     })?;
-    let estimate =
-        sim::simulate(&program, settings).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+    let market_bytes = fs::read(&market_path).map_err(|e| {
+        Failure::input(vec![Diagnostic::new(format!("cannot read the market file: {e}")).in_file(&market_path)], None)
+    })?;
+    let (estimate, target) = match target {
+        None => (sim::simulate(&program, settings), None),
+        Some((t, max_paths)) => {
+            let se = t.amount(program.notional);
+            match sim::simulate_to_target(&program, settings, se, max_paths) {
+                Ok((e, met)) => (Ok(e), Some(TargetOutcome { std_error: se, max_paths, met })),
+                Err(d) => (Err(d), None),
+            }
+        }
+    };
+    let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+    let warnings = render_all(&in_file(product.warnings.clone()), Some(&source));
     Ok(Priced {
+        warnings,
         file: file.display().to_string(),
         market_file: market_path.display().to_string(),
         product: program.name.clone(),
@@ -196,5 +411,13 @@ pub fn price_file(
         notional: program.notional,
         params: product.params.clone(),
         estimate,
+        record: Record {
+            version: env!("CARGO_PKG_VERSION"),
+            payoff_sha256: batch::sha256_hex(source.as_bytes()),
+            market_sha256: batch::sha256_hex(&market_bytes),
+            control_variates: settings.control_variates,
+            overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
+            target,
+        },
     })
 }

@@ -5,8 +5,10 @@
 //! (paths, variance reduction, statistics) → [`report`] (table, JSON). [`driver`] chains
 //! them; `main.rs` only parses arguments.
 
+pub mod batch;
 pub mod check;
 pub mod closed_form;
+pub mod compare;
 pub mod compile;
 pub mod date;
 pub mod diagnostic;
@@ -14,3 +16,4 @@ pub mod driver;
 pub mod report;
 pub mod sim;
 pub mod syntax;
+pub mod validate;

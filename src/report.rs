@@ -8,6 +8,7 @@ use std::io::{self, Write};
 use serde_json::json;
 
 use crate::sim::Estimate;
+use crate::validate::Outcome;
 
 /// The line every report ends with.
 pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
@@ -22,6 +23,37 @@ pub struct Priced {
     pub notional: f64,
     pub params: Vec<(String, f64)>,
     pub estimate: Estimate,
+    /// What it takes to reproduce the number exactly.
+    pub record: Record,
+    /// Rendered warnings about the payoff (allowed, but probably not meant).
+    pub warnings: String,
+}
+
+/// The reproducibility record of one result: with the same files (checked by hash), the
+/// same version and these settings, pathfold gives the same bits.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Record {
+    pub version: &'static str,
+    /// SHA-256 of the payoff file's bytes, hex.
+    pub payoff_sha256: String,
+    /// SHA-256 of the market file's bytes, hex.
+    pub market_sha256: String,
+    /// Whether control variates were asked for (the estimate lists those used).
+    pub control_variates: bool,
+    /// The `--set` overrides, as given.
+    pub overrides: Vec<String>,
+    /// The error target of an error-bounded run, if any.
+    pub target: Option<TargetOutcome>,
+}
+
+/// How an error-bounded run (`--target-se`) ended.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TargetOutcome {
+    /// The target standard error, in currency.
+    pub std_error: f64,
+    /// The largest path count allowed.
+    pub max_paths: u64,
+    pub met: bool,
 }
 
 impl Priced {
@@ -41,12 +73,14 @@ impl Priced {
 pub enum Format {
     Table,
     Json,
+    Csv,
 }
 
 /// Writes the report of one priced file.
 pub fn write_one(out: &mut dyn Write, p: &Priced, format: Format) -> io::Result<()> {
     match format {
         Format::Table => write_table(out, p),
+        Format::Csv => crate::batch::write_rows(out, &[crate::batch::Row::priced(p.clone())], Format::Csv),
         Format::Json => {
             serde_json::to_writer_pretty(&mut *out, &to_json(p))?;
             writeln!(out)
@@ -77,6 +111,8 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
         "controls": e.controls,
         "variance_reduction": e.variance_reduction,
         "elapsed_seconds": e.elapsed.as_secs_f64(),
+        "target": target_json(&p.record),
+        "reproduce": record_json(p),
         "profile": e.profile.iter().map(|r| json!({
             "date": r.label,
             "years": r.time,
@@ -84,6 +120,30 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
             "expected_pv": r.expected_pv,
         })).collect::<Vec<_>>(),
         "caution": CAUTION,
+    })
+}
+
+/// The target of an error-bounded run, or null.
+pub fn target_json(r: &Record) -> serde_json::Value {
+    match &r.target {
+        Some(t) => json!({ "std_error": t.std_error, "max_paths": t.max_paths, "met": t.met }),
+        None => serde_json::Value::Null,
+    }
+}
+
+/// The reproducibility record as JSON.
+pub fn record_json(p: &Priced) -> serde_json::Value {
+    let (e, r) = (&p.estimate, &p.record);
+    json!({
+        "pathfold_version": r.version,
+        "seed": e.seed,
+        "paths": e.paths,
+        "antithetic": e.antithetic,
+        "control_variates": r.control_variates,
+        "overrides": r.overrides,
+        "payoff_sha256": r.payoff_sha256,
+        "market_file": p.market_file,
+        "market_sha256": r.market_sha256,
     })
 }
 
@@ -117,15 +177,166 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
         None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
     }
+    if let Some(t) = &p.record.target {
+        let verdict = if t.met { "met" } else { "NOT met" };
+        writeln!(
+            out,
+            "  error target      {} {ccy}: {verdict} (at most {} paths)",
+            group(t.std_error, 2),
+            group(t.max_paths as f64, 0)
+        )?;
+    }
     writeln!(out, "  time              {:.2} s", e.elapsed.as_secs_f64())?;
+    writeln!(
+        out,
+        "  reproduce         pathfold {}, payoff sha256 {}",
+        p.record.version,
+        short_hash(&p.record.payoff_sha256)
+    )?;
+    writeln!(out, "                    market sha256 {}", short_hash(&p.record.market_sha256))?;
     writeln!(out)?;
     writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
-    for r in &e.profile {
+    // Dates on which nothing is paid and nothing ends (most fixings of a daily schedule)
+    // would drown the few that matter; JSON keeps them all.
+    let quiet = |r: &&crate::sim::ProfileRow| r.expected_pv == 0.0 && r.end_probability.unwrap_or(0.0) == 0.0;
+    for r in e.profile.iter().filter(|r| !quiet(r)) {
         let ends = r.end_probability.map_or("-".to_string(), |x| format!("{:.2}%", 100.0 * x));
         writeln!(out, "  {:<12} {:>14} {:>22}", r.label, ends, group(r.expected_pv, 2))?;
     }
+    let hidden = e.profile.iter().filter(quiet).count();
+    if hidden > 0 {
+        writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
+    }
+    writeln!(out, "  (plain averages over the paths: they add up to the price before control variates)")?;
+    if e.variance_reduction.is_some_and(|v| v < 1.0) {
+        writeln!(out)?;
+        writeln!(
+            out,
+            "  note: variance reduction made this estimate noisier; antithetic pairs can raise the variance of a payoff that is not monotone in the levels: compare with --no-antithetic"
+        )?;
+    }
     writeln!(out)?;
     writeln!(out, "{CAUTION}")
+}
+
+/// Writes the outcome of `pathfold check`: one row per case.
+pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -> io::Result<()> {
+    let passed = outcomes.iter().filter(|o| o.passed()).count();
+    match format {
+        Format::Csv => {
+            let mut w = csv::Writer::from_writer(out);
+            w.write_record([
+                "file",
+                "closed_form",
+                "reference",
+                "price",
+                "std_error",
+                "z",
+                "passed",
+                "error",
+                "caution",
+            ])?;
+            for o in outcomes {
+                let p = o.result.as_ref().ok();
+                let num = |x: Option<f64>| x.map(|x| x.to_string()).unwrap_or_default();
+                w.write_record([
+                    o.case.file.clone(),
+                    o.case.reference.name().to_string(),
+                    o.reference_value.to_string(),
+                    num(p.map(|p| p.estimate.price)),
+                    num(p.map(|p| p.estimate.std_error)),
+                    num(o.z().filter(|z| z.is_finite())),
+                    o.passed().to_string(),
+                    o.result.as_ref().err().map(crate::batch::one_line).unwrap_or_default(),
+                    CAUTION.to_string(),
+                ])?;
+            }
+            w.flush()
+        }
+        Format::Json => {
+            let cases: Vec<serde_json::Value> = outcomes
+                .iter()
+                .map(|o| {
+                    let p = o.result.as_ref().ok();
+                    json!({
+                        "file": o.case.file,
+                        "reference": o.case.reference.name(),
+                        "closed_form": o.reference_value,
+                        "price": p.map(|p| p.estimate.price),
+                        "std_error": p.map(|p| p.estimate.std_error),
+                        "approximation": o.case.approximation,
+                        "z": o.z().filter(|z| z.is_finite()),
+                        "passed": o.passed(),
+                        "error": o.result.as_ref().err().map(|f| f.render()),
+                    })
+                })
+                .collect();
+            let paths =
+                outcomes.iter().find_map(|o| o.result.as_ref().ok()).map(|p| (p.estimate.paths, p.estimate.seed));
+            let v = json!({
+                "cases": cases,
+                "passed": passed,
+                "failed": outcomes.len() - passed,
+                "max_abs_z": crate::validate::MAX_Z,
+                "paths": paths.map(|p| p.0),
+                "seed": paths.map(|p| p.1),
+                "caution": CAUTION,
+            });
+            serde_json::to_writer_pretty(&mut *out, &v)?;
+            writeln!(out)
+        }
+        Format::Table => {
+            writeln!(
+                out,
+                "{:<30} {:<28} {:>12} {:>12} {:>10} {:>8} {:>7}  result",
+                "case", "closed form", "reference", "Monte Carlo", "std error", "budget", "z"
+            )?;
+            for o in outcomes {
+                let name = o.case.file.trim_end_matches(".payoff");
+                match &o.result {
+                    Ok(p) => {
+                        let z = o.z().unwrap_or(f64::NAN);
+                        let verdict = if o.passed() { "pass" } else { "FAIL" };
+                        writeln!(
+                            out,
+                            "{:<30} {:<28} {:>12.4} {:>12.4} {:>10.4} {:>8} {:>7.2}  {}",
+                            name,
+                            o.case.reference.name(),
+                            o.reference_value,
+                            p.estimate.price,
+                            p.estimate.std_error,
+                            if o.case.approximation > 0.0 {
+                                format!("{:.4}", o.case.approximation * o.reference_value.abs())
+                            } else {
+                                "-".to_string()
+                            },
+                            z,
+                            verdict
+                        )?;
+                    }
+                    Err(_) => writeln!(
+                        out,
+                        "{:<30} {:<28} {:>12.4} {:>12} {:>10} {:>8} {:>7}  FAIL (not priced, see above)",
+                        name,
+                        o.case.reference.name(),
+                        o.reference_value,
+                        "-",
+                        "-",
+                        "-",
+                        "-"
+                    )?,
+                }
+            }
+            writeln!(out)?;
+            writeln!(
+                out,
+                "{passed} of {} cases within {} errors of their closed form; z divides the difference by the standard error and, for BGK-corrected references, their error budget in quadrature.",
+                outcomes.len(),
+                crate::validate::MAX_Z
+            )?;
+            writeln!(out, "{CAUTION}")
+        }
+    }
 }
 
 /// `1234567.891` → `1,234,567.89`.
@@ -147,6 +358,11 @@ pub fn group(x: f64, decimals: usize) -> String {
         Some(f) => format!("{sign}{grouped}.{f}"),
         None => format!("{sign}{grouped}"),
     }
+}
+
+/// The first 16 hex digits: enough to tell files apart at a glance (JSON and CSV carry all 64).
+fn short_hash(h: &str) -> &str {
+    &h[..h.len().min(16)]
 }
 
 fn short(v: f64) -> String {

@@ -209,7 +209,7 @@ impl Aggregate {
 
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
-    let mut pairs = PayoffParser::parse(Rule::file, source).map_err(from_pest)?;
+    let mut pairs = PayoffParser::parse(Rule::file, source).map_err(|e| from_pest(e, source))?;
     let file = pairs.next().expect("the file rule always yields one pair");
     let mut lowering = Lowering { errors: Vec::new() };
     let items = file.into_inner().filter(|p| p.as_rule() != Rule::EOI).map(|p| lowering.item(p)).collect();
@@ -541,12 +541,34 @@ fn decimal(text: &str) -> f64 {
 }
 
 /// Turns pest's error into our diagnostic, with words a payoff writer would use.
-fn from_pest(err: pest::error::Error<Rule>) -> Diagnostic {
+fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     use pest::error::{ErrorVariant, InputLocation};
     let at = match err.location {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
+    // A reserved word where a name belongs is the likeliest slip: say so plainly.
+    let word: String = source[at..].chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
+    let line_start = source[..at].rfind('\n').map_or(0, |i| i + 1);
+    let at_line_start = source[line_start..at].trim().is_empty();
+    if at_line_start && !word.is_empty() && !RESERVED.contains(&word.as_str()) {
+        if let Some(near) = crate::diagnostic::closest(&word, TOP_LEVEL.iter().copied()) {
+            return Diagnostic::at(
+                Span::new(at, at + word.len()),
+                format!("`{word}` does not start a line of a payoff file"),
+            )
+            .with_fix(format!("did you mean `{near}`?"));
+        }
+    }
+    if RESERVED.contains(&word.as_str()) {
+        return Diagnostic::at(
+            Span::new(at, at + word.len()),
+            format!("`{word}` is a reserved word and cannot be a name"),
+        )
+        .with_fix(format!(
+            "pick another name, such as `{word}_level`; the reserved words are listed in grammar/REFERENCE.md"
+        ));
+    }
     let mut expected = match &err.variant {
         ErrorVariant::ParsingError { positives, .. } => {
             positives.iter().filter_map(|r| describe(*r)).collect::<Vec<_>>()
@@ -560,9 +582,18 @@ fn from_pest(err: pest::error::Error<Rule>) -> Diagnostic {
     } else {
         format!("expected {}", join_or(&expected))
     };
-    Diagnostic::at(Span::new(at, at + 1), message)
-        .with_fix("compare the line with the syntax in grammar/REFERENCE.md; a name may not be a reserved word")
+    Diagnostic::at(Span::new(at, at + 1), message).with_fix("compare the line with the syntax in grammar/REFERENCE.md")
 }
+
+/// The words that start a top-level line.
+const TOP_LEVEL: &[&str] =
+    &["product", "currency", "notional", "underlyings", "market", "start", "param", "dates", "state", "for", "at"];
+
+/// The grammar's reserved words (rule `keyword`).
+const RESERVED: &[&str] = &[
+    "start", "param", "dates", "state", "for", "at", "let", "if", "then", "else", "pay", "on", "end", "and", "or",
+    "not", "touched", "true", "false", "average", "sum", "highest", "lowest", "count", "any", "all",
+];
 
 fn join_or(items: &[String]) -> String {
     match items {

@@ -42,19 +42,7 @@ pub fn standard_barrier(
     b: f64,
     sigma: f64,
 ) -> f64 {
-    standard_barrier_with_rebate(
-        kind,
-        barrier,
-        s,
-        k,
-        h,
-        rebate,
-        RebateTiming::AtHit,
-        t,
-        r,
-        b,
-        sigma,
-    )
+    standard_barrier_with_rebate(kind, barrier, s, k, h, rebate, RebateTiming::AtHit, t, r, b, sigma)
 }
 
 /// [`standard_barrier`] with a choice of when a knock-out rebate is paid.
@@ -75,10 +63,7 @@ pub fn standard_barrier_with_rebate(
     b: f64,
     sigma: f64,
 ) -> f64 {
-    debug_assert!(
-        s > 0.0 && k > 0.0 && h > 0.0,
-        "spot, strike and barrier must be positive"
-    );
+    debug_assert!(s > 0.0 && k > 0.0 && h > 0.0, "spot, strike and barrier must be positive");
     debug_assert!(t >= 0.0 && sigma > 0.0, "need t >= 0 and sigma > 0");
     let down = barrier.is_down();
     let knock_in = barrier.is_in();
@@ -95,11 +80,7 @@ pub fn standard_barrier_with_rebate(
     }
     if t <= 0.0 {
         // Expiry without a touch.
-        return if knock_in {
-            rebate
-        } else {
-            black_scholes(kind, s, k, 0.0, r, b, sigma)
-        };
+        return if knock_in { rebate } else { black_scholes(kind, s, k, 0.0, r, b, sigma) };
     }
 
     let eta = if down { 1.0 } else { -1.0 };
@@ -122,10 +103,8 @@ pub fn standard_barrier_with_rebate(
     // Haug's six building blocks.
     let a = phi * s * carry * norm_cdf(phi * x1) - phi * k * disc * norm_cdf(phi * x1 - phi * v);
     let bb = phi * s * carry * norm_cdf(phi * x2) - phi * k * disc * norm_cdf(phi * x2 - phi * v);
-    let c = phi * s * carry * hs_2mu2 * norm_cdf(eta * y1)
-        - phi * k * disc * hs_2mu * norm_cdf(eta * y1 - eta * v);
-    let d = phi * s * carry * hs_2mu2 * norm_cdf(eta * y2)
-        - phi * k * disc * hs_2mu * norm_cdf(eta * y2 - eta * v);
+    let c = phi * s * carry * hs_2mu2 * norm_cdf(eta * y1) - phi * k * disc * hs_2mu * norm_cdf(eta * y1 - eta * v);
+    let d = phi * s * carry * hs_2mu2 * norm_cdf(eta * y2) - phi * k * disc * hs_2mu * norm_cdf(eta * y2 - eta * v);
     // Rebate of an "in" option: paid at expiry if never touched.
     let e = rebate * disc * (norm_cdf(eta * x2 - eta * v) - hs_2mu * norm_cdf(eta * y2 - eta * v));
     // Rebate of an "out" option.
@@ -168,10 +147,7 @@ pub fn standard_barrier_with_rebate(
 ///
 /// Preconditions: `s, h, sigma > 0`, `t >= 0`.
 pub fn barrier_hit_probability(s: f64, h: f64, t: f64, b: f64, sigma: f64) -> f64 {
-    debug_assert!(
-        s > 0.0 && h > 0.0 && sigma > 0.0,
-        "spot, barrier and sigma must be positive"
-    );
+    debug_assert!(s > 0.0 && h > 0.0 && sigma > 0.0, "spot, barrier and sigma must be positive");
     debug_assert!(t >= 0.0, "time must be non-negative");
     if h == s {
         return 1.0;
@@ -322,16 +298,9 @@ mod tests {
         ];
         for (kind, k, v25, v30) in rows {
             for (sigma, expected) in [(0.25, v25), (0.30, v30)] {
-                let got = standard_barrier(
-                    kind, DownAndIn, 100.0, k, 100.0, 3.0, 0.5, 0.08, 0.04, sigma,
-                );
-                assert!(
-                    (got - expected).abs() <= 0.5e-4,
-                    "{kind:?} K={k}: {got} vs {expected}"
-                );
-                let out = standard_barrier(
-                    kind, DownAndOut, 100.0, k, 100.0, 3.0, 0.5, 0.08, 0.04, sigma,
-                );
+                let got = standard_barrier(kind, DownAndIn, 100.0, k, 100.0, 3.0, 0.5, 0.08, 0.04, sigma);
+                assert!((got - expected).abs() <= 0.5e-4, "{kind:?} K={k}: {got} vs {expected}");
+                let out = standard_barrier(kind, DownAndOut, 100.0, k, 100.0, 3.0, 0.5, 0.08, 0.04, sigma);
                 assert_eq!(out, 3.0);
             }
         }
@@ -380,8 +349,7 @@ mod tests {
             return 0.0;
         }
         let m = dist - towards * nu * tau;
-        dist / (sigma * (2.0 * PI * tau.powi(3)).sqrt())
-            * (-m * m / (2.0 * sigma * sigma * tau)).exp()
+        dist / (sigma * (2.0 * PI * tau.powi(3)).sqrt()) * (-m * m / (2.0 * sigma * sigma * tau)).exp()
     }
 
     #[test]
@@ -406,11 +374,7 @@ mod tests {
                 // two prices that differ only in the rebate.
                 let with = standard_barrier(Call, out, s, 100.0, h, 1.0, t, r, b, sigma);
                 let without = standard_barrier(Call, out, s, 100.0, h, 0.0, t, r, b, sigma);
-                assert!(
-                    (with - without - pv).abs() < 1e-10,
-                    "H={h}: {} vs {pv}",
-                    with - without
-                );
+                assert!((with - without - pv).abs() < 1e-10, "H={h}: {} vs {pv}", with - without);
             }
         }
     }
@@ -420,55 +384,18 @@ mod tests {
         let (t, r, b, sigma) = (0.5, 0.08, 0.04, 0.25);
         let vanilla = black_scholes(Call, 100.0, 90.0, t, r, b, sigma);
         // Spot at the barrier: Haug's table rows with H = S = 100.
-        assert_eq!(
-            standard_barrier(Call, DownAndIn, 100.0, 90.0, 100.0, 3.0, t, r, b, sigma),
-            vanilla
-        );
-        assert_eq!(
-            standard_barrier(Call, DownAndOut, 100.0, 90.0, 100.0, 3.0, t, r, b, sigma),
-            3.0
-        );
-        assert_eq!(
-            standard_barrier(Put, UpAndOut, 110.0, 90.0, 105.0, 3.0, t, r, b, sigma),
-            3.0
-        );
+        assert_eq!(standard_barrier(Call, DownAndIn, 100.0, 90.0, 100.0, 3.0, t, r, b, sigma), vanilla);
+        assert_eq!(standard_barrier(Call, DownAndOut, 100.0, 90.0, 100.0, 3.0, t, r, b, sigma), 3.0);
+        assert_eq!(standard_barrier(Put, UpAndOut, 110.0, 90.0, 105.0, 3.0, t, r, b, sigma), 3.0);
         // At the barrier the formulas themselves agree with the knocked
         // value: approach the barrier from the live side.
-        let near = standard_barrier(
-            Call,
-            DownAndOut,
-            100.0 + 1e-9,
-            90.0,
-            100.0,
-            3.0,
-            t,
-            r,
-            b,
-            sigma,
-        );
+        let near = standard_barrier(Call, DownAndOut, 100.0 + 1e-9, 90.0, 100.0, 3.0, t, r, b, sigma);
         assert!((near - 3.0).abs() < 1e-6, "{near}");
-        let near_in = standard_barrier(
-            Call,
-            DownAndIn,
-            100.0 + 1e-9,
-            90.0,
-            100.0,
-            3.0,
-            t,
-            r,
-            b,
-            sigma,
-        );
+        let near_in = standard_barrier(Call, DownAndIn, 100.0 + 1e-9, 90.0, 100.0, 3.0, t, r, b, sigma);
         assert!((near_in - vanilla).abs() < 1e-6, "{near_in} vs {vanilla}");
         // Expiry without a touch.
-        assert_eq!(
-            standard_barrier(Call, UpAndOut, 100.0, 90.0, 105.0, 3.0, 0.0, r, b, sigma),
-            10.0
-        );
-        assert_eq!(
-            standard_barrier(Call, UpAndIn, 100.0, 90.0, 105.0, 3.0, 0.0, r, b, sigma),
-            3.0
-        );
+        assert_eq!(standard_barrier(Call, UpAndOut, 100.0, 90.0, 105.0, 3.0, 0.0, r, b, sigma), 10.0);
+        assert_eq!(standard_barrier(Call, UpAndIn, 100.0, 90.0, 105.0, 3.0, 0.0, r, b, sigma), 3.0);
     }
 
     /// zeta(1/2) from the alternating (Dirichlet eta) series accelerated by
@@ -547,11 +474,7 @@ mod tests {
                 alive &= x > log_h;
                 max_log = max_log.max(x);
             }
-            let p = if alive {
-                (x.exp() - k_barrier).max(0.0)
-            } else {
-                0.0
-            };
+            let p = if alive { (x.exp() - k_barrier).max(0.0) } else { 0.0 };
             let l = (max_log.exp() - k_look).max(0.0);
             bar += p;
             bar2 += p * p;
@@ -568,16 +491,9 @@ mod tests {
         let (mc, se) = stats(bar, bar2);
         let continuous = standard_barrier(Call, DownAndOut, s, k_barrier, h, 0.0, t, r, b, sigma);
         let shifted = bgk_shifted_barrier(h, sigma, dt, false);
-        let corrected =
-            standard_barrier(Call, DownAndOut, s, k_barrier, shifted, 0.0, t, r, b, sigma);
-        assert!(
-            (mc - corrected).abs() < 4.0 * se,
-            "barrier: MC {mc} ± {se}, BGK {corrected}"
-        );
-        assert!(
-            (mc - continuous).abs() > 10.0 * se,
-            "barrier: MC {mc}, continuous {continuous}"
-        );
+        let corrected = standard_barrier(Call, DownAndOut, s, k_barrier, shifted, 0.0, t, r, b, sigma);
+        assert!((mc - corrected).abs() < 4.0 * se, "barrier: MC {mc} ± {se}, BGK {corrected}");
+        assert!((mc - continuous).abs() > 10.0 * se, "barrier: MC {mc}, continuous {continuous}");
 
         // Fixed-strike lookback call on the discrete maximum (which
         // includes today's spot), by the recipe in lookback_discrete_shift.
@@ -585,13 +501,7 @@ mod tests {
         let f = lookback_discrete_shift(sigma, dt);
         let corrected = fixed_lookback(Call, s, s * f, k_look * f, t, r, b, sigma) / f;
         let continuous = fixed_lookback(Call, s, s, k_look, t, r, b, sigma);
-        assert!(
-            (mc - corrected).abs() < 4.0 * se,
-            "lookback: MC {mc} ± {se}, BGK {corrected}"
-        );
-        assert!(
-            (mc - continuous).abs() > 10.0 * se,
-            "lookback: MC {mc}, continuous {continuous}"
-        );
+        assert!((mc - corrected).abs() < 4.0 * se, "lookback: MC {mc} ± {se}, BGK {corrected}");
+        assert!((mc - continuous).abs() > 10.0 * se, "lookback: MC {mc}, continuous {continuous}");
     }
 }

@@ -16,15 +16,7 @@ use super::{norm_cdf, OptionKind};
 ///
 /// Preconditions: `s, s_extreme, sigma > 0`, `t >= 0`. Any `b`, including
 /// zero, is valid.
-pub fn floating_lookback(
-    kind: OptionKind,
-    s: f64,
-    s_extreme: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
+pub fn floating_lookback(kind: OptionKind, s: f64, s_extreme: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     debug_assert!(s > 0.0 && s_extreme > 0.0 && sigma > 0.0);
     debug_assert!(t >= 0.0);
     match kind {
@@ -63,16 +55,7 @@ pub fn floating_lookback(
 ///
 /// Preconditions: `s, s_extreme, k, sigma > 0`, `t >= 0`. Any `b`.
 #[allow(clippy::too_many_arguments)]
-pub fn fixed_lookback(
-    kind: OptionKind,
-    s: f64,
-    s_extreme: f64,
-    k: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
+pub fn fixed_lookback(kind: OptionKind, s: f64, s_extreme: f64, k: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     debug_assert!(s > 0.0 && s_extreme > 0.0 && k > 0.0 && sigma > 0.0);
     debug_assert!(t >= 0.0);
     let disc = (-r * t).exp();
@@ -101,8 +84,7 @@ pub fn fixed_lookback(
             let v = sigma * t.sqrt();
             let d1 = ((s / l).ln() + (b + 0.5 * sigma * sigma) * t) / v;
             let d2 = d1 - v;
-            disc * (k - m).max(0.0) + l * disc * norm_cdf(-d2)
-                - s * ((b - r) * t).exp() * norm_cdf(-d1)
+            disc * (k - m).max(0.0) + l * disc * norm_cdf(-d2) - s * ((b - r) * t).exp() * norm_cdf(-d1)
                 + s * disc * reflection_term(1.0, s / l, -d1, t, b, sigma)
         }
     }
@@ -176,10 +158,7 @@ mod tests {
         ];
         for (k, sigma, expected) in cells {
             let c = fixed_lookback(Call, 100.0, 100.0, k, 0.5, 0.1, 0.1, sigma);
-            assert!(
-                (c - expected).abs() <= 0.5e-4,
-                "K={k} sigma={sigma}: {c} vs {expected}"
-            );
+            assert!((c - expected).abs() <= 0.5e-4, "K={k} sigma={sigma}: {c} vs {expected}");
         }
     }
 
@@ -194,68 +173,42 @@ mod tests {
         // x = s e^u, dx = s e^u du.
         let lo = (l / s).ln();
         let hi = lo.max(0.0) + 14.0 * sigma * t.sqrt() + b.abs() * t;
-        simpson(
-            |u| s * u.exp() * barrier_hit_probability(s, s * u.exp(), t, b, sigma),
-            lo,
-            hi,
-            20_000,
-        )
+        simpson(|u| s * u.exp() * barrier_hit_probability(s, s * u.exp(), t, b, sigma), lo, hi, 20_000)
     }
 
     fn expected_shortfall_min(s: f64, l: f64, t: f64, b: f64, sigma: f64) -> f64 {
         // x = s e^-u.
         let lo = (s / l).ln();
         let hi = lo.max(0.0) + 14.0 * sigma * t.sqrt() + b.abs() * t;
-        simpson(
-            |u| s * (-u).exp() * barrier_hit_probability(s, s * (-u).exp(), t, b, sigma),
-            lo,
-            hi,
-            20_000,
-        )
+        simpson(|u| s * (-u).exp() * barrier_hit_probability(s, s * (-u).exp(), t, b, sigma), lo, hi, 20_000)
     }
 
     #[test]
     fn lookbacks_match_running_extreme_integrals() {
         let s = 100.0;
-        for &(t, r, b, sigma) in &[
-            (0.5, 0.1, 0.1, 0.3),
-            (1.0, 0.05, 0.0, 0.2),
-            (2.0, 0.03, -0.04, 0.4),
-            (0.25, 0.08, 1e-9, 0.25),
-        ] {
+        for &(t, r, b, sigma) in
+            &[(0.5, 0.1, 0.1, 0.3), (1.0, 0.05, 0.0, 0.2), (2.0, 0.03, -0.04, 0.4), (0.25, 0.08, 1e-9, 0.25)]
+        {
             let disc = f64::exp(-r * t);
             let carry = f64::exp((b - r) * t);
             for &(mx, mn) in &[(100.0, 100.0), (115.0, 90.0)] {
                 // Floating put: E[max(mx, M_T)] - S_T.
                 let put = disc * (mx + expected_excess_max(s, mx, t, b, sigma)) - s * carry;
                 let closed = floating_lookback(Put, s, mx, t, r, b, sigma);
-                assert!(
-                    (put - closed).abs() < 1e-8,
-                    "float put b={b}: {put} vs {closed}"
-                );
+                assert!((put - closed).abs() < 1e-8, "float put b={b}: {put} vs {closed}");
                 // Floating call: S_T - E[min(mn, m_T)].
                 let call = s * carry - disc * (mn - expected_shortfall_min(s, mn, t, b, sigma));
                 let closed = floating_lookback(Call, s, mn, t, r, b, sigma);
-                assert!(
-                    (call - closed).abs() < 1e-8,
-                    "float call b={b}: {call} vs {closed}"
-                );
+                assert!((call - closed).abs() < 1e-8, "float call b={b}: {call} vs {closed}");
                 for k in [80.0, 100.0, 105.0, 130.0] {
                     let l = f64::max(k, mx);
                     let call = disc * ((mx - k).max(0.0) + expected_excess_max(s, l, t, b, sigma));
                     let closed = fixed_lookback(Call, s, mx, k, t, r, b, sigma);
-                    assert!(
-                        (call - closed).abs() < 1e-8,
-                        "fixed call K={k} b={b}: {call} vs {closed}"
-                    );
+                    assert!((call - closed).abs() < 1e-8, "fixed call K={k} b={b}: {call} vs {closed}");
                     let l = f64::min(k, mn);
-                    let put =
-                        disc * ((k - mn).max(0.0) + expected_shortfall_min(s, l, t, b, sigma));
+                    let put = disc * ((k - mn).max(0.0) + expected_shortfall_min(s, l, t, b, sigma));
                     let closed = fixed_lookback(Put, s, mn, k, t, r, b, sigma);
-                    assert!(
-                        (put - closed).abs() < 1e-8,
-                        "fixed put K={k} b={b}: {put} vs {closed}"
-                    );
+                    assert!((put - closed).abs() < 1e-8, "fixed put K={k} b={b}: {put} vs {closed}");
                 }
             }
         }
@@ -268,11 +221,7 @@ mod tests {
         // same way, for K >= m the fixed put is the floating call plus a
         // forward sold at K.
         let s = 100.0;
-        for &(t, r, b, sigma) in &[
-            (0.5, 0.1, 0.1, 0.3),
-            (1.5, 0.02, 0.0, 0.2),
-            (1.0, 0.05, -0.02, 0.5),
-        ] {
+        for &(t, r, b, sigma) in &[(0.5, 0.1, 0.1, 0.3), (1.5, 0.02, 0.0, 0.2), (1.0, 0.05, -0.02, 0.5)] {
             let fwd = |k: f64| s * f64::exp((b - r) * t) - k * f64::exp(-r * t);
             for (mx, k) in [(100.0, 100.0), (120.0, 95.0), (120.0, 120.0)] {
                 let fixed = fixed_lookback(Call, s, mx, k, t, r, b, sigma);
@@ -305,30 +254,15 @@ mod tests {
             assert!(mid[i].is_finite());
             // Central difference: the midpoint of the neighbours is within
             // O(b^2) of the value at zero.
-            assert!(
-                (0.5 * (lo[i] + hi[i]) - mid[i]).abs() < 1e-9,
-                "{i}: {lo:?} {mid:?} {hi:?}"
-            );
+            assert!((0.5 * (lo[i] + hi[i]) - mid[i]).abs() < 1e-9, "{i}: {lo:?} {mid:?} {hi:?}");
         }
     }
 
     #[test]
     fn expiry_pays_intrinsic() {
-        assert_eq!(
-            floating_lookback(Call, 120.0, 100.0, 0.0, 0.1, 0.1, 0.3),
-            20.0
-        );
-        assert_eq!(
-            floating_lookback(Put, 120.0, 130.0, 0.0, 0.1, 0.1, 0.3),
-            10.0
-        );
-        assert_eq!(
-            fixed_lookback(Call, 120.0, 130.0, 100.0, 0.0, 0.1, 0.1, 0.3),
-            30.0
-        );
-        assert_eq!(
-            fixed_lookback(Put, 120.0, 90.0, 100.0, 0.0, 0.1, 0.1, 0.3),
-            10.0
-        );
+        assert_eq!(floating_lookback(Call, 120.0, 100.0, 0.0, 0.1, 0.1, 0.3), 20.0);
+        assert_eq!(floating_lookback(Put, 120.0, 130.0, 0.0, 0.1, 0.1, 0.3), 10.0);
+        assert_eq!(fixed_lookback(Call, 120.0, 130.0, 100.0, 0.0, 0.1, 0.1, 0.3), 30.0);
+        assert_eq!(fixed_lookback(Put, 120.0, 90.0, 100.0, 0.0, 0.1, 0.1, 0.3), 10.0);
     }
 }

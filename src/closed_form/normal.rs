@@ -54,16 +54,8 @@ pub(crate) fn norm_cdf_mean_slope(y: f64, delta: f64) -> f64 {
 // Gauss-Legendre nodes (positive half) and weights for 6, 12 and 20 points,
 // as tabulated in Genz's bivariate normal routine. They are checked against
 // nodes computed from the Legendre recurrence in the tests below.
-const GL6_NODES: [f64; 3] = [
-    0.932_469_514_203_152_2,
-    0.661_209_386_466_264_7,
-    0.238_619_186_083_197,
-];
-const GL6_WEIGHTS: [f64; 3] = [
-    0.171_324_492_379_170_5,
-    0.360_761_573_048_138_4,
-    0.467_913_934_572_690_4,
-];
+const GL6_NODES: [f64; 3] = [0.932_469_514_203_152_2, 0.661_209_386_466_264_7, 0.238_619_186_083_197];
+const GL6_WEIGHTS: [f64; 3] = [0.171_324_492_379_170_5, 0.360_761_573_048_138_4, 0.467_913_934_572_690_4];
 const GL12_NODES: [f64; 6] = [
     0.981_560_634_246_719_1,
     0.904_117_256_370_475,
@@ -118,10 +110,7 @@ const GL20_WEIGHTS: [f64; 10] = [
 /// Precondition: `-1 <= rho <= 1` (values outside are clamped in release).
 /// Infinite `a` or `b` are handled.
 pub fn bivariate_norm_cdf(a: f64, b: f64, rho: f64) -> f64 {
-    debug_assert!(
-        (-1.0..=1.0).contains(&rho),
-        "correlation must be in [-1, 1], got {rho}"
-    );
+    debug_assert!((-1.0..=1.0).contains(&rho), "correlation must be in [-1, 1], got {rho}");
     // Genz's routine computes the upper orthant P(X > h, Y > k).
     upper_orthant(-a, -b, rho.clamp(-1.0, 1.0))
 }
@@ -132,11 +121,7 @@ fn upper_orthant(h: f64, k: f64, r: f64) -> f64 {
         return 0.0;
     }
     if h == f64::NEG_INFINITY {
-        return if k == f64::NEG_INFINITY {
-            1.0
-        } else {
-            norm_cdf(-k)
-        };
+        return if k == f64::NEG_INFINITY { 1.0 } else { norm_cdf(-k) };
     }
     if k == f64::NEG_INFINITY {
         return norm_cdf(-h);
@@ -180,9 +165,7 @@ fn upper_orthant(h: f64, k: f64, r: f64) -> f64 {
             let d = (12.0 - hk) / 16.0;
             let asr = -(bs / as_ + hk) / 2.0;
             if asr > -100.0 {
-                bvn = a
-                    * asr.exp()
-                    * (1.0 - c * (bs - as_) * (1.0 - d * bs / 5.0) / 3.0 + c * d * as_ * as_ / 5.0);
+                bvn = a * asr.exp() * (1.0 - c * (bs - as_) * (1.0 - d * bs / 5.0) / 3.0 + c * d * as_ * as_ / 5.0);
             }
             if hk > -100.0 {
                 let b = bs.sqrt();
@@ -209,11 +192,7 @@ fn upper_orthant(h: f64, k: f64, r: f64) -> f64 {
         } else if h >= k {
             bvn = -bvn;
         } else {
-            let l = if h < 0.0 {
-                norm_cdf(k) - norm_cdf(h)
-            } else {
-                norm_cdf(-h) - norm_cdf(-k)
-            };
+            let l = if h < 0.0 { norm_cdf(k) - norm_cdf(h) } else { norm_cdf(-h) - norm_cdf(-k) };
             bvn = l - bvn;
         }
     }
@@ -302,10 +281,7 @@ mod tests {
         for &y in &[-3.0, -0.4, 0.0, 1.3] {
             for &d in &[-0.9, -0.1, 0.3, 0.99] {
                 let numeric = simpson(norm_pdf, y, y + d, 2000) / d;
-                assert!(
-                    (norm_cdf_mean_slope(y, d) - numeric).abs() < 1e-13,
-                    "{y} {d}"
-                );
+                assert!((norm_cdf_mean_slope(y, d) - numeric).abs() < 1e-13, "{y} {d}");
             }
             for &d in &[1.5, -2.0, 3.0] {
                 let direct = (norm_cdf(y + d) - norm_cdf(y)) / d;
@@ -332,15 +308,12 @@ mod tests {
     #[test]
     fn bivariate_matches_quadrature() {
         let points = [-2.7, -1.1, -0.3, 0.0, 0.45, 1.6];
-        let rhos = [
-            -0.95, -0.8, -0.5, -0.2, 0.0, 0.1, 0.35, 0.7, 0.8, 0.93, 0.97,
-        ];
+        let rhos = [-0.95, -0.8, -0.5, -0.2, 0.0, 0.1, 0.35, 0.7, 0.8, 0.93, 0.97];
         let mut worst: f64 = 0.0;
         for &a in &points {
             for &b in &points {
                 for &rho in &rhos {
-                    let err =
-                        (bivariate_norm_cdf(a, b, rho) - bivariate_by_quadrature(a, b, rho)).abs();
+                    let err = (bivariate_norm_cdf(a, b, rho) - bivariate_by_quadrature(a, b, rho)).abs();
                     worst = worst.max(err);
                 }
             }
@@ -354,10 +327,7 @@ mod tests {
         // (Sheppard's formula).
         for &rho in &[-0.99, -0.6, -0.1, 0.0, 0.25, 0.8, 0.95, 0.999] {
             let exact = 0.25 + f64::asin(rho) / (2.0 * PI);
-            assert!(
-                (bivariate_norm_cdf(0.0, 0.0, rho) - exact).abs() < 1e-14,
-                "rho={rho}"
-            );
+            assert!((bivariate_norm_cdf(0.0, 0.0, rho) - exact).abs() < 1e-14, "rho={rho}");
         }
         for &(a, b) in &[(-1.0, 0.5), (0.3, 0.3), (2.0, -0.7)] {
             // Independence.
@@ -384,10 +354,7 @@ mod tests {
                     // P(X<=a, Y<=b) + P(X<=a, Y>b) = N(a), and
                     // P(X<=a, Y>b) = P(X<=a, -Y<-b) with corr(X,-Y) = -rho.
                     let complement = bivariate_norm_cdf(a, -b, -rho);
-                    assert!(
-                        (m + complement - norm_cdf(a)).abs() < 1e-14,
-                        "{a} {b} {rho}"
-                    );
+                    assert!((m + complement - norm_cdf(a)).abs() < 1e-14, "{a} {b} {rho}");
                 }
             }
         }

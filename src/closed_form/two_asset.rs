@@ -7,9 +7,7 @@ use super::{bivariate_norm_cdf, norm_cdf, Extreme, OptionKind};
 
 /// Volatility of the ratio `S1 / S2`.
 fn spread_vol(sigma1: f64, sigma2: f64, rho: f64) -> f64 {
-    (sigma1 * sigma1 + sigma2 * sigma2 - 2.0 * rho * sigma1 * sigma2)
-        .max(0.0)
-        .sqrt()
+    (sigma1 * sigma1 + sigma2 * sigma2 - 2.0 * rho * sigma1 * sigma2).max(0.0).sqrt()
 }
 
 /// Margrabe (1978) option to exchange asset 2 for asset 1: pays
@@ -20,17 +18,7 @@ fn spread_vol(sigma1: f64, sigma2: f64, rho: f64) -> f64 {
 /// volatilities with `rho = 1`) the price is the discounted intrinsic value
 /// on the forwards.
 #[allow(clippy::too_many_arguments)]
-pub fn margrabe(
-    s1: f64,
-    s2: f64,
-    t: f64,
-    r: f64,
-    b1: f64,
-    b2: f64,
-    sigma1: f64,
-    sigma2: f64,
-    rho: f64,
-) -> f64 {
+pub fn margrabe(s1: f64, s2: f64, t: f64, r: f64, b1: f64, b2: f64, sigma1: f64, sigma2: f64, rho: f64) -> f64 {
     debug_assert!(s1 > 0.0 && s2 > 0.0, "spots must be positive");
     debug_assert!(t >= 0.0 && sigma1 >= 0.0 && sigma2 >= 0.0);
     debug_assert!((-1.0..=1.0).contains(&rho));
@@ -72,16 +60,10 @@ pub fn two_asset_extreme(
     sigma2: f64,
     rho: f64,
 ) -> f64 {
-    debug_assert!(
-        s1 > 0.0 && s2 > 0.0 && k > 0.0,
-        "spots and strike must be positive"
-    );
+    debug_assert!(s1 > 0.0 && s2 > 0.0 && k > 0.0, "spots and strike must be positive");
     debug_assert!(t >= 0.0 && sigma1 > 0.0 && sigma2 > 0.0);
     debug_assert!((-1.0..=1.0).contains(&rho));
-    debug_assert!(
-        spread_vol(sigma1, sigma2, rho) > 0.0,
-        "the two assets must not move as one"
-    );
+    debug_assert!(spread_vol(sigma1, sigma2, rho) > 0.0, "the two assets must not move as one");
     if t <= 0.0 {
         let x = match extreme {
             Extreme::Min => s1.min(s2),
@@ -150,20 +132,14 @@ mod tests {
     impl Market {
         /// Terminal S2 for standard normal draw `z`.
         fn s2_at(&self, z: f64) -> f64 {
-            self.s2
-                * ((self.b2 - 0.5 * self.sigma2 * self.sigma2) * self.t
-                    + self.sigma2 * self.t.sqrt() * z)
-                    .exp()
+            self.s2 * ((self.b2 - 0.5 * self.sigma2 * self.sigma2) * self.t + self.sigma2 * self.t.sqrt() * z).exp()
         }
         /// Mean and log-standard-deviation of terminal S1 given S2's draw.
         fn s1_given(&self, z: f64) -> (f64, f64) {
             let (sg, t, rho) = (self.sigma1, self.t, self.rho);
             let resid = 1.0 - rho * rho;
-            let fwd = self.s1
-                * ((self.b1 - 0.5 * sg * sg) * t
-                    + sg * t.sqrt() * rho * z
-                    + 0.5 * sg * sg * resid * t)
-                    .exp();
+            let fwd =
+                self.s1 * ((self.b1 - 0.5 * sg * sg) * t + sg * t.sqrt() * rho * z + 0.5 * sg * sg * resid * t).exp();
             (fwd, sg * (resid * t).sqrt())
         }
         /// Discounted expectation of `payoff(z)` (already conditioned on
@@ -177,8 +153,7 @@ mod tests {
         }
         /// Draw of S2 at which S2_T equals `k`.
         fn z_where_s2_is(&self, k: f64) -> f64 {
-            ((k / self.s2).ln() - (self.b2 - 0.5 * self.sigma2 * self.sigma2) * self.t)
-                / (self.sigma2 * self.t.sqrt())
+            ((k / self.s2).ln() - (self.b2 - 0.5 * self.sigma2 * self.sigma2) * self.t) / (self.sigma2 * self.t.sqrt())
         }
     }
 
@@ -225,29 +200,9 @@ mod tests {
         vec![
             base,
             Market { rho: -0.7, ..base },
-            Market {
-                rho: 0.0,
-                t: 2.0,
-                sigma1: 0.35,
-                ..base
-            },
-            Market {
-                rho: 0.95,
-                b1: 0.04,
-                b2: 0.0,
-                ..base
-            },
-            Market {
-                s1: 22.0,
-                s2: 20.0,
-                t: 0.1,
-                r: 0.1,
-                b1: 0.0,
-                b2: 0.0,
-                sigma1: 0.14,
-                sigma2: 0.2,
-                rho: 0.15,
-            },
+            Market { rho: 0.0, t: 2.0, sigma1: 0.35, ..base },
+            Market { rho: 0.95, b1: 0.04, b2: 0.0, ..base },
+            Market { s1: 22.0, s2: 20.0, t: 0.1, r: 0.1, b1: 0.0, b2: 0.0, sigma1: 0.14, sigma2: 0.2, rho: 0.15 },
         ]
     }
 
@@ -286,17 +241,13 @@ mod tests {
                 for kind in [Call, Put] {
                     for extreme in [Min, Max] {
                         let closed = two_asset_extreme(
-                            kind, extreme, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2,
-                            m.rho,
+                            kind, extreme, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho,
                         );
                         let num = numeric(kind, extreme, &m, k);
                         // Observed gaps are up to 1.8e-9 and do not shrink
                         // with more quadrature panels: they come from
                         // norm_cdf's few-1e-11 error times prices ~100.
-                        assert!(
-                            (closed - num).abs() < 1e-8,
-                            "{kind:?} {extreme:?} K={k}: {closed} vs {num}"
-                        );
+                        assert!((closed - num).abs() < 1e-8, "{kind:?} {extreme:?} K={k}: {closed} vs {num}");
                     }
                 }
             }
@@ -310,11 +261,8 @@ mod tests {
         for m in markets() {
             for k in [0.9 * m.s1, 1.05 * m.s2] {
                 for kind in [Call, Put] {
-                    let ext = |e| {
-                        two_asset_extreme(
-                            kind, e, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho,
-                        )
-                    };
+                    let ext =
+                        |e| two_asset_extreme(kind, e, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho);
                     let both = black_scholes(kind, m.s1, k, m.t, m.r, m.b1, m.sigma1)
                         + black_scholes(kind, m.s2, k, m.t, m.r, m.b2, m.sigma2);
                     assert!((ext(Min) + ext(Max) - both).abs() < 1e-10, "{kind:?} K={k}");
@@ -334,12 +282,8 @@ mod tests {
             let f1 = m.s1 * ((m.b1 - m.r) * m.t).exp();
             let f2 = m.s2 * ((m.b2 - m.r) * m.t).exp();
             let kd = k * (-m.r * m.t).exp();
-            let cmax = two_asset_extreme(
-                Call, Max, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho,
-            );
-            let cmin = two_asset_extreme(
-                Call, Min, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho,
-            );
+            let cmax = two_asset_extreme(Call, Max, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho);
+            let cmin = two_asset_extreme(Call, Min, m.s1, m.s2, k, m.t, m.r, m.b1, m.b2, m.sigma1, m.sigma2, m.rho);
             assert!((cmax - (f2 + ex - kd)).abs() < 1e-10);
             assert!((cmin - (f1 - ex - kd)).abs() < 1e-10);
         }

@@ -15,10 +15,7 @@ use super::{norm_cdf, OptionKind};
 #[allow(clippy::too_many_arguments)]
 pub fn black_scholes(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     debug_assert!(s > 0.0 && k > 0.0, "spot and strike must be positive");
-    debug_assert!(
-        t >= 0.0 && sigma >= 0.0,
-        "time and volatility must be non-negative"
-    );
+    debug_assert!(t >= 0.0 && sigma >= 0.0, "time and volatility must be non-negative");
     let phi = kind.sign();
     let carry = ((b - r) * t).exp();
     let disc = (-r * t).exp();
@@ -39,21 +36,9 @@ pub fn black_scholes(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, s
 /// or `sigma = 0`) a forward exactly at the strike pays half, so that call
 /// plus put always equals the discounted cash.
 #[allow(clippy::too_many_arguments)]
-pub fn cash_or_nothing(
-    kind: OptionKind,
-    s: f64,
-    k: f64,
-    cash: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
+pub fn cash_or_nothing(kind: OptionKind, s: f64, k: f64, cash: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     debug_assert!(s > 0.0 && k > 0.0, "spot and strike must be positive");
-    debug_assert!(
-        t >= 0.0 && sigma >= 0.0,
-        "time and volatility must be non-negative"
-    );
+    debug_assert!(t >= 0.0 && sigma >= 0.0, "time and volatility must be non-negative");
     let phi = kind.sign();
     let disc = (-r * t).exp();
     let v = sigma * t.sqrt();
@@ -69,20 +54,9 @@ pub fn cash_or_nothing(
 /// asset at `t` if it finishes above `k` (call) or below `k` (put).
 ///
 /// Preconditions and the `t = 0` convention as for [`cash_or_nothing`].
-pub fn asset_or_nothing(
-    kind: OptionKind,
-    s: f64,
-    k: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
+pub fn asset_or_nothing(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
     debug_assert!(s > 0.0 && k > 0.0, "spot and strike must be positive");
-    debug_assert!(
-        t >= 0.0 && sigma >= 0.0,
-        "time and volatility must be non-negative"
-    );
+    debug_assert!(t >= 0.0 && sigma >= 0.0, "time and volatility must be non-negative");
     let phi = kind.sign();
     let carry = ((b - r) * t).exp();
     let v = sigma * t.sqrt();
@@ -114,20 +88,8 @@ fn step(x: f64) -> f64 {
 ///
 /// Preconditions: `s > 0`, `alpha > 0`, `0 <= t1 <= t`, `sigma >= 0`.
 #[allow(clippy::too_many_arguments)]
-pub fn forward_start(
-    kind: OptionKind,
-    s: f64,
-    alpha: f64,
-    t1: f64,
-    t: f64,
-    r: f64,
-    b: f64,
-    sigma: f64,
-) -> f64 {
-    debug_assert!(
-        s > 0.0 && alpha > 0.0,
-        "spot and strike ratio must be positive"
-    );
+pub fn forward_start(kind: OptionKind, s: f64, alpha: f64, t1: f64, t: f64, r: f64, b: f64, sigma: f64) -> f64 {
+    debug_assert!(s > 0.0 && alpha > 0.0, "spot and strike ratio must be positive");
     debug_assert!(0.0 <= t1 && t1 <= t, "need 0 <= t1 <= t");
     s * ((b - r) * t1).exp() * black_scholes(kind, 1.0, alpha, t - t1, r, b, sigma)
 }
@@ -188,10 +150,7 @@ mod tests {
             let fwd = s * ((b - r) * t).exp() - k * (-r * t).exp();
             assert!((c - p - fwd).abs() < 1e-12 * s);
             // At expiry: intrinsic value.
-            assert_eq!(
-                black_scholes(Call, s, k, 0.0, r, b, sigma),
-                (s - k).max(0.0)
-            );
+            assert_eq!(black_scholes(Call, s, k, 0.0, r, b, sigma), (s - k).max(0.0));
             assert_eq!(black_scholes(Put, s, k, 0.0, r, b, sigma), (k - s).max(0.0));
         }
     }
@@ -221,14 +180,11 @@ mod tests {
                 // Call: S 1{S>K} - K 1{S>K}; put: K 1{S<K} - S 1{S<K}.
                 let vanilla = kind.sign() * (a - k * c);
                 let bs = black_scholes(kind, s, k, t, r, b, sigma);
-                assert!(
-                    (vanilla - bs).abs() < 1e-12 * s,
-                    "{kind:?}: {vanilla} vs {bs}"
-                );
+                assert!((vanilla - bs).abs() < 1e-12 * s, "{kind:?}: {vanilla} vs {bs}");
             }
             // Call + put digitals pay for sure.
-            let both = cash_or_nothing(Call, s, k, 2.0, t, r, b, sigma)
-                + cash_or_nothing(Put, s, k, 2.0, t, r, b, sigma);
+            let both =
+                cash_or_nothing(Call, s, k, 2.0, t, r, b, sigma) + cash_or_nothing(Put, s, k, 2.0, t, r, b, sigma);
             assert!((both - 2.0 * (-r * t).exp()).abs() < 1e-14);
         }
     }
@@ -253,10 +209,7 @@ mod tests {
             };
             let numeric = (-r * t1).exp() * simpson(integrand, -10.0, 10.0, 4000);
             let closed = forward_start(kind, s, alpha, t1, t, r, b, sigma);
-            assert!(
-                (numeric - closed).abs() < 1e-10,
-                "{kind:?}: {numeric} vs {closed}"
-            );
+            assert!((numeric - closed).abs() < 1e-10, "{kind:?}: {numeric} vs {closed}");
         }
         // Strike set today: a vanilla at K = alpha * S.
         let c0 = forward_start(Call, s, alpha, 0.0, t, r, b, sigma);

@@ -599,10 +599,11 @@ impl Reader<'_> {
                     continue;
                 };
                 if !(-1.0..=1.0).contains(&rho) {
-                    let fix = if rho.abs() <= 100.0 {
+                    // 40 is surely 40% typed as a number; 1.4 is more likely a slip.
+                    let fix = if (2.0..=100.0).contains(&rho.abs()) {
                         percent_fix(b, rho)
                     } else {
-                        "a correlation lies between -1 and 1".to_string()
+                        "a correlation lies between -1 and 1; 0.40 means 40%".to_string()
                     };
                     self.error(value.span, format!("{path} must be between -1 and 1 (got {})", show(rho)), fix);
                     continue;

@@ -81,67 +81,143 @@ pub struct Estimate {
 /// Prices a compiled program.
 pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diagnostic> {
     let started = Instant::now();
-    let model = paths::Model::new(program);
-    let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
+    let mut run = Run::new(program, settings);
     let paths = if settings.antithetic { settings.paths.max(2).div_ceil(2) * 2 } else { settings.paths.max(2) };
-    let blocks = paths.div_ceil(BLOCK as u64);
-    let dims = 1 + controls.len();
-    let mut total = BlockResult::new(dims, program.events.len(), program.payments.len());
-    let mut next = 0u64;
-    while next < blocks {
-        let end = (next + BLOCKS_IN_FLIGHT as u64).min(blocks);
-        let results: Vec<BlockResult> = (next..end)
-            .into_par_iter()
-            .map_init(
-                || Workspace::new(program, &model, &controls),
-                |ws, b| {
-                    let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
-                    ws.run_block(program, &model, &controls, settings, b, lanes)
-                },
-            )
-            .collect();
-        for r in &results {
-            total.merge(r);
+    run.extend_to(paths);
+    run.finish(started)
+}
+
+/// Prices a compiled program, adding whole blocks of paths until the standard error is at
+/// or below `target_se` or `max_paths` is reached. Starts from `settings.paths` rounded up
+/// to whole blocks. Returns the estimate and whether the target was met.
+///
+/// Every stage only appends blocks and merges them in block order, and the path count is
+/// always a whole number of blocks, so the result is bit for bit the result of
+/// [`simulate`] with `settings.paths` set to the final path count.
+pub fn simulate_to_target(
+    program: &Program,
+    settings: &Settings,
+    target_se: f64,
+    max_paths: u64,
+) -> Result<(Estimate, bool), Diagnostic> {
+    let started = Instant::now();
+    let block = BLOCK as u64;
+    let whole = |n: u64| n.max(2).div_ceil(block) * block;
+    let max_paths = whole(max_paths);
+    let mut run = Run::new(program, settings);
+    let mut paths = whole(settings.paths).min(max_paths);
+    loop {
+        run.extend_to(paths);
+        if run.total.bad_site.is_some() {
+            break;
         }
-        next = end;
-    }
-    if let Some(site) = total.bad_site {
-        let span = program.pay_sites[site as usize];
-        return Err(Diagnostic::at(span, "this payment is not a finite number on some paths")
-            .with_fix("look for a division by zero or the log or square root of a negative number in the amount"));
-    }
-    let (price, std_error, used) = regress(&total.moments, &controls);
-    let raw_var = total.raw.variance(0) / paths as f64;
-    let variance_reduction = (std_error > 0.0).then(|| raw_var / (std_error * std_error)).filter(|v| v.is_finite());
-    let n = paths as f64;
-    let mut profile: Vec<ProfileRow> = Vec::new();
-    for (slot, e) in program.events.iter().enumerate() {
-        profile.push(ProfileRow {
-            label: e.label(),
-            time: e.time,
-            end_probability: Some(total.ended[slot] / n),
-            expected_pv: 0.0,
-        });
-    }
-    for (slot, p) in program.payments.iter().enumerate() {
-        let pv = total.paid[slot] / n;
-        match profile.iter_mut().find(|r| (r.time - p.time).abs() < 1e-9) {
-            Some(row) => row.expected_pv += pv,
-            None => profile.push(ProfileRow { label: p.label(), time: p.time, end_probability: None, expected_pv: pv }),
+        let (_, se, _) = regress(&run.total.moments, &run.controls);
+        if se <= target_se || paths >= max_paths {
+            break;
         }
+        // The error falls as 1/√n: aim 10% past the count the current error predicts, but
+        // at most quadruple, since the estimate of the error is itself noisy early on.
+        let needed = if se.is_finite() && target_se > 0.0 {
+            (paths as f64 * (se / target_se).powi(2) * 1.1).min(4.0 * paths as f64) as u64
+        } else {
+            4 * paths
+        };
+        paths = whole(needed.max(paths + block)).min(max_paths);
     }
-    profile.sort_by(|a, b| a.time.total_cmp(&b.time));
-    Ok(Estimate {
-        price,
-        std_error,
-        paths,
-        seed: settings.seed,
-        antithetic: settings.antithetic,
-        controls: used.into_iter().map(|i| controls.name(i)).collect(),
-        variance_reduction,
-        profile,
-        elapsed: started.elapsed(),
-    })
+    let estimate = run.finish(started)?;
+    let met = estimate.std_error <= target_se;
+    Ok((estimate, met))
+}
+
+/// A simulation in progress: the merged statistics of blocks `0..blocks`.
+struct Run<'a> {
+    program: &'a Program,
+    settings: &'a Settings,
+    model: paths::Model,
+    controls: Controls,
+    total: BlockResult,
+    paths: u64,
+}
+
+impl<'a> Run<'a> {
+    fn new(program: &'a Program, settings: &'a Settings) -> Self {
+        let model = paths::Model::new(program);
+        let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
+        let dims = 1 + controls.len();
+        let total = BlockResult::new(dims, program.events.len(), program.payments.len());
+        Run { program, settings, model, controls, total, paths: 0 }
+    }
+
+    /// Simulates the blocks that take the run from its current path count to `paths`.
+    /// The current count must be a whole number of blocks.
+    fn extend_to(&mut self, paths: u64) {
+        debug_assert!(self.paths % BLOCK as u64 == 0, "a run can only grow from whole blocks");
+        let (program, settings, model, controls) = (self.program, self.settings, &self.model, &self.controls);
+        let blocks = paths.div_ceil(BLOCK as u64);
+        let mut next = self.paths / BLOCK as u64;
+        while next < blocks {
+            let end = (next + BLOCKS_IN_FLIGHT as u64).min(blocks);
+            let results: Vec<BlockResult> = (next..end)
+                .into_par_iter()
+                .map_init(
+                    || Workspace::new(program, model, controls),
+                    |ws, b| {
+                        let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
+                        ws.run_block(program, model, controls, settings, b, lanes)
+                    },
+                )
+                .collect();
+            for r in &results {
+                self.total.merge(r);
+            }
+            next = end;
+        }
+        self.paths = self.paths.max(paths);
+    }
+
+    fn finish(self, started: Instant) -> Result<Estimate, Diagnostic> {
+        let (program, settings, controls, total, paths) =
+            (self.program, self.settings, &self.controls, &self.total, self.paths);
+        if let Some(site) = total.bad_site {
+            let span = program.pay_sites[site as usize];
+            return Err(Diagnostic::at(span, "this payment is not a finite number on some paths")
+                .with_fix("look for a division by zero or the log or square root of a negative number in the amount"));
+        }
+        let (price, std_error, used) = regress(&total.moments, controls);
+        let raw_var = total.raw.variance(0) / paths as f64;
+        let variance_reduction = (std_error > 0.0).then(|| raw_var / (std_error * std_error)).filter(|v| v.is_finite());
+        let n = paths as f64;
+        let mut profile: Vec<ProfileRow> = Vec::new();
+        for (slot, e) in program.events.iter().enumerate() {
+            profile.push(ProfileRow {
+                label: e.label(),
+                time: e.time,
+                end_probability: Some(total.ended[slot] / n),
+                expected_pv: 0.0,
+            });
+        }
+        for (slot, p) in program.payments.iter().enumerate() {
+            let pv = total.paid[slot] / n;
+            match profile.iter_mut().find(|r| (r.time - p.time).abs() < 1e-9) {
+                Some(row) => row.expected_pv += pv,
+                None => {
+                    profile.push(ProfileRow { label: p.label(), time: p.time, end_probability: None, expected_pv: pv })
+                }
+            }
+        }
+        profile.sort_by(|a, b| a.time.total_cmp(&b.time));
+        Ok(Estimate {
+            price,
+            std_error,
+            paths,
+            seed: settings.seed,
+            antithetic: settings.antithetic,
+            controls: used.into_iter().map(|i| controls.name(i)).collect(),
+            variance_reduction,
+            profile,
+            elapsed: started.elapsed(),
+        })
+    }
 }
 
 /// The control-variate estimate: the mean of `y` corrected by `β·(x̄ − E[x])` with β the

@@ -7,7 +7,7 @@ use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
 use crate::check::Direction;
-use crate::closed_form::{black_scholes, geometric_asian_discrete, OptionKind};
+use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
 use crate::compile::Program;
 
 /// Per-step constants of the risk-neutral dynamics
@@ -382,8 +382,7 @@ impl Controls {
             let times: Vec<f64> = fixings.iter().map(|&k| p.grid[k]).collect();
             let t_pay = *times.last().unwrap_or(&t);
             let discount = (-p.rate * t_pay).exp();
-            let geometric_forward =
-                geometric_asian_discrete(OptionKind::Call, m.spot, 0.0, &times, t_pay, p.rate, b, m.volatility);
+            let geometric_forward = discount * geometric_average_forward(m.spot, &times, b, m.volatility);
             list.push(Control {
                 name: format!("{} geometric average", m.name),
                 kind: ControlKind::Geometric { asset: *a, fixings: fixings.clone() },

@@ -1,0 +1,458 @@
+//! Comparison: an external price list (CSV) against pathfold's prices, row by row.
+//!
+//! Reads the list, matches each row to a priced payoff (by file path, file name, file
+//! stem or product name), and gives a verdict per row: `agree`, `disagree` (more than
+//! `--max-z` standard errors apart and outside the row's tolerance), `missing` (a row
+//! with no payoff, or a payoff with no row) or `error` (the payoff could not be priced,
+//! the row could not be read, or it matches several payoffs).
+
+use std::collections::HashSet;
+use std::io::{self, Write};
+use std::path::Path;
+use std::process::ExitCode;
+
+use serde_json::json;
+
+use crate::batch::Row;
+use crate::diagnostic::Diagnostic;
+use crate::report::{self, Format, Priced, CAUTION};
+
+/// How far apart the prices may be regardless of the standard error.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Tolerance {
+    /// In currency.
+    Amount(f64),
+    /// In percent of the external price.
+    Percent(f64),
+}
+
+impl Tolerance {
+    fn parse(text: &str) -> Option<Tolerance> {
+        let t = text.trim();
+        let (n, pct) = t.strip_suffix('%').map_or((t, false), |n| (n.trim(), true));
+        let x: f64 = n.parse().ok().filter(|x: &f64| x.is_finite() && *x >= 0.0)?;
+        Some(if pct { Tolerance::Percent(x) } else { Tolerance::Amount(x) })
+    }
+
+    fn amount(self, external: f64) -> f64 {
+        match self {
+            Tolerance::Amount(x) => x,
+            Tolerance::Percent(p) => p / 100.0 * external.abs(),
+        }
+    }
+
+    fn text(self) -> String {
+        match self {
+            Tolerance::Amount(x) => x.to_string(),
+            Tolerance::Percent(p) => format!("{p}%"),
+        }
+    }
+}
+
+/// One row of the price list.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Quote {
+    /// Line in the CSV file (the header is line 1).
+    pub line: u64,
+    pub file: Option<String>,
+    pub product: Option<String>,
+    pub price: f64,
+    pub tolerance: Option<Tolerance>,
+}
+
+impl Quote {
+    fn key(&self) -> String {
+        self.file.clone().or_else(|| self.product.clone()).unwrap_or_default()
+    }
+}
+
+/// A row of the list that could not be read: its line, key (if any) and the problem.
+#[derive(Clone, Debug, PartialEq)]
+pub struct BadQuote {
+    pub line: u64,
+    pub key: String,
+    pub message: String,
+}
+
+/// Reads a price list. A list that cannot be read at all, or lacks the needed columns, is
+/// an error; a bad row becomes a [`BadQuote`] and the rest are still compared.
+pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic> {
+    let mut reader = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .flexible(true)
+        .from_path(path)
+        .map_err(|e| Diagnostic::new(format!("cannot read the price list: {e}")).in_file(path))?;
+    let headers = reader
+        .headers()
+        .map_err(|e| Diagnostic::new(format!("cannot read the header row of the price list: {e}")).in_file(path))?
+        .clone();
+    let column = |name: &str| headers.iter().position(|h| h.eq_ignore_ascii_case(name));
+    let (file_col, product_col, price_col, tol_col) =
+        (column("file"), column("product"), column("price"), column("tolerance"));
+    let layout_fix = "the first line must name the columns, e.g. `file,price,tolerance` or `product,price`";
+    if price_col.is_none() || (file_col.is_none() && product_col.is_none()) {
+        return Err(Diagnostic::new(format!(
+            "the price list needs a `price` column and a `file` or `product` column; its header is `{}`",
+            headers.iter().collect::<Vec<_>>().join(",")
+        ))
+        .with_fix(layout_fix)
+        .in_file(path));
+    }
+    let mut out = Vec::new();
+    for (i, record) in reader.records().enumerate() {
+        let line = record.as_ref().ok().and_then(|r| r.position()).map_or(i as u64 + 2, |p| p.line());
+        let record = match record {
+            Ok(r) => r,
+            Err(e) => {
+                out.push(Err(BadQuote { line, key: String::new(), message: format!("unreadable row: {e}") }));
+                continue;
+            }
+        };
+        let get = |c: Option<usize>| c.and_then(|c| record.get(c)).filter(|s| !s.is_empty()).map(str::to_string);
+        let (file, product) = (get(file_col), get(product_col));
+        if record.iter().all(str::is_empty) {
+            continue;
+        }
+        let key = file.clone().or_else(|| product.clone()).unwrap_or_default();
+        let bad = |message: String| BadQuote {
+            line,
+            key: key.clone(),
+            message: format!("{}:{line}: {message}", path.display()),
+        };
+        if file.is_none() && product.is_none() {
+            out.push(Err(bad("the row names neither a file nor a product (fix: fill in one of them)".into())));
+            continue;
+        }
+        let price_text = get(price_col).unwrap_or_default();
+        let price = match price_text.replace('_', "").parse::<f64>() {
+            Ok(p) if p.is_finite() => p,
+            _ => {
+                out.push(Err(bad(format!(
+                    "the price `{price_text}` is not a number (fix: write a plain decimal such as `79321.93`, no currency or thousands separators)"
+                ))));
+                continue;
+            }
+        };
+        let tolerance = match get(tol_col) {
+            None => None,
+            Some(t) => match Tolerance::parse(&t) {
+                Some(t) => Some(t),
+                None => {
+                    out.push(Err(bad(format!(
+                        "the tolerance `{t}` is neither an amount nor a percentage (fix: write e.g. `50` or `0.5%`, or leave it empty)"
+                    ))));
+                    continue;
+                }
+            },
+        };
+        out.push(Ok(Quote { line, file, product, price, tolerance }));
+    }
+    Ok(out)
+}
+
+/// The verdict on one line of the comparison.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Verdict {
+    Agree,
+    Disagree,
+    Missing,
+    Error,
+}
+
+impl Verdict {
+    pub fn word(self) -> &'static str {
+        match self {
+            Verdict::Agree => "agree",
+            Verdict::Disagree => "disagree",
+            Verdict::Missing => "missing",
+            Verdict::Error => "error",
+        }
+    }
+}
+
+/// One line of the comparison.
+#[derive(Clone, Debug)]
+pub struct Line {
+    /// The price-list line, when the line comes from the list.
+    pub list_line: Option<u64>,
+    /// The file or product name the list gave, or the payoff file for a payoff not listed.
+    pub key: String,
+    pub external: Option<f64>,
+    pub tolerance: Option<Tolerance>,
+    pub priced: Option<Priced>,
+    pub verdict: Verdict,
+    pub message: String,
+}
+
+impl Line {
+    pub fn difference(&self) -> Option<f64> {
+        Some(self.priced.as_ref()?.estimate.price - self.external?)
+    }
+
+    /// The difference in standard errors.
+    pub fn z(&self) -> Option<f64> {
+        let d = self.difference()?;
+        let se = self.priced.as_ref()?.estimate.std_error;
+        Some(if d == 0.0 { 0.0 } else { d / se })
+    }
+
+    /// The difference relative to the external price.
+    pub fn relative(&self) -> Option<f64> {
+        let ext = self.external?;
+        (ext != 0.0).then(|| self.difference().map(|d| d / ext.abs())).flatten()
+    }
+}
+
+fn matches(quote: &Quote, row: &Row) -> bool {
+    if let Some(key) = &quote.file {
+        let key = key.replace('\\', "/");
+        let file = row.file.replace('\\', "/");
+        let path = Path::new(&file);
+        let name = path.file_name().and_then(|n| n.to_str());
+        let stem = path.file_stem().and_then(|n| n.to_str());
+        let rel = key.trim_start_matches("./");
+        return file == key
+            || file.ends_with(&format!("/{rel}"))
+            || name == Some(key.as_str())
+            || stem == Some(key.as_str());
+    }
+    match (&quote.product, &row.outcome) {
+        (Some(product), Ok(p)) => p.product.trim() == product.trim(),
+        _ => false,
+    }
+}
+
+/// Compares the list with the priced rows. List lines come first, in list order, then
+/// the payoffs the list does not name.
+pub fn compare(list: &[Result<Quote, BadQuote>], rows: &[Row], max_z: f64) -> Vec<Line> {
+    let mut used: HashSet<usize> = HashSet::new();
+    let mut lines = Vec::new();
+    for entry in list {
+        let quote = match entry {
+            Ok(q) => q,
+            Err(bad) => {
+                lines.push(Line {
+                    list_line: Some(bad.line),
+                    key: bad.key.clone(),
+                    external: None,
+                    tolerance: None,
+                    priced: None,
+                    verdict: Verdict::Error,
+                    message: bad.message.clone(),
+                });
+                continue;
+            }
+        };
+        let hits: Vec<usize> = rows.iter().enumerate().filter(|(_, r)| matches(quote, r)).map(|(i, _)| i).collect();
+        used.extend(&hits);
+        let mut line = Line {
+            list_line: Some(quote.line),
+            key: quote.key(),
+            external: Some(quote.price),
+            tolerance: quote.tolerance,
+            priced: None,
+            verdict: Verdict::Missing,
+            message: String::new(),
+        };
+        match hits.as_slice() {
+            [] => line.message = "no payoff file matches this row".into(),
+            [i] => match &rows[*i].outcome {
+                Ok(p) => {
+                    line.priced = Some(p.clone());
+                    let diff = p.estimate.price - quote.price;
+                    let z = line.z().unwrap_or(f64::NAN);
+                    let within = quote.tolerance.is_some_and(|t| diff.abs() <= t.amount(quote.price));
+                    // A NaN z (no standard error) cannot vouch for agreement.
+                    let close = z.abs() <= max_z;
+                    line.verdict = if close || within { Verdict::Agree } else { Verdict::Disagree };
+                    line.message = match (close, within) {
+                        (true, _) => String::new(),
+                        (false, true) => format!("|z| above {max_z} but within the tolerance"),
+                        (false, false) => format!("|z| above {max_z} and outside the tolerance"),
+                    };
+                }
+                Err(_) => {
+                    line.verdict = Verdict::Error;
+                    line.message = rows[*i].error_message().unwrap_or_default();
+                }
+            },
+            many => {
+                line.verdict = Verdict::Error;
+                let names: Vec<&str> = many.iter().map(|&i| rows[i].file.as_str()).collect();
+                line.message =
+                    format!("matches several payoff files: {} (fix: give the relative path)", names.join(", "));
+            }
+        }
+        lines.push(line);
+    }
+    for (i, row) in rows.iter().enumerate() {
+        if used.contains(&i) {
+            continue;
+        }
+        let (priced, verdict, message) = match &row.outcome {
+            Ok(p) => (Some(p.clone()), Verdict::Missing, "not in the price list".to_string()),
+            Err(_) => (None, Verdict::Error, row.error_message().unwrap_or_default()),
+        };
+        lines.push(Line {
+            list_line: None,
+            key: row.file.clone(),
+            external: None,
+            tolerance: None,
+            priced,
+            verdict,
+            message,
+        });
+    }
+    lines
+}
+
+/// 0 if every line agrees, 1 otherwise.
+pub fn exit_status(lines: &[Line]) -> ExitCode {
+    ExitCode::from(if lines.iter().all(|l| l.verdict == Verdict::Agree) { 0 } else { 1 })
+}
+
+/// The CSV columns of a comparison, in order; the caution rides in the last column.
+pub const CSV_COLUMNS: [&str; 22] = [
+    "list_line",
+    "key",
+    "file",
+    "product",
+    "external_price",
+    "price",
+    "std_error",
+    "difference",
+    "z",
+    "relative_difference",
+    "tolerance",
+    "verdict",
+    "message",
+    "paths",
+    "seed",
+    "antithetic",
+    "control_variates",
+    "pathfold_version",
+    "payoff_sha256",
+    "market_file",
+    "market_sha256",
+    "caution",
+];
+
+fn opt(x: Option<f64>) -> String {
+    x.map(|x| x.to_string()).unwrap_or_default()
+}
+
+/// Writes the comparison.
+pub fn write(out: &mut dyn Write, lines: &[Line], format: Format) -> io::Result<()> {
+    match format {
+        Format::Table => write_table(out, lines),
+        Format::Csv => {
+            let mut w = csv::Writer::from_writer(out);
+            w.write_record(CSV_COLUMNS)?;
+            for l in lines {
+                let p = l.priced.as_ref();
+                w.write_record([
+                    l.list_line.map(|n| n.to_string()).unwrap_or_default(),
+                    l.key.clone(),
+                    p.map(|p| p.file.clone()).unwrap_or_default(),
+                    p.map(|p| p.product.clone()).unwrap_or_default(),
+                    opt(l.external),
+                    opt(p.map(|p| p.estimate.price)),
+                    opt(p.map(|p| p.estimate.std_error)),
+                    opt(l.difference()),
+                    opt(l.z()),
+                    opt(l.relative()),
+                    l.tolerance.map(Tolerance::text).unwrap_or_default(),
+                    l.verdict.word().into(),
+                    l.message.clone(),
+                    p.map(|p| p.estimate.paths.to_string()).unwrap_or_default(),
+                    p.map(|p| p.estimate.seed.to_string()).unwrap_or_default(),
+                    p.map(|p| p.estimate.antithetic.to_string()).unwrap_or_default(),
+                    p.map(|p| p.record.control_variates.to_string()).unwrap_or_default(),
+                    env!("CARGO_PKG_VERSION").into(),
+                    p.map(|p| p.record.payoff_sha256.clone()).unwrap_or_default(),
+                    p.map(|p| p.market_file.clone()).unwrap_or_default(),
+                    p.map(|p| p.record.market_sha256.clone()).unwrap_or_default(),
+                    CAUTION.into(),
+                ])?;
+            }
+            w.flush()
+        }
+        Format::Json => {
+            let items: Vec<serde_json::Value> = lines
+                .iter()
+                .map(|l| {
+                    json!({
+                        "list_line": l.list_line,
+                        "key": l.key,
+                        "external_price": l.external,
+                        "tolerance": l.tolerance.map(Tolerance::text),
+                        "price": l.priced.as_ref().map(|p| p.estimate.price),
+                        "std_error": l.priced.as_ref().map(|p| p.estimate.std_error),
+                        "difference": l.difference(),
+                        "z": l.z().filter(|z| z.is_finite()),
+                        "relative_difference": l.relative(),
+                        "verdict": l.verdict.word(),
+                        "message": l.message,
+                        "result": l.priced.as_ref().map(|p| {
+                            let mut v = report::to_json(p);
+                            if let Some(m) = v.as_object_mut() { m.remove("caution"); }
+                            v
+                        }),
+                    })
+                })
+                .collect();
+            let count = |v: Verdict| lines.iter().filter(|l| l.verdict == v).count();
+            let value = json!({
+                "pathfold_version": env!("CARGO_PKG_VERSION"),
+                "summary": {
+                    "agree": count(Verdict::Agree),
+                    "disagree": count(Verdict::Disagree),
+                    "missing": count(Verdict::Missing),
+                    "error": count(Verdict::Error),
+                },
+                "comparisons": items,
+                "caution": CAUTION,
+            });
+            serde_json::to_writer_pretty(&mut *out, &value)?;
+            writeln!(out)
+        }
+    }
+}
+
+fn write_table(out: &mut dyn Write, lines: &[Line]) -> io::Result<()> {
+    let width = lines.iter().map(|l| l.key.chars().count()).max().unwrap_or(7).max(7);
+    let cell = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |x| report::group(x, d));
+    writeln!(
+        out,
+        "{:<width$} {:>14} {:>14} {:>10} {:>12} {:>8} {:>9}  verdict",
+        "product", "external", "pathfold", "std error", "difference", "z", "relative"
+    )?;
+    for l in lines {
+        let z = l.z().map_or("-".to_string(), |z| format!("{z:.2}"));
+        let rel = l.relative().map_or("-".to_string(), |r| format!("{:.3}%", 100.0 * r));
+        let note = if l.message.is_empty() { String::new() } else { format!("  ({})", l.message) };
+        writeln!(
+            out,
+            "{:<width$} {:>14} {:>14} {:>10} {:>12} {:>8} {:>9}  {}{note}",
+            l.key,
+            cell(l.external, 2),
+            cell(l.priced.as_ref().map(|p| p.estimate.price), 2),
+            cell(l.priced.as_ref().map(|p| p.estimate.std_error), 2),
+            cell(l.difference(), 2),
+            z,
+            rel,
+            l.verdict.word(),
+        )?;
+    }
+    let count = |v: Verdict| lines.iter().filter(|l| l.verdict == v).count();
+    writeln!(out)?;
+    writeln!(
+        out,
+        "{} agree, {} disagree, {} missing, {} error",
+        count(Verdict::Agree),
+        count(Verdict::Disagree),
+        count(Verdict::Missing),
+        count(Verdict::Error)
+    )?;
+    writeln!(out, "{CAUTION}")
+}

@@ -1,0 +1,52 @@
+//! Helpers shared by the integration tests: run the real binary, read its JSON.
+#![allow(dead_code, unreachable_pub)]
+
+use std::process::Command;
+
+use pathfold::date::Date;
+
+/// Runs `pathfold` with `args`; returns stdout, stderr and the exit status.
+pub fn run(args: &[&str]) -> (String, String, Option<i32>) {
+    let out = Command::new(env!("CARGO_BIN_EXE_pathfold")).args(args).output().expect("the binary runs");
+    (
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+        out.status.code(),
+    )
+}
+
+/// Prices `file` with `--format json` and extra `args`; panics with stderr on failure.
+pub fn price(file: &str, args: &[&str]) -> serde_json::Value {
+    let mut all = vec!["price", file, "--format", "json"];
+    all.extend_from_slice(args);
+    let (stdout, stderr, code) = run(&all);
+    assert_eq!(code, Some(0), "pricing {file} failed:\n{stderr}");
+    serde_json::from_str(&stdout).unwrap_or_else(|e| panic!("{file}: not JSON ({e}):\n{stdout}"))
+}
+
+/// Price and standard error of a JSON result.
+pub fn price_se(v: &serde_json::Value) -> (f64, f64) {
+    (v["price"].as_f64().expect("price"), v["std_error"].as_f64().expect("std_error"))
+}
+
+/// ACT/365 years from the demo valuation date 2026-12-01 to `date`.
+pub fn years(date: &str) -> f64 {
+    Date::parse("2026-12-01").unwrap().years_until(Date::parse(date).expect("a test date"))
+}
+
+/// Asserts `|mc − reference| ≤ k·se`, naming the reference on failure.
+pub fn assert_within(what: &str, mc: f64, se: f64, reference: f64, k: f64) {
+    let z = (mc - reference) / se;
+    assert!(z.abs() <= k, "{what}: Monte Carlo {mc:.4} ± {se:.4} vs reference {reference:.4}: z = {z:.2}, allowed {k}");
+}
+
+/// The demo market (payoffs/market.toml), for references.
+pub const RATE: f64 = 0.038;
+pub struct Asset {
+    pub vol: f64,
+    pub q: f64,
+}
+pub const ZPHX: Asset = Asset { vol: 0.18, q: 0.019 };
+pub const QMEN: Asset = Asset { vol: 0.32, q: 0.031 };
+pub const OSMP: Asset = Asset { vol: 0.26, q: 0.012 };
+pub const VNTL: Asset = Asset { vol: 0.29, q: 0.0 };
