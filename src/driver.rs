@@ -242,21 +242,10 @@ fn price_command(args: &PriceArgs) -> ExitCode {
         }
     };
     let single = args.files.len() == 1 && !args.files[0].is_dir();
-    let rows = with_threads(p.threads, || {
-        let files = batch::collect_files(&args.files);
-        let progress = batch::Progress::new(files.len(), !single);
-        let rows = batch::price_all(files, &request, &progress);
-        progress.done();
-        rows
-    });
-    let rows = match rows {
-        Ok(r) => r,
-        Err(e) => {
-            eprintln!("{e}");
-            return ExitCode::from(2);
-        }
+    let rows = match price_inputs(&args.files, &request, p.threads, !single) {
+        Ok(rows) => rows,
+        Err(code) => return code,
     };
-    report_failures(&rows);
     let written = if single && p.format != Format::Csv {
         match &rows[0].outcome {
             Ok(priced) => emit(p.output.as_deref(), |w| report::write_one(w, priced, p.format)),
@@ -269,6 +258,29 @@ fn price_command(args: &PriceArgs) -> ExitCode {
         return code;
     }
     batch::exit_status(&rows)
+}
+
+/// Prices every payoff file found in `inputs` on the thread pool, with a progress bar when
+/// `progress` (and stderr is a terminal); the diagnostics of failed files go to stderr.
+fn price_inputs(
+    inputs: &[PathBuf],
+    request: &batch::Request,
+    threads: Option<usize>,
+    progress: bool,
+) -> Result<Vec<batch::Row>, ExitCode> {
+    let rows = with_threads(threads, || {
+        let files = batch::collect_files(inputs);
+        let bar = batch::Progress::new(files.len(), progress);
+        let rows = batch::price_all(files, request, &bar);
+        bar.done();
+        rows
+    })
+    .map_err(|e| {
+        eprintln!("{e}");
+        ExitCode::from(2)
+    })?;
+    report_failures(&rows);
+    Ok(rows)
 }
 
 /// Full diagnostics with the caret go to stderr; rows carry a one-line summary. A problem
@@ -314,21 +326,10 @@ fn compare_command(args: &CompareArgs) -> ExitCode {
     } else {
         args.files.clone()
     };
-    let rows = with_threads(p.threads, || {
-        let files = batch::collect_files(&inputs);
-        let progress = batch::Progress::new(files.len(), true);
-        let rows = batch::price_all(files, &request, &progress);
-        progress.done();
-        rows
-    });
-    let rows = match rows {
-        Ok(r) => r,
-        Err(e) => {
-            eprintln!("{e}");
-            return ExitCode::from(2);
-        }
+    let rows = match price_inputs(&inputs, &request, p.threads, true) {
+        Ok(rows) => rows,
+        Err(code) => return code,
     };
-    report_failures(&rows);
     let lines = compare::compare(&list, &rows, args.max_z);
     if let Err(code) = emit(p.output.as_deref(), |w| compare::write(w, &lines, p.format)) {
         return code;
