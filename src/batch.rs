@@ -198,16 +198,20 @@ pub fn price_all(files: Vec<Result<PathBuf, Failure>>, request: &Request, progre
         .into_par_iter()
         .map(|f| {
             let row = match f {
-                Ok(path) => Row {
-                    file: path.display().to_string(),
-                    outcome: price_file_to(
-                        &path,
-                        request.market.as_deref(),
-                        &request.overrides,
-                        &request.settings,
-                        request.target.map(|t| (t, request.max_paths)),
-                    ),
-                },
+                Ok(path) => {
+                    // A bug of ours on one file must not cost the rest of the batch.
+                    let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                        price_file_to(
+                            &path,
+                            request.market.as_deref(),
+                            &request.overrides,
+                            &request.settings,
+                            request.target.map(|t| (t, request.max_paths)),
+                        )
+                    }))
+                    .unwrap_or_else(|panic| Err(internal_failure(&path, panic.as_ref())));
+                    Row { file: path.display().to_string(), outcome }
+                }
                 Err(failure) => Row {
                     file: failure.diagnostics[0].file.as_ref().map(|p| p.display().to_string()).unwrap_or_default(),
                     outcome: Err(failure),
@@ -217,6 +221,22 @@ pub fn price_all(files: Vec<Result<PathBuf, Failure>>, request: &Request, progre
             row
         })
         .collect()
+}
+
+/// The failure recorded when pricing a file panicked: our bug, not the user's input.
+fn internal_failure(path: &Path, panic: &(dyn std::any::Any + Send)) -> Failure {
+    let what = panic
+        .downcast_ref::<&str>()
+        .map(|s| (*s).to_string())
+        .or_else(|| panic.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "unknown cause".to_string());
+    Failure {
+        diagnostics: vec![Diagnostic::new(format!("internal error while pricing: {what}"))
+            .with_fix("this is a fault in pathfold, not in the file; please report it with the payoff and market files")
+            .in_file(path)],
+        source: None,
+        internal: true,
+    }
 }
 
 /// 0 if every row priced, 2 if any failed on its input, 1 if any failed on our side.

@@ -4,6 +4,18 @@
 //! parameters) → [`compile`] (tree + market → flat program over a time grid) → [`sim`]
 //! (paths, variance reduction, statistics) → [`report`] (table, JSON). [`driver`] chains
 //! them; `main.rs` only parses arguments.
+//!
+//! Using the stages from Rust:
+//!
+//! ```
+//! use pathfold::{check, syntax};
+//!
+//! let text = "product \"Call\"\ncurrency USD\nunderlyings ZPHX\nat 1y { pay max(perf(ZPHX) - 1, 0) }\n";
+//! let tree = syntax::parse(text).expect("valid syntax");
+//! let product = check::check(&tree, &[]).expect("a checked product");
+//! assert_eq!(product.currency, "USD");
+//! assert_eq!(product.underlyings[0].text, "ZPHX");
+//! ```
 
 pub mod batch;
 pub mod check;
