@@ -533,6 +533,10 @@ impl Checker {
     fn constant(&mut self, expr: &syntax::Expr, what: &str) -> Option<(f64, Ty)> {
         let e = self.expr(expr)?;
         match e.kind {
+            TKind::Const(v) if !v.is_finite() => {
+                self.error(expr.span, format!("{what} is not a finite number here"), "look for a division by zero");
+                None
+            }
             TKind::Const(v) if e.ty != Ty::Date => Some((v, e.ty)),
             _ if e.ty == Ty::Date => {
                 self.error(

@@ -485,7 +485,10 @@ impl<'p> Compiler<'p> {
     }
 
     fn grid_index(&self, t: f64) -> usize {
-        self.grid.iter().position(|g| (g - t).abs() < TIME_EPS).expect("every referenced date is on the grid")
+        // The grid is sorted and its points are more than TIME_EPS apart.
+        let i = self.grid.partition_point(|g| *g < t - TIME_EPS);
+        assert!(i < self.grid.len() && (self.grid[i] - t).abs() < TIME_EPS, "every referenced date is on the grid");
+        i
     }
 
     fn alloc(&mut self) -> u32 {
