@@ -170,6 +170,8 @@ pub struct Product {
     pub start: Option<(DateRef, Span)>,
     /// Parameter names and values after overrides, in file order.
     pub params: Vec<(String, f64)>,
+    /// How each parameter's value was written, for reports (`2.25%` rather than 0.0225).
+    pub params_written: Vec<Written>,
     pub schedules: Vec<ScheduleDef>,
     pub states: Vec<StateDef>,
     /// How many `let` slots the blocks use.
@@ -179,6 +181,25 @@ pub struct Product {
     pub blocks: Vec<Block>,
     /// Things that are allowed but probably not meant, such as `perf(X) < 90`.
     pub warnings: Vec<Diagnostic>,
+}
+
+/// Where a parameter's value was written.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Written {
+    /// The default in the payoff file, at this span.
+    Default(Span),
+    /// The text of a `--set` override.
+    Override(String),
+}
+
+impl Written {
+    /// The text as written, given the payoff file's source.
+    pub fn text<'a>(&'a self, source: &'a str) -> &'a str {
+        match self {
+            Written::Default(span) => source.get(span.start..span.end).unwrap_or("?"),
+            Written::Override(text) => text,
+        }
+    }
 }
 
 /// A `--set NAME=VALUE` override.
@@ -249,6 +270,7 @@ impl Default for Product {
             market: None,
             start: None,
             params: Vec::new(),
+            params_written: Vec::new(),
             schedules: Vec::new(),
             states: Vec::new(),
             lets: 0,
@@ -323,9 +345,11 @@ impl Checker {
                     self.product.market = Some((path.clone(), *span));
                 }
                 Item::Param(name, expr) => {
+                    let mut written = Written::Default(expr.span);
                     let value = match overrides_left.iter().position(|o| o.name == name.text) {
                         Some(i) => {
                             let o = overrides_left.remove(i);
+                            written = Written::Override(o.value.clone());
                             // A refused override is reported; the default keeps the
                             // parameter declared so that its uses raise no further errors.
                             self.override_value(o, expr).or_else(|| self.constant_quiet(expr))
@@ -335,6 +359,7 @@ impl Checker {
                     if let Some((v, ty)) = value {
                         if self.declare(name, Global::Param(v, ty)) {
                             self.product.params.push((name.text.clone(), v));
+                            self.product.params_written.push(written);
                         }
                     }
                 }

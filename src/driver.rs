@@ -411,6 +411,7 @@ pub fn price_file_to(
         currency: program.currency.clone(),
         notional: program.notional,
         params: product.params.clone(),
+        params_written: product.params_written.iter().map(|w| w.text(&source).to_string()).collect(),
         estimate,
         record: Record {
             version: env!("CARGO_PKG_VERSION"),

@@ -22,6 +22,8 @@ pub struct Priced {
     pub currency: String,
     pub notional: f64,
     pub params: Vec<(String, f64)>,
+    /// Each parameter's value as written (`2.25%`, `true`), for people.
+    pub params_written: Vec<String>,
     pub estimate: Estimate,
     /// What it takes to reproduce the number exactly.
     pub record: Record,
@@ -157,7 +159,12 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     writeln!(out, "  market            {}", p.market_file)?;
     writeln!(out, "  notional          {} {ccy}", group(p.notional, 2))?;
     if !p.params.is_empty() {
-        let list: Vec<String> = p.params.iter().map(|(n, v)| format!("{n} = {}", short(*v))).collect();
+        let list: Vec<String> = p
+            .params
+            .iter()
+            .zip(&p.params_written)
+            .map(|((n, _), w)| format!("{n} = {}", w.split_whitespace().collect::<Vec<_>>().join(" ")))
+            .collect();
         writeln!(out, "  parameters        {}", list.join(", "))?;
     }
     writeln!(out)?;
@@ -363,11 +370,6 @@ pub fn group(x: f64, decimals: usize) -> String {
 /// The first 16 hex digits: enough to tell files apart at a glance (JSON and CSV carry all 64).
 fn short_hash(h: &str) -> &str {
     &h[..h.len().min(16)]
-}
-
-fn short(v: f64) -> String {
-    let s = format!("{v:.10}");
-    s.trim_end_matches('0').trim_end_matches('.').to_string()
 }
 
 #[cfg(test)]
