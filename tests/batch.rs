@@ -1,19 +1,15 @@
 //! Batch pricing through the real binary: a folder of good payoffs with broken files
 //! mixed in, CSV and JSON output, error-bounded runs, atomic output and determinism.
 
+mod common;
+
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
+
+use common::output as pathfold;
 
 use pathfold::closed_form::{black_scholes, OptionKind};
 use pathfold::report::CAUTION;
-
-fn pathfold(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_pathfold"))
-        .args(args)
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .output()
-        .expect("the binary runs")
-}
 
 fn stdout(o: &Output) -> String {
     String::from_utf8(o.stdout.clone()).expect("UTF-8 stdout")

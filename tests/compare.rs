@@ -1,8 +1,12 @@
 //! `pathfold compare` through the real binary, against a price list whose prices come
 //! from closed forms independent of the simulation.
 
+mod common;
+
 use std::path::PathBuf;
-use std::process::{Command, Output};
+use std::process::Output;
+
+use common::output as pathfold;
 
 use pathfold::closed_form::{black_scholes, cash_or_nothing, standard_barrier, BarrierKind, OptionKind};
 use pathfold::report::CAUTION;
@@ -32,14 +36,6 @@ fn references() -> [(&'static str, f64); 3] {
             NOTIONAL * standard_barrier(OptionKind::Call, BarrierKind::UpAndOut, SPOT, 1.0, 1.3, 0.0, T, R, b, SIGMA),
         ),
     ]
-}
-
-fn pathfold(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_pathfold"))
-        .args(args)
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .output()
-        .expect("the binary runs")
 }
 
 /// Writes a price list and returns its path.

@@ -5,6 +5,15 @@ use std::process::Command;
 
 use pathfold::date::Date;
 
+/// Runs `pathfold` with `args` from the repository root; returns its whole output.
+pub fn output(args: &[&str]) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_pathfold"))
+        .args(args)
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("the binary runs")
+}
+
 /// Runs `pathfold` with `args`; returns stdout, stderr and the exit status.
 pub fn run(args: &[&str]) -> (String, String, Option<i32>) {
     let out = Command::new(env!("CARGO_BIN_EXE_pathfold")).args(args).output().expect("the binary runs");
