@@ -28,11 +28,8 @@ fn down_in_put(h: f64) -> f64 {
 }
 
 fn price_text(name: &str, body: &str, extra: &[&str]) -> serde_json::Value {
-    let dir = std::env::temp_dir().join(format!("pathfold-barriers-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    let file = dir.join(name);
     let text = format!("product \"{name}\"\ncurrency USD\nnotional 100\nunderlyings BOOKA\n{body}");
-    std::fs::write(&file, text).unwrap();
+    let file = common::Scratch::file(&format!("barriers-{name}"), name, &text);
     let mut args = vec!["price", file.to_str().unwrap(), "--market", MARKET, "--format", "json", "--seed", "21"];
     args.extend_from_slice(extra);
     let (stdout, stderr, code) = run(&args);

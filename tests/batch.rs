@@ -3,7 +3,7 @@
 
 mod common;
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::process::Output;
 
 use common::output as pathfold;
@@ -227,10 +227,8 @@ fn a_bad_target_is_refused() {
     assert!(stderr(&o).starts_with("--target-se 3 percent: give a positive amount"), "{}", stderr(&o));
 }
 
-fn scratch(name: &str) -> PathBuf {
-    let dir = std::env::temp_dir().join(format!("pathfold-batch-{}-{name}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    dir
+fn scratch(name: &str) -> common::Scratch {
+    common::Scratch::dir(&format!("batch-{name}"))
 }
 
 #[test]
@@ -255,7 +253,6 @@ fn output_goes_to_the_file_whole() {
     assert_eq!(rows.len(), demo_payoffs().len() + 3);
     let left: Vec<_> = std::fs::read_dir(&dir).unwrap().map(|e| e.unwrap().file_name()).collect();
     assert_eq!(left, vec![std::ffi::OsString::from("prices.csv")], "no temporary file is left behind");
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 #[test]

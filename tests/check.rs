@@ -45,8 +45,7 @@ fn every_validation_case_is_within_four_standard_errors() {
 #[test]
 fn a_wrong_reference_fails_the_check_with_exit_status_one() {
     // A copy of one case whose closed form is deliberately off by 1%: the check must catch it.
-    let dir = std::env::temp_dir().join(format!("pathfold-check-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
+    let dir = common::Scratch::dir("check-wrong-reference");
     for f in ["call_atm.payoff", "market.toml"] {
         std::fs::copy(format!("payoffs/validation/{f}"), dir.join(f)).unwrap();
     }
@@ -56,7 +55,6 @@ fn a_wrong_reference_fails_the_check_with_exit_status_one() {
     )
     .unwrap();
     let (stdout, _, code) = run(&["check", "--folder", dir.to_str().unwrap(), "--paths", "50000"]);
-    std::fs::remove_dir_all(&dir).ok();
     assert_eq!(code, Some(1), "{stdout}");
     assert!(stdout.contains("FAIL"), "{stdout}");
 }

@@ -3,7 +3,6 @@
 
 mod common;
 
-use std::path::PathBuf;
 use std::process::Output;
 
 use common::output as pathfold;
@@ -38,13 +37,9 @@ fn references() -> [(&'static str, f64); 3] {
     ]
 }
 
-/// Writes a price list and returns its path.
-fn price_list(name: &str, text: &str) -> PathBuf {
-    let dir = std::env::temp_dir().join(format!("pathfold-compare-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    let path = dir.join(name);
-    std::fs::write(&path, text).unwrap();
-    path
+/// Writes a price list in a folder of its own, removed when the result is dropped.
+fn price_list(name: &str, text: &str) -> common::Scratch {
+    common::Scratch::file(&format!("compare-{name}"), name, text)
 }
 
 /// The list with the closed-form prices: the call and digital by file, the barrier by

@@ -7,11 +7,8 @@ mod common;
 use common::run;
 
 fn price_of(name: &str, body: &str) -> String {
-    let dir = std::env::temp_dir().join(format!("pathfold-language-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    let file = dir.join(name);
     let text = format!("product \"{name}\"\ncurrency USD\nnotional 1_000_000\nunderlyings QMEN\n{body}");
-    std::fs::write(&file, text).unwrap();
+    let file = common::Scratch::file(&format!("language-{name}"), name, &text);
     let (stdout, stderr, code) = run(&[
         "price",
         file.to_str().unwrap(),

@@ -1,6 +1,7 @@
 //! Helpers shared by the integration tests: run the real binary, read its JSON.
 #![allow(dead_code, unreachable_pub)]
 
+use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use pathfold::date::Date;
@@ -59,3 +60,51 @@ pub const ZPHX: Asset = Asset { vol: 0.18, q: 0.019 };
 pub const QMEN: Asset = Asset { vol: 0.32, q: 0.031 };
 pub const OSMP: Asset = Asset { vol: 0.26, q: 0.012 };
 pub const VNTL: Asset = Asset { vol: 0.29, q: 0.0 };
+
+/// A file in its own temporary folder, removed with the folder when dropped. `tag` must
+/// be unique within a test binary (tests run in parallel in one process).
+pub struct Scratch {
+    dir: PathBuf,
+    file: PathBuf,
+}
+
+impl Scratch {
+    /// An empty folder; the `Scratch` stands for the folder itself.
+    pub fn dir(tag: &str) -> Scratch {
+        let dir = std::env::temp_dir().join(format!("pathfold-{tag}-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("a writable temporary folder");
+        Scratch { file: dir.clone(), dir }
+    }
+
+    /// A folder holding one file `name` with `text`; the `Scratch` stands for the file.
+    pub fn file(tag: &str, name: &str, text: &str) -> Scratch {
+        let mut s = Scratch::dir(tag);
+        s.file = s.dir.join(name);
+        std::fs::write(&s.file, text).expect("a writable temporary file");
+        s
+    }
+
+    /// A path inside the folder.
+    pub fn join(&self, name: &str) -> PathBuf {
+        self.dir.join(name)
+    }
+}
+
+impl std::ops::Deref for Scratch {
+    type Target = Path;
+    fn deref(&self) -> &Path {
+        &self.file
+    }
+}
+
+impl AsRef<Path> for Scratch {
+    fn as_ref(&self) -> &Path {
+        &self.file
+    }
+}
+
+impl Drop for Scratch {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.dir);
+    }
+}
