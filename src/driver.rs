@@ -190,6 +190,14 @@ fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -
 }
 
 /// Turns the pricing options into a request, or the message for a bad option.
+/// The request of `price` or `compare`; a bad option is reported here, with exit status 2.
+fn checked_request(args: &PricingArgs) -> Result<Request, ExitCode> {
+    request(args).map_err(|e| {
+        eprint!("{e}");
+        ExitCode::from(2)
+    })
+}
+
 fn request(args: &PricingArgs) -> Result<Request, String> {
     let overrides: Vec<Override> =
         args.set.iter().map(|s| Override::parse(s)).collect::<Result<_, Diagnostic>>().map_err(|d| d.render(None))?;
@@ -234,12 +242,9 @@ fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>)
 
 fn price_command(args: &PriceArgs) -> ExitCode {
     let p = &args.pricing;
-    let request = match request(p) {
+    let request = match checked_request(p) {
         Ok(r) => r,
-        Err(e) => {
-            eprint!("{e}");
-            return ExitCode::from(2);
-        }
+        Err(code) => return code,
     };
     let single = args.files.len() == 1 && !args.files[0].is_dir();
     let rows = match price_inputs(&args.files, &request, p.threads, !single) {
@@ -303,12 +308,9 @@ fn report_failures(rows: &[batch::Row]) {
 
 fn compare_command(args: &CompareArgs) -> ExitCode {
     let p = &args.pricing;
-    let request = match request(p) {
+    let request = match checked_request(p) {
         Ok(r) => r,
-        Err(e) => {
-            eprint!("{e}");
-            return ExitCode::from(2);
-        }
+        Err(code) => return code,
     };
     if !(args.max_z.is_finite() && args.max_z > 0.0) {
         eprintln!("--max-z must be a positive number, not {}", args.max_z);
