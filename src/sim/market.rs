@@ -24,10 +24,7 @@
 //! ```
 
 use std::collections::BTreeMap;
-use std::fmt;
 use std::path::Path;
-
-use serde::de::{self, Deserialize, Deserializer, MapAccess, SeqAccess, Visitor};
 
 use crate::date::Date;
 use crate::diagnostic::{closest, Diagnostic, Span};
@@ -85,8 +82,8 @@ impl Market {
 
     /// Validates market data given as TOML text; `file` is only used to label errors.
     pub fn from_toml(text: &str, file: &Path) -> Result<Market, Vec<Diagnostic>> {
-        let root = match toml::from_str::<Bare>(text) {
-            Ok(Bare(root)) => root,
+        let root = match parse_tree(text) {
+            Ok(root) => root,
             Err(err) => {
                 let message = err.message().trim_end().to_string();
                 let diagnostic = match err.span() {
@@ -683,17 +680,9 @@ fn show(x: f64) -> String {
 // ---------------------------------------------------------------------------------------
 // A TOML tree in which every value and key carries its span.
 //
-// `toml::Spanned<T>` needs the shape known in advance; to report unknown keys and wrong
-// types with their place we read any shape. toml passes spans through serde by the
-// protocol `toml::Spanned` uses: asked for a struct with the names below, it answers with
-// a map of start, end and value. A date comes as a one-entry map under a marker key.
-
-const SPANNED_NAME: &str = "$__serde_spanned_private_Spanned";
-const SPANNED_START: &str = "$__serde_spanned_private_start";
-const SPANNED_END: &str = "$__serde_spanned_private_end";
-const SPANNED_VALUE: &str = "$__serde_spanned_private_value";
-const SPANNED_FIELDS: &[&str] = &[SPANNED_START, SPANNED_END, SPANNED_VALUE];
-const DATE_MARKER: &str = "$__toml_private_datetime";
+// The market is validated by hand (to report unknown keys and wrong types with their
+// place, whatever shape the file has), so the file is first read into this small tree
+// from toml_edit's parsed document, whose keys and values carry their spans publicly.
 
 #[derive(Debug)]
 struct Node {
@@ -734,133 +723,53 @@ struct Key {
     span: Option<Span>,
 }
 
-impl Node {
-    fn bare(kind: Kind) -> Node {
-        Node { span: None, kind }
+/// Parses TOML text into the spanned tree; a syntax error keeps toml_edit's message and place.
+fn parse_tree(text: &str) -> Result<Node, toml_edit::TomlError> {
+    let document = toml_edit::ImDocument::parse(text)?;
+    Ok(table_node(document.as_table()))
+}
+
+fn span_of(range: Option<std::ops::Range<usize>>) -> Option<Span> {
+    range.map(|r| Span::new(r.start, r.end))
+}
+
+fn entries<'t>(pairs: impl Iterator<Item = (&'t toml_edit::Key, &'t toml_edit::Item)>) -> Vec<(Key, Node)> {
+    pairs
+        .filter(|(_, item)| !item.is_none())
+        .map(|(key, item)| (Key { name: key.get().to_string(), span: span_of(key.span()) }, item_node(item)))
+        .collect()
+}
+
+fn table_node(table: &toml_edit::Table) -> Node {
+    let span = if table.is_implicit() { None } else { span_of(table.span()) };
+    let keys = table.iter().filter_map(|(name, _)| table.get_key_value(name));
+    Node { span, kind: Kind::Table(entries(keys)) }
+}
+
+fn item_node(item: &toml_edit::Item) -> Node {
+    match item {
+        toml_edit::Item::Table(table) => table_node(table),
+        toml_edit::Item::Value(value) => value_node(value),
+        toml_edit::Item::ArrayOfTables(array) => Node { span: span_of(array.span()), kind: Kind::Array },
+        toml_edit::Item::None => Node { span: None, kind: Kind::Table(Vec::new()) },
     }
 }
 
-impl<'de> Deserialize<'de> for Node {
-    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
-        deserializer.deserialize_struct(SPANNED_NAME, SPANNED_FIELDS, NodeVisitor)
-    }
-}
-
-/// A node read without asking for its span: the root, or the value inside a span wrapper
-/// (asking again there would wrap it again, forever).
-struct Bare(Node);
-
-impl<'de> Deserialize<'de> for Bare {
-    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
-        deserializer.deserialize_any(NodeVisitor).map(Bare)
-    }
-}
-
-struct NodeVisitor;
-
-impl<'de> Visitor<'de> for NodeVisitor {
-    type Value = Node;
-
-    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str("a TOML value")
-    }
-
-    fn visit_bool<E>(self, _: bool) -> Result<Node, E> {
-        Ok(Node::bare(Kind::Boolean))
-    }
-
-    fn visit_i64<E>(self, v: i64) -> Result<Node, E> {
-        Ok(Node::bare(Kind::Integer(v)))
-    }
-
-    fn visit_u64<E>(self, v: u64) -> Result<Node, E> {
-        Ok(Node::bare(i64::try_from(v).map_or(Kind::Float(v as f64), Kind::Integer)))
-    }
-
-    fn visit_f64<E>(self, v: f64) -> Result<Node, E> {
-        Ok(Node::bare(Kind::Float(v)))
-    }
-
-    fn visit_str<E>(self, v: &str) -> Result<Node, E> {
-        Ok(Node::bare(Kind::String(v.to_string())))
-    }
-
-    fn visit_string<E>(self, v: String) -> Result<Node, E> {
-        Ok(Node::bare(Kind::String(v)))
-    }
-
-    fn visit_seq<A: SeqAccess<'de>>(self, mut seq: A) -> Result<Node, A::Error> {
-        // Nothing in a market file is an array; only the fact is kept, for the error.
-        while seq.next_element::<de::IgnoredAny>()?.is_some() {}
-        Ok(Node::bare(Kind::Array))
-    }
-
-    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Node, A::Error> {
-        let Some(first) = map.next_key::<Key>()? else {
-            return Ok(Node::bare(Kind::Table(Vec::new())));
-        };
-        match first.name.as_str() {
-            SPANNED_START => {
-                let start: usize = map.next_value()?;
-                let mut end = start;
-                let mut inner = None;
-                while let Some(key) = map.next_key::<String>()? {
-                    match key.as_str() {
-                        SPANNED_END => end = map.next_value()?,
-                        SPANNED_VALUE => inner = Some(map.next_value::<Bare>()?.0),
-                        other => return Err(de::Error::unknown_field(other, SPANNED_FIELDS)),
-                    }
-                }
-                let mut node = inner.ok_or_else(|| de::Error::missing_field(SPANNED_VALUE))?;
-                node.span = Some(Span::new(start, end));
-                Ok(node)
-            }
-            DATE_MARKER => Ok(Node::bare(Kind::Date(map.next_value()?))),
-            _ => {
-                let mut entries = vec![(first, map.next_value::<Node>()?)];
-                while let Some(key) = map.next_key::<Key>()? {
-                    let value = map.next_value::<Node>()?;
-                    entries.push((key, value));
-                }
-                Ok(Node::bare(Kind::Table(entries)))
-            }
+fn value_node(value: &toml_edit::Value) -> Node {
+    use toml_edit::Value;
+    let kind = match value {
+        Value::Integer(i) => Kind::Integer(*i.value()),
+        Value::Float(f) => Kind::Float(*f.value()),
+        Value::Boolean(_) => Kind::Boolean,
+        Value::String(s) => Kind::String(s.value().clone()),
+        Value::Datetime(d) => Kind::Date(d.value().to_string()),
+        Value::Array(_) => Kind::Array,
+        Value::InlineTable(table) => {
+            let keys = table.iter().filter_map(|(name, _)| table.get_key_value(name));
+            Kind::Table(entries(keys))
         }
-    }
-}
-
-impl<'de> Deserialize<'de> for Key {
-    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
-        deserializer.deserialize_struct(SPANNED_NAME, SPANNED_FIELDS, KeyVisitor)
-    }
-}
-
-struct KeyVisitor;
-
-impl<'de> Visitor<'de> for KeyVisitor {
-    type Value = Key;
-
-    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str("a TOML key")
-    }
-
-    fn visit_str<E>(self, v: &str) -> Result<Key, E> {
-        Ok(Key { name: v.to_string(), span: None })
-    }
-
-    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Key, A::Error> {
-        let (mut start, mut end, mut name) = (None, None, None);
-        while let Some(field) = map.next_key::<String>()? {
-            match field.as_str() {
-                SPANNED_START => start = Some(map.next_value::<usize>()?),
-                SPANNED_END => end = Some(map.next_value::<usize>()?),
-                SPANNED_VALUE => name = Some(map.next_value::<String>()?),
-                other => return Err(de::Error::unknown_field(other, SPANNED_FIELDS)),
-            }
-        }
-        let name = name.ok_or_else(|| de::Error::missing_field(SPANNED_VALUE))?;
-        let span = start.zip(end).map(|(s, e)| Span::new(s, e));
-        Ok(Key { name, span })
-    }
+    };
+    Node { span: span_of(value.span()), kind }
 }
 
 #[cfg(test)]
