@@ -207,8 +207,18 @@ impl Aggregate {
     }
 }
 
+/// The deepest nesting a payoff may have: brackets `(` and `{`, prefix `-` and `not`, and
+/// `if` inside `if` (an `else if` chain counts one level per `if`), all counted together.
+/// Checked on the raw text before the grammar, which recurses, sees it.
+pub const MAX_NESTING: usize = 200;
+
+/// The deepest expression tree a payoff may build: each operator of a chain such as
+/// `a + b + c` is a level, so a sum may have this many terms.
+pub const MAX_EXPRESSION_DEPTH: usize = 1_000;
+
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
+    check_nesting(source)?;
     let mut pairs = PayoffParser::parse(Rule::file, source).map_err(|e| from_pest(e, source))?;
     let file = pairs.next().expect("the file rule always yields one pair");
     let mut lowering = Lowering { errors: Vec::new() };
@@ -217,6 +227,132 @@ pub fn parse(source: &str) -> Result<File, Diagnostic> {
         Some(e) => Err(e),
         None => Ok(File { items }),
     }
+}
+
+/// A cheap scan of the raw text that refuses nesting deeper than [`MAX_NESTING`] before the
+/// recursive grammar can run out of stack. It over-counts rather than under-counts: every
+/// `-` and `not` in a row counts, and every `if` since the last statement boundary (`=`,
+/// `pay`, `end`, a keyword starting a top-level line, or a `}` not followed by `else`).
+fn check_nesting(source: &str) -> Result<(), Diagnostic> {
+    struct Frame {
+        /// Levels open outside this bracket, the bracket itself included.
+        base: usize,
+        /// `if`s open inside this bracket.
+        ifs: usize,
+        /// Prefix operators in a row.
+        run: usize,
+    }
+    let too_deep = |at: usize, len: usize| {
+        Diagnostic::at(Span::new(at, at + len), format!("the payoff is nested more than {MAX_NESTING} levels deep here"))
+            .with_fix(format!(
+                "brackets, `-`, `not` and `if` inside one another count together, at most {MAX_NESTING}; \
+                 name the inner parts with `let`, or write a long `else if` chain as separate `if`s"
+            ))
+    };
+    let bytes = source.as_bytes();
+    let mut frames = vec![Frame { base: 0, ifs: 0, run: 0 }];
+    let mut after_brace = false;
+    let mut i = 0;
+    while i < bytes.len() {
+        let b = bytes[i];
+        let start = i;
+        match b {
+            b'#' => {
+                while i < bytes.len() && bytes[i] != b'\n' && bytes[i] != b'\r' {
+                    i += 1;
+                }
+                continue;
+            }
+            b' ' | b'\t' | b'\r' | b'\n' => {
+                i += 1;
+                continue;
+            }
+            _ => {}
+        }
+        let top = frames.last_mut().expect("the outermost frame stays");
+        if after_brace {
+            after_brace = false;
+            if !source[i..].starts_with("else") {
+                top.ifs = 0;
+                top.run = 0;
+            }
+        }
+        match b {
+            b'"' => {
+                i += 1;
+                while i < bytes.len() && !matches!(bytes[i], b'"' | b'\n' | b'\r') {
+                    i += 1;
+                }
+                i += 1;
+                top.run = 0;
+            }
+            b'(' | b'{' => {
+                let base = top.base + top.ifs + top.run + 1;
+                if base > MAX_NESTING {
+                    return Err(too_deep(start, 1));
+                }
+                frames.push(Frame { base, ifs: 0, run: 0 });
+                i += 1;
+            }
+            b')' | b'}' => {
+                if frames.len() > 1 {
+                    frames.pop();
+                }
+                let top = frames.last_mut().expect("the outermost frame stays");
+                top.run = 0;
+                after_brace = b == b'}';
+                i += 1;
+            }
+            b'-' => {
+                top.run += 1;
+                if top.base + top.ifs + top.run > MAX_NESTING {
+                    return Err(too_deep(start, 1));
+                }
+                i += 1;
+            }
+            b'<' | b'>' | b'!' | b'=' => {
+                let two = bytes.get(i + 1) == Some(&b'=');
+                if b == b'=' && !two {
+                    // `name = value`: a new value starts.
+                    top.ifs = 0;
+                    top.run = 0;
+                }
+                i += if two { 2 } else { 1 };
+            }
+            c if c.is_ascii_alphanumeric() || c == b'_' || c >= 0x80 => {
+                while i < bytes.len() && (bytes[i].is_ascii_alphanumeric() || matches!(bytes[i], b'_' | b'.')) {
+                    i += 1;
+                }
+                if i == start {
+                    // A character outside ASCII: the grammar reports it.
+                    i += source[i..].chars().next().map_or(1, char::len_utf8);
+                    continue;
+                }
+                match &source[start..i] {
+                    "not" => {
+                        top.run += 1;
+                        if top.base + top.ifs + top.run > MAX_NESTING {
+                            return Err(too_deep(start, 3));
+                        }
+                    }
+                    "if" => {
+                        top.ifs += 1;
+                        if top.base + top.ifs + top.run > MAX_NESTING {
+                            return Err(too_deep(start, 2));
+                        }
+                    }
+                    "pay" | "end" | "param" | "dates" | "state" | "for" | "at" | "let" => {
+                        top.ifs = 0;
+                        top.run = 0;
+                    }
+                    "then" | "else" | "and" | "or" | "on" | "from" | "to" | "over" => {}
+                    _ => top.run = 0,
+                }
+            }
+            _ => i += 1,
+        }
+    }
+    Ok(())
 }
 
 fn pratt() -> PrattParser<Rule> {
@@ -405,14 +541,23 @@ impl Lowering {
     }
 
     fn expr(&mut self, pair: Pair<'_, Rule>) -> Expr {
-        PRATT
+        self.expr_depth(pair).0
+    }
+
+    /// An expression with the depth of its tree. A tree deeper than
+    /// [`MAX_EXPRESSION_DEPTH`] is refused while it is built, so that no later stage (nor
+    /// dropping the tree) recurses deeper than that.
+    fn expr_depth(&mut self, pair: Pair<'_, Rule>) -> (Expr, usize) {
+        let too_deep = std::cell::Cell::new(None);
+        let out = PRATT
             .map_primary(|p| self.primary(p))
-            .map_prefix(|op, rhs| {
+            .map_prefix(|op, (rhs, depth)| {
                 let span = span_of(&op).join(rhs.span);
-                let op = if op.as_rule() == Rule::neg { UnaryOp::Neg } else { UnaryOp::Not };
-                Expr { kind: ExprKind::Unary(op, Box::new(rhs)), span }
+                let unary = if op.as_rule() == Rule::neg { UnaryOp::Neg } else { UnaryOp::Not };
+                bounded(Expr { kind: ExprKind::Unary(unary, Box::new(rhs)), span }, depth + 1, span_of(&op), &too_deep)
             })
-            .map_infix(|lhs, op, rhs| {
+            .map_infix(|(lhs, dl), op, (rhs, dr)| {
+                let at = span_of(&op);
                 let op = match op.as_rule() {
                     Rule::add => BinaryOp::Add,
                     Rule::sub => BinaryOp::Sub,
@@ -428,16 +573,36 @@ impl Lowering {
                     _ => BinaryOp::Or,
                 };
                 let span = lhs.span.join(rhs.span);
-                Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span }
+                bounded(Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span }, dl.max(dr) + 1, at, &too_deep)
             })
-            .parse(children(pair))
+            .parse(children(pair));
+        if let Some(at) = too_deep.get() {
+            self.too_deep(at);
+        }
+        out
     }
 
-    fn primary(&mut self, pair: Pair<'_, Rule>) -> Expr {
+    fn too_deep(&mut self, at: Span) {
+        if self.errors.is_empty() {
+            self.errors.push(
+                Diagnostic::at(
+                    at,
+                    format!("this expression holds more than {MAX_EXPRESSION_DEPTH} operations one inside another"),
+                )
+                .with_fix(format!(
+                    "an expression takes at most {MAX_EXPRESSION_DEPTH} levels (each operator of a chain such as \
+                     `a + b + c` is one); split it into several `let`s and combine those"
+                )),
+            );
+        }
+    }
+
+    fn primary(&mut self, pair: Pair<'_, Rule>) -> (Expr, usize) {
         let span = span_of(&pair);
         let text = pair.as_str();
+        let mut depth = 0;
         let kind = match pair.as_rule() {
-            Rule::expr => return self.expr(pair),
+            Rule::expr => return self.expr_depth(pair),
             Rule::number => ExprKind::Number(decimal(text)),
             Rule::percent => ExprKind::Number(decimal(&text[..text.len() - 1]) / 100.0),
             Rule::boolean => ExprKind::Flag(text == "true"),
@@ -447,17 +612,19 @@ impl Lowering {
             Rule::ident => ExprKind::Name(text.to_string()),
             Rule::if_expr => {
                 let mut inner = children(pair);
-                let c = self.expr(inner.next().unwrap());
-                let a = self.expr(inner.next().unwrap());
-                let b = self.expr(inner.next().unwrap());
+                let (c, dc) = self.expr_depth(inner.next().unwrap());
+                let (a, da) = self.expr_depth(inner.next().unwrap());
+                let (b, db) = self.expr_depth(inner.next().unwrap());
+                depth = dc.max(da).max(db);
                 ExprKind::If(Box::new(c), Box::new(a), Box::new(b))
             }
             Rule::touched => {
                 let mut inner = children(pair);
-                let condition = Box::new(self.expr(inner.next().unwrap()));
-                let from = Box::new(self.expr(inner.next().unwrap()));
-                let to = Box::new(self.expr(inner.next().unwrap()));
-                ExprKind::Touched { condition, from, to }
+                let (condition, dc) = self.expr_depth(inner.next().unwrap());
+                let (from, df) = self.expr_depth(inner.next().unwrap());
+                let (to, dt) = self.expr_depth(inner.next().unwrap());
+                depth = dc.max(df).max(dt);
+                ExprKind::Touched { condition: Box::new(condition), from: Box::new(from), to: Box::new(to) }
             }
             Rule::aggregate => {
                 let mut inner = children(pair);
@@ -470,19 +637,48 @@ impl Lowering {
                     "any" => Aggregate::Any,
                     _ => Aggregate::All,
                 };
-                let body = self.expr(inner.next().unwrap());
+                let (body, d) = self.expr_depth(inner.next().unwrap());
+                depth = d;
                 let schedule = name(inner.next().unwrap());
                 ExprKind::Aggregate(agg, Box::new(body), schedule)
             }
             Rule::call => {
                 let mut inner = children(pair);
                 let callee = name(inner.next().unwrap());
-                ExprKind::Call(callee, inner.map(|p| self.expr(p)).collect())
+                let mut args = Vec::new();
+                for p in inner {
+                    let (a, d) = self.expr_depth(p);
+                    depth = depth.max(d);
+                    args.push(a);
+                }
+                ExprKind::Call(callee, args)
             }
             other => unreachable!("grammar yields no primary {other:?}"),
         };
-        Expr { kind, span }
+        // Leaves are depth 0; a node holding others is one more than its deepest.
+        let depth = match kind {
+            ExprKind::If(..) | ExprKind::Touched { .. } | ExprKind::Aggregate(..) | ExprKind::Call(..) => depth + 1,
+            _ => 0,
+        };
+        let too_deep = std::cell::Cell::new(None);
+        let out = bounded(Expr { kind, span }, depth, span, &too_deep);
+        if let Some(at) = too_deep.get() {
+            self.too_deep(at);
+        }
+        out
     }
+}
+
+/// `e` with its depth, or a stand-in leaf when it is deeper than [`MAX_EXPRESSION_DEPTH`]
+/// (the place is noted in `too_deep`); the tree goes away at most one level too deep.
+fn bounded(e: Expr, depth: usize, at: Span, too_deep: &std::cell::Cell<Option<Span>>) -> (Expr, usize) {
+    if depth <= MAX_EXPRESSION_DEPTH {
+        return (e, depth);
+    }
+    if too_deep.get().is_none() {
+        too_deep.set(Some(at));
+    }
+    (Expr { kind: ExprKind::Number(0.0), span: e.span }, 0)
 }
 
 /// The children of a pair without the keywords, which carry no meaning once parsed.
