@@ -216,6 +216,10 @@ pub const MAX_NESTING: usize = 200;
 /// `a + b + c` is a level, so a sum may have this many terms.
 pub const MAX_EXPRESSION_DEPTH: usize = 1_000;
 
+/// The furthest a date written in years may lie after the valuation date, and the longest
+/// period of an `every` schedule.
+pub const MAX_YEARS: u32 = 200;
+
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
     check_nesting(source)?;
@@ -437,21 +441,40 @@ impl Lowering {
             Rule::every_sched => {
                 let period = inner.next().unwrap();
                 let text = period.as_str();
-                let (digits, unit) = text.split_at(text.len() - 1);
-                let unit = match unit {
+                let (digits, letter) = text.split_at(text.len() - 1);
+                let unit = match letter {
                     "d" => PeriodUnit::Days,
                     "w" => PeriodUnit::Weeks,
                     "m" => PeriodUnit::Months,
                     _ => PeriodUnit::Years,
                 };
-                let count = self.count(digits, span_of(&period));
+                let most = match unit {
+                    PeriodUnit::Days => MAX_YEARS * 365,
+                    PeriodUnit::Weeks => MAX_YEARS * 52,
+                    PeriodUnit::Months => MAX_YEARS * 12,
+                    PeriodUnit::Years => MAX_YEARS,
+                };
+                let count = if digits.parse::<u32>().is_ok_and(|n| n > most) || digits.parse::<u32>().is_err() {
+                    self.errors.push(
+                        Diagnostic::at(span_of(&period), format!("`{text}` is too long a period"))
+                            .with_fix(format!("a period is at most {MAX_YEARS} years, so at most {most}{letter}")),
+                    );
+                    1
+                } else {
+                    self.count(digits, span_of(&period), most, "a period")
+                };
                 let from = self.date_term(inner.next().unwrap());
                 let to = self.date_term(inner.next().unwrap());
                 ScheduleKind::Every { count, unit, from, to }
             }
             Rule::steps_sched => {
                 let n = inner.next().unwrap();
-                let n = self.count(n.as_str(), span_of(&n));
+                let n = self.count(
+                    n.as_str(),
+                    span_of(&n),
+                    crate::compile::MAX_SCHEDULE_DATES as u32,
+                    "the number of dates in one schedule",
+                );
                 let from = self.date_term(inner.next().unwrap());
                 let to = self.date_term(inner.next().unwrap());
                 ScheduleKind::Steps { n, from, to }
@@ -466,24 +489,46 @@ impl Lowering {
         Schedule { kind, span }
     }
 
-    fn count(&mut self, digits: &str, span: Span) -> u32 {
-        match digits.parse::<u32>() {
-            Ok(n) if n > 0 => n,
-            _ => {
+    /// A whole count from 1 to `most`; `what` names it in the message.
+    fn count(&mut self, digits: &str, span: Span, most: u32, what: &str) -> u32 {
+        let n = digits.parse::<u32>();
+        match n {
+            Ok(n) if (1..=most).contains(&n) => n,
+            Ok(0) => {
                 self.errors.push(
                     Diagnostic::at(span, format!("`{digits}` is not a usable count"))
                         .with_fix("write a whole number from 1 up, such as `3` in `every 3m`"),
                 );
                 1
             }
+            _ => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("`{digits}` is too many: {what} is at most {most}"))
+                        .with_fix(format!("write a whole number from 1 to {most}")),
+                );
+                1
+            }
         }
+    }
+
+    /// `1.5y`: years after the valuation date, at most [`MAX_YEARS`].
+    fn years(&mut self, text: &str, span: Span) -> DateTerm {
+        let y = decimal(&text[..text.len() - 1]);
+        if y.is_finite() && y <= f64::from(MAX_YEARS) {
+            return DateTerm::Years(y);
+        }
+        self.errors.push(
+            Diagnostic::at(span, format!("`{}` is too far ahead: dates lie at most {MAX_YEARS} years after the valuation date", shortened(text)))
+                .with_fix(format!("write a number of years from 0 to {MAX_YEARS}, or an ISO date such as 2031-12-01")),
+        );
+        DateTerm::Years(0.0)
     }
 
     fn date_term(&mut self, pair: Pair<'_, Rule>) -> (DateTerm, Span) {
         let span = span_of(&pair);
         let term = match pair.as_rule() {
             Rule::iso_date => self.iso_date(pair.as_str(), span),
-            Rule::year_offset => DateTerm::Years(decimal(&pair.as_str()[..pair.as_str().len() - 1])),
+            Rule::year_offset => self.years(pair.as_str(), span),
             Rule::start_ref => DateTerm::Start,
             other => unreachable!("grammar yields no date term {other:?}"),
         };
@@ -492,7 +537,18 @@ impl Lowering {
 
     fn iso_date(&mut self, text: &str, span: Span) -> DateTerm {
         match Date::parse(text) {
-            Some(d) => DateTerm::Iso(d),
+            Some(d) if d.in_range() => DateTerm::Iso(d),
+            Some(_) => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("{text} is outside the dates pathfold prices"))
+                        .with_fix(format!(
+                            "write a date from {}-01-01 to {}-12-31",
+                            crate::date::FIRST_YEAR,
+                            crate::date::LAST_YEAR
+                        )),
+                );
+                DateTerm::Years(0.0)
+            }
             None => {
                 self.errors.push(
                     Diagnostic::at(span, format!("`{text}` is not a calendar date"))
@@ -607,7 +663,7 @@ impl Lowering {
             Rule::percent => ExprKind::Number(decimal(&text[..text.len() - 1]) / 100.0),
             Rule::boolean => ExprKind::Flag(text == "true"),
             Rule::iso_date => ExprKind::Date(self.iso_date(text, span)),
-            Rule::year_offset => ExprKind::Date(DateTerm::Years(decimal(&text[..text.len() - 1]))),
+            Rule::year_offset => ExprKind::Date(self.years(text, span)),
             Rule::start_ref => ExprKind::Date(DateTerm::Start),
             Rule::ident => ExprKind::Name(text.to_string()),
             Rule::if_expr => {
@@ -731,6 +787,17 @@ fn string_text(pair: &Pair<'_, Rule>) -> String {
     pair.clone().into_inner().next().map(|p| p.as_str().to_string()).unwrap_or_default()
 }
 
+/// `text`, cut in the middle when it is too long to quote in a message.
+fn shortened(text: &str) -> String {
+    let chars: Vec<char> = text.chars().collect();
+    if chars.len() <= 24 {
+        return text.to_string();
+    }
+    let head: String = chars[..10].iter().collect();
+    let tail: String = chars[chars.len() - 10..].iter().collect();
+    format!("{head}...{tail} ({} characters)", chars.len())
+}
+
 /// `1_000_000.5` → 1000000.5 (the grammar guarantees the digits).
 fn decimal(text: &str) -> f64 {
     text.replace('_', "").parse().expect("the grammar only passes decimal digits")
@@ -743,6 +810,9 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
+    if let Some(d) = slip(source, at) {
+        return d;
+    }
     // A reserved word where a name belongs is the likeliest slip: say so plainly.
     let word: String = source[at..].chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
     let line_start = source[..at].rfind('\n').map_or(0, |i| i + 1);
@@ -779,6 +849,70 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         format!("expected {}", join_or(&expected))
     };
     Diagnostic::at(Span::new(at, at + 1), message).with_fix("compare the line with the syntax in grammar/REFERENCE.md")
+}
+
+/// A specific hint for a natural slip at byte `at`, where the grammar stopped: operators
+/// and words from other languages, and the forms of `if` and `touched` mixed up.
+fn slip(source: &str, at: usize) -> Option<Diagnostic> {
+    let rest = &source[at..];
+    let before = source[..at].trim_end();
+    let word: String = rest.chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
+    let hint = |start: usize, len: usize, message: &str, fix: &str| {
+        Some(Diagnostic::at(Span::new(start, start + len), message).with_fix(fix))
+    };
+    if rest.starts_with("&&") {
+        return hint(at, 2, "`&&` is not an operator in pathfold", "write `and`, as in `perf(A) > 1 and perf(B) > 1`");
+    }
+    if rest.starts_with("||") {
+        return hint(at, 2, "`||` is not an operator in pathfold", "write `or`, as in `perf(A) < 70% or perf(B) < 70%`");
+    }
+    if word == "elif" {
+        return hint(at, 4, "`elif` is not a pathfold word", "write `else if`, as in `} else if perf(A) > 1 {`");
+    }
+    if rest.starts_with('*') && before.ends_with('*') {
+        return hint(
+            before.len() - 1,
+            2,
+            "`**` is not an operator in pathfold: there is no power operator",
+            "multiply (`x * x`), or write `exp(y * log(x))` for x to the power y",
+        );
+    }
+    let after_percent = before.ends_with('%') && rest.starts_with(|c: char| c.is_ascii_alphanumeric() || c == '(');
+    if rest.starts_with('%') || after_percent {
+        let start = if after_percent { before.len() - 1 } else { at };
+        return hint(
+            start,
+            1,
+            "`%` only marks a percentage, right after its number (70% is 0.70); pathfold has no remainder operator",
+            "for a remainder write `x - floor(x / n) * n`",
+        );
+    }
+    if word == "then" {
+        return hint(
+            at,
+            4,
+            "an `if` statement takes its branch in braces, not after `then`",
+            "write `if c { pay x }`; `then` belongs to the value form `if c then a else b`, which needs its `else`",
+        );
+    }
+    // Inside an unclosed `touched(`: the window is missing or misspelt.
+    if let Some(open) = source[..at].rfind("touched(") {
+        let inside = &source[open + "touched(".len()..at];
+        let depth = inside.chars().fold(1i32, |d, c| match c {
+            '(' => d + 1,
+            ')' => d - 1,
+            _ => d,
+        });
+        if depth > 0 && !inside.contains(" from ") || depth > 0 && rest.starts_with(')') {
+            return hint(
+                open,
+                "touched".len(),
+                "`touched(...)` needs its window: the condition, then `from DATE to DATE`",
+                "write for example `touched(perf(OSMP) <= 65% from start to 1y)`",
+            );
+        }
+    }
+    None
 }
 
 /// The words that start a top-level line.
