@@ -213,10 +213,11 @@ impl Override {
     /// Parses `NAME=VALUE`.
     pub fn parse(text: &str) -> Result<Override, Diagnostic> {
         match text.split_once('=') {
-            _ if text.chars().any(char::is_control) => {
-                Err(Diagnostic::new(format!("`--set {}` holds a line break or another control character", text.escape_debug()))
-                    .with_fix("give the value on one line, such as `--set coupon=2.5%`"))
-            }
+            _ if text.chars().any(char::is_control) => Err(Diagnostic::new(format!(
+                "`--set {}` holds a line break or another control character",
+                text.escape_debug()
+            ))
+            .with_fix("give the value on one line, such as `--set coupon=2.5%`")),
             Some((n, v)) if !n.trim().is_empty() && !v.trim().is_empty() => {
                 Ok(Override { name: n.trim().to_string(), value: v.trim().to_string() })
             }
@@ -1219,5 +1220,33 @@ pub fn apply(func: Func, x: f64) -> f64 {
         Func::Sqrt => x.sqrt(),
         Func::Floor => x.floor(),
         Func::Min | Func::Max => x,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_missing_percent_is_told_from_a_value_of_the_right_size() {
+        // coupon=4 against 2.25%, coupon=0.8 against 0.80%: slips.
+        assert!(looks_like_a_missing_percent(4.0, 0.0225));
+        assert!(looks_like_a_missing_percent(0.8, 0.008));
+        // A value of the default's own size, or a barrier written as a fraction: no slip.
+        assert!(!looks_like_a_missing_percent(0.009, 0.008));
+        assert!(!looks_like_a_missing_percent(0.7, 0.7));
+        assert!(!looks_like_a_missing_percent(0.6, 0.7));
+        assert!(!looks_like_a_missing_percent(2.0, 1.0));
+        assert!(!looks_like_a_missing_percent(0.0, 0.008));
+    }
+
+    #[test]
+    fn the_same_warning_collapses_to_one_with_a_count() {
+        let w = |start| Diagnostic::at(Span::new(start, start + 1), "compared with 90").as_warning();
+        let out = collapse_warnings(vec![w(1), w(5), w(5), w(9), Diagnostic::new("other").as_warning()]);
+        assert_eq!(out.len(), 2);
+        assert_eq!(out[0].message, "compared with 90 (and at 2 more places)");
+        assert_eq!(out[0].span, Some(Span::new(1, 2)));
+        assert_eq!(out[1].message, "other");
     }
 }

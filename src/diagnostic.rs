@@ -169,7 +169,7 @@ pub fn locate(src: &str, offset: usize) -> (usize, usize, &str) {
 /// The text of a source file given as bytes. Text that is not UTF-8 is refused with the
 /// line and column of the first bad byte; the error comes with the text read so far
 /// (bad bytes replaced), for drawing the line.
-pub fn decode_source(bytes: Vec<u8>) -> Result<String, (Diagnostic, String)> {
+pub fn decode_source(bytes: Vec<u8>) -> Result<String, Box<(Diagnostic, String)>> {
     match String::from_utf8(bytes) {
         Ok(text) => Ok(text),
         Err(e) => {
@@ -178,7 +178,7 @@ pub fn decode_source(bytes: Vec<u8>) -> Result<String, (Diagnostic, String)> {
             let text = String::from_utf8_lossy(e.as_bytes()).into_owned();
             let d = Diagnostic::at(Span::new(at, at + 1), format!("byte 0x{byte:02X} here is not UTF-8 text"))
                 .with_fix("save the file as UTF-8 (payoff files are plain UTF-8 text)");
-            Err((d, text))
+            Err(Box::new((d, text)))
         }
     }
 }
@@ -227,6 +227,30 @@ mod tests {
             d.render(Some(src)),
             "a.payoff:2:16: unknown name `strik`\n   2 | pay notional * strik\n     |                ^^^^^\n  fix: did you mean `strike`?\n"
         );
+    }
+
+    #[test]
+    fn lines_end_at_lf_crlf_or_cr_and_a_bom_takes_no_column() {
+        let src = "a\r\nbb\rccc\nd";
+        assert_eq!(locate(src, src.find('c').unwrap() + 1), (3, 2, "ccc"));
+        assert_eq!(locate(src, src.find('b').unwrap()), (2, 1, "bb"));
+        assert_eq!(locate("\u{feff}pay x", 7), (1, 5, "pay x"));
+    }
+
+    #[test]
+    fn long_lines_are_shown_around_the_place() {
+        let line = format!("{}X{}", "a".repeat(500), "b".repeat(500));
+        let (shown, col) = window(&line, 501);
+        assert!(shown.chars().count() <= SHOWN_WIDTH + 6);
+        assert_eq!(shown.chars().nth(col - 1), Some('X'));
+    }
+
+    #[test]
+    fn text_that_is_not_utf8_is_placed() {
+        let (d, text) = *decode_source(b"ab\ncd\xff".to_vec()).unwrap_err();
+        assert_eq!(d.span, Some(Span::new(5, 6)));
+        assert_eq!(locate(&text, 5).0, 2);
+        assert_eq!(decode_source(b"ok".to_vec()).unwrap(), "ok");
     }
 
     #[test]

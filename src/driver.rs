@@ -361,8 +361,8 @@ pub fn price_file_to(
     let bytes = fs::read(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
-    let source = crate::diagnostic::decode_source(bytes)
-        .map_err(|(d, text)| Failure::input(vec![d.in_file(file)], Some(text)))?;
+    let source =
+        crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
     let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
     let tree = syntax::parse(&source).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
     let product = check::check(&tree, overrides).map_err(|ds| Failure::input(in_file(ds), Some(source.clone())))?;

@@ -247,11 +247,14 @@ fn check_nesting(source: &str) -> Result<(), Diagnostic> {
         run: usize,
     }
     let too_deep = |at: usize, len: usize| {
-        Diagnostic::at(Span::new(at, at + len), format!("the payoff is nested more than {MAX_NESTING} levels deep here"))
-            .with_fix(format!(
-                "brackets, `-`, `not` and `if` inside one another count together, at most {MAX_NESTING}; \
+        Diagnostic::at(
+            Span::new(at, at + len),
+            format!("the payoff is nested more than {MAX_NESTING} levels deep here"),
+        )
+        .with_fix(format!(
+            "brackets, `-`, `not` and `if` inside one another count together, at most {MAX_NESTING}; \
                  name the inner parts with `let`, or write a long `else if` chain as separate `if`s"
-            ))
+        ))
     };
     let bytes = source.as_bytes();
     let mut frames = vec![Frame { base: 0, ifs: 0, run: 0 }];
@@ -518,8 +521,14 @@ impl Lowering {
             return DateTerm::Years(y);
         }
         self.errors.push(
-            Diagnostic::at(span, format!("`{}` is too far ahead: dates lie at most {MAX_YEARS} years after the valuation date", shortened(text)))
-                .with_fix(format!("write a number of years from 0 to {MAX_YEARS}, or an ISO date such as 2031-12-01")),
+            Diagnostic::at(
+                span,
+                format!(
+                    "`{}` is too far ahead: dates lie at most {MAX_YEARS} years after the valuation date",
+                    shortened(text)
+                ),
+            )
+            .with_fix(format!("write a number of years from 0 to {MAX_YEARS}, or an ISO date such as 2031-12-01")),
         );
         DateTerm::Years(0.0)
     }
@@ -540,12 +549,11 @@ impl Lowering {
             Some(d) if d.in_range() => DateTerm::Iso(d),
             Some(_) => {
                 self.errors.push(
-                    Diagnostic::at(span, format!("{text} is outside the dates pathfold prices"))
-                        .with_fix(format!(
-                            "write a date from {}-01-01 to {}-12-31",
-                            crate::date::FIRST_YEAR,
-                            crate::date::LAST_YEAR
-                        )),
+                    Diagnostic::at(span, format!("{text} is outside the dates pathfold prices")).with_fix(format!(
+                        "write a date from {}-01-01 to {}-12-31",
+                        crate::date::FIRST_YEAR,
+                        crate::date::LAST_YEAR
+                    )),
                 );
                 DateTerm::Years(0.0)
             }
@@ -629,7 +637,12 @@ impl Lowering {
                     _ => BinaryOp::Or,
                 };
                 let span = lhs.span.join(rhs.span);
-                bounded(Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span }, dl.max(dr) + 1, at, &too_deep)
+                bounded(
+                    Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span },
+                    dl.max(dr) + 1,
+                    at,
+                    &too_deep,
+                )
             })
             .parse(children(pair));
         if let Some(at) = too_deep.get() {
@@ -864,7 +877,12 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
         return hint(at, 2, "`&&` is not an operator in pathfold", "write `and`, as in `perf(A) > 1 and perf(B) > 1`");
     }
     if rest.starts_with("||") {
-        return hint(at, 2, "`||` is not an operator in pathfold", "write `or`, as in `perf(A) < 70% or perf(B) < 70%`");
+        return hint(
+            at,
+            2,
+            "`||` is not an operator in pathfold",
+            "write `or`, as in `perf(A) < 70% or perf(B) < 70%`",
+        );
     }
     if word == "elif" {
         return hint(at, 4, "`elif` is not a pathfold word", "write `else if`, as in `} else if perf(A) > 1 {`");
@@ -903,7 +921,7 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
             ')' => d - 1,
             _ => d,
         });
-        if depth > 0 && !inside.contains(" from ") || depth > 0 && rest.starts_with(')') {
+        if depth > 0 && (!inside.contains(" from ") || rest.starts_with(')')) {
             return hint(
                 open,
                 "touched".len(),
@@ -1037,6 +1055,31 @@ mod tests {
         assert!(
             matches!(&file.items[2], Item::Dates(n, Schedule { kind: ScheduleKind::BusinessDays { .. }, .. }) if n.text == "days")
         );
+    }
+
+    #[test]
+    fn nesting_is_counted_before_the_grammar_runs() {
+        let deep = |n: usize| format!("param x = {}1{}", "(".repeat(n), ")".repeat(n));
+        assert!(parse(&deep(MAX_NESTING)).is_ok());
+        let err = parse(&deep(MAX_NESTING + 1)).unwrap_err();
+        assert_eq!(err.span, Some(Span::new(10 + MAX_NESTING, 11 + MAX_NESTING)));
+        // Sequential `if`s in a block are not nested; an `else if` chain is.
+        let ifs = |sep: &str, n: usize| {
+            let chain: Vec<String> = (0..n).map(|i| format!("if x > {i} {{ pay 1 }}")).collect();
+            format!("at 1y {{\n{}\n}}", chain.join(sep))
+        };
+        assert!(parse(&ifs("\n", 1_000)).is_ok());
+        assert!(parse(&ifs(" else ", 1_000)).is_err());
+        // Brackets inside comments and texts do not count.
+        assert!(parse(&format!("product \"{}\" # {}", "(".repeat(500), "(".repeat(500))).is_ok());
+    }
+
+    #[test]
+    fn long_chains_are_refused_while_the_tree_is_built() {
+        let sum = |n: usize| format!("param x = {}", vec!["1"; n].join(" + "));
+        assert!(parse(&sum(MAX_EXPRESSION_DEPTH + 1)).is_ok());
+        let err = parse(&sum(MAX_EXPRESSION_DEPTH + 2)).unwrap_err();
+        assert!(err.message.contains("more than 1000 operations"), "{}", err.message);
     }
 
     #[test]

@@ -48,7 +48,10 @@ fn just_under() -> Vec<(&'static str, String)> {
         ),
         (
             "if_values.payoff",
-            payoff(&format!("{}0", (0..197).map(|i| format!("if level(ZPHX) > {i} then {i} else ")).collect::<String>())),
+            payoff(&format!(
+                "{}0",
+                (0..197).map(|i| format!("if level(ZPHX) > {i} then {i} else ")).collect::<String>()
+            )),
         ),
         ("sum.payoff", payoff(&format!("notional * ({})", chain(999)))),
         ("mixed.payoff", payoff(&format!("{}{}{}", "(1 + ".repeat(190), chain(809), ")".repeat(190)))),
@@ -73,7 +76,11 @@ fn nesting_just_under_the_limit_prices_alone_and_in_a_batch() {
 fn nesting_over_the_limit_is_refused_with_its_place() {
     let chain = |n: usize| vec!["level(ZPHX)"; n].join(" + ");
     let cases = [
-        ("parens.payoff", payoff(&format!("{}perf(ZPHX){}", "(".repeat(7_000), ")".repeat(7_000))), "nested more than 200"),
+        (
+            "parens.payoff",
+            payoff(&format!("{}perf(ZPHX){}", "(".repeat(7_000), ")".repeat(7_000))),
+            "nested more than 200",
+        ),
         ("negations.payoff", payoff(&format!("{}perf(ZPHX)", "- ".repeat(5_000))), "nested more than 200"),
         (
             "nots.payoff",
