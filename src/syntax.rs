@@ -220,6 +220,31 @@ pub const MAX_EXPRESSION_DEPTH: usize = 1_000;
 /// period of an `every` schedule.
 pub const MAX_YEARS: u32 = 200;
 
+/// The stack given to [`on_deep_stack`]: room for every stage that walks a tree as deep as
+/// the limits above allow, even in an unoptimised build (where frames are large).
+const DEEP_STACK_BYTES: usize = 64 << 20;
+
+/// Runs `f` (parsing, checking or compiling a payoff: stages that recurse once per level of
+/// nesting) on a thread with a stack of known size, so that a payoff under the limits never
+/// overflows, whatever thread calls: a batch's worker threads have small stacks. If no
+/// thread can be started, `f` runs on the calling thread.
+pub fn on_deep_stack<T: Send>(f: impl FnOnce() -> T + Send) -> T {
+    let job = std::sync::Mutex::new(Some(f));
+    let take = || job.lock().unwrap_or_else(std::sync::PoisonError::into_inner).take();
+    let ran = std::thread::scope(|scope| {
+        let spawned =
+            std::thread::Builder::new().stack_size(DEEP_STACK_BYTES).spawn_scoped(scope, || take().map(|f| f()));
+        match spawned {
+            Ok(handle) => handle.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic)),
+            Err(_) => None,
+        }
+    });
+    match ran {
+        Some(value) => value,
+        None => take().map(|f| f()).expect("the job runs on one thread or the other"),
+    }
+}
+
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
     check_nesting(source)?;
