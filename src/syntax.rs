@@ -1108,6 +1108,14 @@ mod tests {
     }
 
     #[test]
+    fn the_deep_stages_run_from_a_thread_with_a_small_stack() {
+        let src = format!("param x = {}", vec!["-1"; MAX_EXPRESSION_DEPTH].join(" + "));
+        let small = std::thread::Builder::new().stack_size(64 << 10);
+        let handle = small.spawn(move || on_deep_stack(|| parse(&src).is_ok())).expect("a thread");
+        assert!(handle.join().expect("no overflow"));
+    }
+
+    #[test]
     fn syntax_errors_point_at_the_place() {
         let err = parse("product \"x\"\nparam = 5").unwrap_err();
         assert_eq!(err.span, Some(Span::new(18, 19)));
