@@ -893,7 +893,9 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
 /// and words from other languages, and the forms of `if` and `touched` mixed up.
 fn slip(source: &str, at: usize) -> Option<Diagnostic> {
     let rest = &source[at..];
-    let before = source[..at].trim_end();
+    // Only what stands before on the same line counts.
+    let before = source[..at].trim_end_matches([' ', '\t']);
+    let line_before = &source[source[..at].rfind(['\n', '\r']).map_or(0, |i| i + 1)..at];
     let word: String = rest.chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
     let hint = |start: usize, len: usize, message: &str, fix: &str| {
         Some(Diagnostic::at(Span::new(start, start + len), message).with_fix(fix))
@@ -930,7 +932,8 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
             "for a remainder write `x - floor(x / n) * n`",
         );
     }
-    if word == "then" {
+    let words_before = line_before.split(|c: char| !c.is_ascii_alphanumeric() && c != '_');
+    if word == "then" && words_before.clone().any(|w| w == "if") {
         return hint(
             at,
             4,
@@ -1113,6 +1116,16 @@ mod tests {
         let small = std::thread::Builder::new().stack_size(64 << 10);
         let handle = small.spawn(move || on_deep_stack(|| parse(&src).is_ok())).expect("a thread");
         assert!(handle.join().expect("no overflow"));
+    }
+
+    #[test]
+    fn slips_get_their_hint_only_where_they_stand() {
+        let message = |src: &str| parse(src).unwrap_err().message;
+        assert!(message("param a = 7 % 2").contains("no remainder operator"));
+        // A percentage ending a line is not a remainder: the next line's slip is its own.
+        assert!(!message("param a = 70%\nfoo bar").contains("remainder"));
+        assert!(message("at 1y { if a then pay 1 }").contains("braces"));
+        assert!(message("at 1y { let then = 1 }").contains("reserved word"));
     }
 
     #[test]
