@@ -213,6 +213,11 @@ impl Override {
     /// Parses `NAME=VALUE`.
     pub fn parse(text: &str) -> Result<Override, Diagnostic> {
         match text.split_once('=') {
+            _ if text.chars().any(char::is_control) => Err(Diagnostic::new(format!(
+                "`--set {}` holds a line break or another control character",
+                text.escape_debug()
+            ))
+            .with_fix("give the value on one line, such as `--set coupon=2.5%`")),
             Some((n, v)) if !n.trim().is_empty() && !v.trim().is_empty() => {
                 Ok(Override { name: n.trim().to_string(), value: v.trim().to_string() })
             }
@@ -227,12 +232,51 @@ pub fn check(file: &syntax::File, overrides: &[Override]) -> Result<Product, Vec
     let mut c = Checker::default();
     c.run(file, overrides);
     if c.errors.is_empty() {
-        c.product.warnings = std::mem::take(&mut c.warnings);
+        c.product.warnings = collapse_warnings(std::mem::take(&mut c.warnings));
         Ok(c.product)
     } else {
         c.errors.sort_by_key(|d| d.span.map(|s| s.start));
         Err(c.errors)
     }
+}
+
+/// Whether a bare override `x` was probably meant as `x%`, given the default `d`: either
+/// the default is a fraction below 1 and `x` is 1 or more (`coupon=4` against 2.25%), or
+/// `x` read as a percentage lies within a factor of 10 of the default while `x` itself is
+/// more than 10 times the default (`coupon=0.8` against 0.80%).
+fn looks_like_a_missing_percent(x: f64, d: f64) -> bool {
+    let (x, d) = (x.abs(), d.abs());
+    if d == 0.0 || x == 0.0 || !x.is_finite() || !d.is_finite() {
+        return false;
+    }
+    let as_percent = x / 100.0;
+    (d < 1.0 && x >= 1.0) || (x > 10.0 * d && as_percent <= 10.0 * d && as_percent >= d / 10.0)
+}
+
+/// One warning per kind of slip: the same message at many places is shown once, at the
+/// first place, with the number of other places (a long generated file must not print the
+/// same advice thousands of times).
+fn collapse_warnings(warnings: Vec<Diagnostic>) -> Vec<Diagnostic> {
+    let mut out: Vec<(Diagnostic, usize)> = Vec::new();
+    let mut seen_sites = std::collections::HashSet::new();
+    for w in warnings {
+        if !seen_sites.insert((w.span.map(|s| (s.start, s.end)), w.message.clone())) {
+            continue;
+        }
+        match out.iter_mut().find(|(first, _)| first.message == w.message && first.fix == w.fix) {
+            Some((_, more)) => *more += 1,
+            None => out.push((w, 0)),
+        }
+    }
+    out.into_iter()
+        .map(|(mut w, more)| {
+            if more > 0 {
+                let places = if more == 1 { "place" } else { "places" };
+                w.message = format!("{} (and at {more} more {places})", w.message);
+            }
+            w
+        })
+        .collect()
 }
 
 #[derive(Clone, Copy, Debug)]
@@ -312,7 +356,17 @@ impl Checker {
 
     fn run(&mut self, file: &syntax::File, overrides: &[Override]) {
         // Pass 1: declarations, in file order (a parameter may use the ones above it).
-        let mut overrides_left: Vec<&Override> = overrides.iter().collect();
+        let mut overrides_left: Vec<&Override> = Vec::new();
+        for o in overrides {
+            if overrides_left.iter().any(|seen| seen.name == o.name) {
+                self.errors.push(
+                    Diagnostic::new(format!("`--set {}` is given twice", o.name))
+                        .with_fix(format!("keep one `--set {}=...`", o.name)),
+                );
+            } else {
+                overrides_left.push(o);
+            }
+        }
         for item in &file.items {
             match item {
                 Item::Product(name, span) => {
@@ -511,7 +565,7 @@ impl Checker {
         }
         let default_value = self.constant_quiet(default);
         if let (Some((x, Ty::Number)), Some((d, Ty::Number))) = (v, default_value) {
-            if d != 0.0 && d.abs() < 1.0 && x.abs() >= 1.0 && !o.value.contains('%') {
+            if !o.value.contains('%') && looks_like_a_missing_percent(x, d) {
                 self.warnings.push(
                     Diagnostic::new(format!(
                         "`--set {}={}` sets `{}` to {}, that is {}%, where the default is {}",
@@ -1166,5 +1220,33 @@ pub fn apply(func: Func, x: f64) -> f64 {
         Func::Sqrt => x.sqrt(),
         Func::Floor => x.floor(),
         Func::Min | Func::Max => x,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_missing_percent_is_told_from_a_value_of_the_right_size() {
+        // coupon=4 against 2.25%, coupon=0.8 against 0.80%: slips.
+        assert!(looks_like_a_missing_percent(4.0, 0.0225));
+        assert!(looks_like_a_missing_percent(0.8, 0.008));
+        // A value of the default's own size, or a barrier written as a fraction: no slip.
+        assert!(!looks_like_a_missing_percent(0.009, 0.008));
+        assert!(!looks_like_a_missing_percent(0.7, 0.7));
+        assert!(!looks_like_a_missing_percent(0.6, 0.7));
+        assert!(!looks_like_a_missing_percent(2.0, 1.0));
+        assert!(!looks_like_a_missing_percent(0.0, 0.008));
+    }
+
+    #[test]
+    fn the_same_warning_collapses_to_one_with_a_count() {
+        let w = |start| Diagnostic::at(Span::new(start, start + 1), "compared with 90").as_warning();
+        let out = collapse_warnings(vec![w(1), w(5), w(5), w(9), Diagnostic::new("other").as_warning()]);
+        assert_eq!(out.len(), 2);
+        assert_eq!(out[0].message, "compared with 90 (and at 2 more places)");
+        assert_eq!(out[0].span, Some(Span::new(1, 2)));
+        assert_eq!(out[1].message, "other");
     }
 }

@@ -276,6 +276,12 @@ struct Now {
 
 const TIME_EPS: f64 = 1e-9;
 
+/// The most dates one schedule may hold.
+pub const MAX_SCHEDULE_DATES: usize = 100_000;
+
+/// The most dates all schedules together may hold, so the most simulation dates.
+pub const MAX_GRID_DATES: usize = 200_000;
+
 impl<'p> Compiler<'p> {
     fn new(product: &'p Product, valuation: Date, rate: f64, assets: Vec<AssetModel>) -> Self {
         let states = product.states.len() as u32;
@@ -355,12 +361,18 @@ impl<'p> Compiler<'p> {
     }
 
     fn resolve_schedules(&mut self) {
+        let mut total = 0;
         for def in &self.product.schedules {
             let span = def.schedule.span;
+            let room = MAX_SCHEDULE_DATES.min(MAX_GRID_DATES.saturating_sub(total));
             let dates = match &def.schedule.kind {
                 ScheduleKind::List(terms) => terms.iter().filter_map(|&(t, s)| self.term(t, s)).collect::<Vec<_>>(),
-                ScheduleKind::Every { count, unit, from, to } => self.every(*count, *unit, *from, *to),
+                ScheduleKind::Every { count, unit, from, to } => self.every(*count, *unit, *from, *to, room),
                 ScheduleKind::Steps { n, from, to } => match (self.term(from.0, from.1), self.term(to.0, to.1)) {
+                    _ if *n as usize > room => {
+                        self.too_many(&def.name, span, total);
+                        Vec::new()
+                    }
                     (Some(a), Some(b)) => (1..=*n)
                         .map(|i| {
                             let t = a.0 + (b.0 - a.0) * f64::from(i) / f64::from(*n);
@@ -374,15 +386,26 @@ impl<'p> Compiler<'p> {
                         if self.term(from.0, from.1).is_none() {
                             Vec::new()
                         } else {
-                            let mut out = Vec::new();
-                            let mut d = a;
-                            while d <= b {
-                                if d.is_weekday() {
-                                    out.push((self.valuation.years_until(d), Some(d)));
+                            // Written dates lie in the supported years, so this is bounded.
+                            let weekdays = (a.days_until(b).max(0) as usize + 1) * 5 / 7;
+                            if weekdays > room + 1 {
+                                self.too_many(&def.name, span, total);
+                                Vec::new()
+                            } else {
+                                let mut out = Vec::new();
+                                let mut d = Some(a);
+                                while let Some(day) = d.filter(|day| *day <= b) {
+                                    if day.is_weekday() {
+                                        out.push((self.valuation.years_until(day), Some(day)));
+                                    }
+                                    d = day.add_days(1);
                                 }
-                                d = d.add_days(1);
+                                if out.len() > room {
+                                    self.too_many(&def.name, span, total);
+                                    out.clear();
+                                }
+                                out
                             }
-                            out
                         }
                     }
                     _ => {
@@ -395,6 +418,13 @@ impl<'p> Compiler<'p> {
                     }
                 },
             };
+            if dates.len() > room {
+                // A list written out by hand, or an `every` schedule that ran over.
+                self.too_many(&def.name, span, total);
+                self.schedules.push(Vec::new());
+                continue;
+            }
+            total += dates.len();
             if dates.is_empty() && self.errors.is_empty() {
                 self.error(
                     span,
@@ -426,27 +456,50 @@ impl<'p> Compiler<'p> {
         }
     }
 
-    fn every(&mut self, count: u32, unit: PeriodUnit, from: (DateTerm, Span), to: (DateTerm, Span)) -> Vec<When_> {
+    /// A schedule, or the error naming it, when it would hold more dates than allowed.
+    fn too_many(&mut self, name: &str, span: Span, before: usize) {
+        let (message, fix) = if before + MAX_SCHEDULE_DATES <= MAX_GRID_DATES {
+            (
+                format!("the schedule `{name}` holds more than {MAX_SCHEDULE_DATES} dates"),
+                format!("use a longer period, fewer steps or a shorter span; a schedule holds at most {MAX_SCHEDULE_DATES} dates"),
+            )
+        } else {
+            (
+                format!("the schedules up to `{name}` hold more than {MAX_GRID_DATES} dates together"),
+                format!("all schedules together hold at most {MAX_GRID_DATES} dates; use fewer or sparser schedules"),
+            )
+        };
+        self.error(span, message, fix);
+    }
+
+    /// The dates of an `every` schedule, at most `room + 1` of them (more is refused by the caller).
+    fn every(
+        &mut self,
+        count: u32,
+        unit: PeriodUnit,
+        from: (DateTerm, Span),
+        to: (DateTerm, Span),
+        room: usize,
+    ) -> Vec<When_> {
         let (Some(a), Some(b)) = (self.term(from.0, from.1), self.term(to.0, to.1)) else { return Vec::new() };
         let mut out = Vec::new();
-        let count_i = count as i32;
+        let count = i64::from(count);
         match (a.1, b.1, from.0) {
             (Some(da), Some(db), DateTerm::Iso(_)) | (Some(da), Some(db), DateTerm::Start) => {
-                for i in 0.. {
+                for i in 0..=room as i64 {
                     let d = match unit {
-                        PeriodUnit::Days => da.add_days(i * count_i),
-                        PeriodUnit::Weeks => da.add_days(7 * i * count_i),
-                        PeriodUnit::Months => da.add_months(i * count_i),
-                        PeriodUnit::Years => da.add_months(12 * i * count_i),
+                        PeriodUnit::Days => da.add_days(i * count),
+                        PeriodUnit::Weeks => da.add_days(7 * i * count),
+                        PeriodUnit::Months => da.add_months(i * count),
+                        PeriodUnit::Years => da.add_months(12 * i * count),
                     };
-                    if d > db {
-                        break;
-                    }
+                    // Past the last supported year is past any written end date.
+                    let Some(d) = d.filter(|d| *d <= db) else { break };
                     out.push((self.valuation.years_until(d), Some(d)));
                 }
             }
             _ => {
-                let step = f64::from(count)
+                let step = count as f64
                     * match unit {
                         PeriodUnit::Days => 1.0 / 365.0,
                         PeriodUnit::Weeks => 7.0 / 365.0,
@@ -455,7 +508,9 @@ impl<'p> Compiler<'p> {
                     };
                 let n = ((b.0 - a.0) / step + 1e-9).floor();
                 if n >= 0.0 {
-                    for i in 0..=(n as u32) {
+                    // Both ends are at most MAX_YEARS ahead, so `n` is finite; cap it anyway.
+                    let n = n.min(room as f64) as u32;
+                    for i in 0..=n {
                         out.push((a.0 + step * f64::from(i), None));
                     }
                 }

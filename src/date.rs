@@ -5,6 +5,11 @@
 
 use std::fmt;
 
+/// The first and last years a payoff may name (both included): far enough for any trade,
+/// near enough that every date sum below stays small.
+pub const FIRST_YEAR: i32 = 1900;
+pub const LAST_YEAR: i32 = 2200;
+
 /// A calendar day, stored as days since 1970-01-01.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct Date(i32);
@@ -34,16 +39,28 @@ impl Date {
         civil_from_days(self.0)
     }
 
-    pub fn add_days(self, days: i32) -> Date {
-        Date(self.0 + days)
+    /// Whether the date lies in the supported years [`FIRST_YEAR`]..=[`LAST_YEAR`].
+    pub fn in_range(self) -> bool {
+        (FIRST_YEAR..=LAST_YEAR).contains(&self.ymd().0)
     }
 
-    /// Adds calendar months, clamping to the end of a shorter month (Jan 31 + 1m = Feb 28).
-    pub fn add_months(self, months: i32) -> Date {
+    /// The date `days` later, or `None` outside the supported years.
+    pub fn add_days(self, days: i64) -> Option<Date> {
+        let d = Date(i32::try_from(i64::from(self.0).checked_add(days)?).ok()?);
+        d.in_range().then_some(d)
+    }
+
+    /// Adds calendar months, clamping to the end of a shorter month (Jan 31 + 1m = Feb 28);
+    /// `None` outside the supported years.
+    pub fn add_months(self, months: i64) -> Option<Date> {
         let (y, m, d) = self.ymd();
-        let total = y * 12 + (m as i32 - 1) + months;
-        let (year, month) = (total.div_euclid(12), total.rem_euclid(12) as u32 + 1);
-        Date(days_from_civil(year, month, d.min(days_in_month(year, month))))
+        let total = (i64::from(y) * 12 + i64::from(m) - 1).checked_add(months)?;
+        let year = i32::try_from(total.div_euclid(12)).ok()?;
+        if !(FIRST_YEAR..=LAST_YEAR).contains(&year) {
+            return None;
+        }
+        let month = total.rem_euclid(12) as u32 + 1;
+        Some(Date(days_from_civil(year, month, d.min(days_in_month(year, month)))))
     }
 
     /// Monday to Friday.
@@ -126,9 +143,22 @@ mod tests {
     #[test]
     fn month_arithmetic_clamps_to_month_end() {
         let d = Date::parse("2027-01-31").unwrap();
-        assert_eq!(d.add_months(1).to_string(), "2027-02-28");
-        assert_eq!(d.add_months(13).to_string(), "2028-02-29");
-        assert_eq!(d.add_months(-2).to_string(), "2026-11-30");
+        assert_eq!(d.add_months(1).unwrap().to_string(), "2027-02-28");
+        assert_eq!(d.add_months(13).unwrap().to_string(), "2028-02-29");
+        assert_eq!(d.add_months(-2).unwrap().to_string(), "2026-11-30");
+    }
+
+    #[test]
+    fn arithmetic_stays_in_the_supported_years() {
+        let d = Date::parse("2026-12-01").unwrap();
+        assert_eq!(d.add_days(1).unwrap().to_string(), "2026-12-02");
+        assert_eq!(d.add_days(i64::MAX), None);
+        assert_eq!(d.add_days(2_147_483_648), None);
+        assert_eq!(d.add_months(i64::MAX), None);
+        assert_eq!(d.add_months(12 * 175), None);
+        assert_eq!(d.add_months(12 * 174).unwrap().to_string(), "2200-12-01");
+        assert!(!Date::parse("9999-12-31").unwrap().in_range());
+        assert!(Date::parse("1900-01-01").unwrap().in_range());
     }
 
     #[test]

@@ -94,6 +94,9 @@ impl Diagnostic {
             (Some(file), Some(span), Some(src)) => {
                 let (line_no, col, line) = locate(src, span.start);
                 let _ = writeln!(out, "{file}:{line_no}:{col}: {message}");
+                // A very long line is shown around the place only.
+                let (line, col) = window(line, col);
+                let line = line.as_str();
                 let gutter = line_no.to_string().len().max(4);
                 let shown = line.replace('\t', " ");
                 let _ = writeln!(out, "{line_no:>gutter$} | {shown}");
@@ -115,15 +118,69 @@ impl Diagnostic {
     }
 }
 
+/// The widest line drawn under a message, in characters.
+const SHOWN_WIDTH: usize = 120;
+
+/// `line` cut to at most [`SHOWN_WIDTH`] characters around column `col` (marked `...` where
+/// cut), with the column in the cut text.
+fn window(line: &str, col: usize) -> (String, usize) {
+    let chars: Vec<char> = line.chars().collect();
+    if chars.len() <= SHOWN_WIDTH {
+        return (line.to_string(), col);
+    }
+    let first = (col - 1).saturating_sub(SHOWN_WIDTH / 4).min(chars.len().saturating_sub(SHOWN_WIDTH));
+    let last = (first + SHOWN_WIDTH).min(chars.len());
+    let mut shown = String::new();
+    let mut col = col - first;
+    if first > 0 {
+        shown.push_str("...");
+        col += 3;
+    }
+    shown.extend(&chars[first..last]);
+    if last < chars.len() {
+        shown.push_str("...");
+    }
+    (shown, col)
+}
+
 /// Line number (1-based), column in characters (1-based) and text of the line holding
-/// byte offset `offset`.
+/// byte offset `offset`. Lines end at LF, CRLF or a lone CR; a leading byte-order mark
+/// takes no column.
 pub fn locate(src: &str, offset: usize) -> (usize, usize, &str) {
-    let offset = offset.min(src.len());
-    let line_start = src[..offset].rfind('\n').map_or(0, |i| i + 1);
-    let line_end = src[offset..].find('\n').map_or(src.len(), |i| offset + i);
-    let line_no = src[..line_start].matches('\n').count() + 1;
-    let col = src[line_start..offset].chars().count() + 1;
-    (line_no, col, src[line_start..line_end].trim_end_matches('\r'))
+    let mut offset = offset.min(src.len());
+    while !src.is_char_boundary(offset) {
+        offset -= 1;
+    }
+    let bytes = src.as_bytes();
+    let mut line_no = 1;
+    let mut line_start = 0;
+    for (i, &b) in bytes[..offset].iter().enumerate() {
+        let ends = b == b'\n' || (b == b'\r' && bytes.get(i + 1) != Some(&b'\n'));
+        if ends {
+            line_no += 1;
+            line_start = i + 1;
+        }
+    }
+    let line_end = src[offset..].find(['\n', '\r']).map_or(src.len(), |i| offset + i);
+    let col = src[line_start..offset].chars().filter(|c| *c != '\u{feff}').count() + 1;
+    (line_no, col, src[line_start..line_end].trim_start_matches('\u{feff}'))
+}
+
+/// The text of a source file given as bytes. Text that is not UTF-8 is refused with the
+/// line and column of the first bad byte; the error comes with the text read so far
+/// (bad bytes replaced), for drawing the line.
+pub fn decode_source(bytes: Vec<u8>) -> Result<String, Box<(Diagnostic, String)>> {
+    match String::from_utf8(bytes) {
+        Ok(text) => Ok(text),
+        Err(e) => {
+            let at = e.utf8_error().valid_up_to();
+            let byte = e.as_bytes()[at];
+            let text = String::from_utf8_lossy(e.as_bytes()).into_owned();
+            let d = Diagnostic::at(Span::new(at, at + 1), format!("byte 0x{byte:02X} here is not UTF-8 text"))
+                .with_fix("save the file as UTF-8 (payoff files are plain UTF-8 text)");
+            Err(Box::new((d, text)))
+        }
+    }
 }
 
 /// Renders a list of diagnostics, one after another.
@@ -170,6 +227,30 @@ mod tests {
             d.render(Some(src)),
             "a.payoff:2:16: unknown name `strik`\n   2 | pay notional * strik\n     |                ^^^^^\n  fix: did you mean `strike`?\n"
         );
+    }
+
+    #[test]
+    fn lines_end_at_lf_crlf_or_cr_and_a_bom_takes_no_column() {
+        let src = "a\r\nbb\rccc\nd";
+        assert_eq!(locate(src, src.find('c').unwrap() + 1), (3, 2, "ccc"));
+        assert_eq!(locate(src, src.find('b').unwrap()), (2, 1, "bb"));
+        assert_eq!(locate("\u{feff}pay x", 7), (1, 5, "pay x"));
+    }
+
+    #[test]
+    fn long_lines_are_shown_around_the_place() {
+        let line = format!("{}X{}", "a".repeat(500), "b".repeat(500));
+        let (shown, col) = window(&line, 501);
+        assert!(shown.chars().count() <= SHOWN_WIDTH + 6);
+        assert_eq!(shown.chars().nth(col - 1), Some('X'));
+    }
+
+    #[test]
+    fn text_that_is_not_utf8_is_placed() {
+        let (d, text) = *decode_source(b"ab\ncd\xff".to_vec()).unwrap_err();
+        assert_eq!(d.span, Some(Span::new(5, 6)));
+        assert_eq!(locate(&text, 5).0, 2);
+        assert_eq!(decode_source(b"ok".to_vec()).unwrap(), "ok");
     }
 
     #[test]

@@ -358,12 +358,17 @@ pub fn price_file_to(
     settings: &Settings,
     target: Option<(Target, u64)>,
 ) -> Result<Priced, Failure> {
-    let source = fs::read_to_string(file).map_err(|e| {
+    let bytes = fs::read(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
+    let source =
+        crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
     let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
-    let tree = syntax::parse(&source).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-    let product = check::check(&tree, overrides).map_err(|ds| Failure::input(in_file(ds), Some(source.clone())))?;
+    // Parsing and checking recurse once per level of nesting: they get a stack of known size.
+    let product = syntax::on_deep_stack(|| {
+        let tree = syntax::parse(&source).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+        check::check(&tree, overrides).map_err(|ds| Failure::input(in_file(ds), Some(source.clone())))
+    })?;
     let market_path = match (market, &product.market) {
         (Some(m), _) => m.to_path_buf(),
         (None, Some((name, _))) => file.parent().unwrap_or(Path::new(".")).join(name),
@@ -381,7 +386,7 @@ pub fn price_file_to(
             return Err(Failure::input(ds, text));
         }
     };
-    let program = compile::compile(&product, &market_data, &market_path).map_err(|ds| {
+    let program = syntax::on_deep_stack(|| compile::compile(&product, &market_data, &market_path)).map_err(|ds| {
         // Errors in the market (a correlation pair) name the market file; the rest point into the payoff.
         let market_side = ds.iter().any(|d| d.file.as_deref() == Some(market_path.as_path()));
         if market_side {

@@ -207,8 +207,47 @@ impl Aggregate {
     }
 }
 
+/// The deepest nesting a payoff may have: brackets `(` and `{`, prefix `-` and `not`, and
+/// `if` inside `if` (an `else if` chain counts one level per `if`), all counted together.
+/// Checked on the raw text before the grammar, which recurses, sees it.
+pub const MAX_NESTING: usize = 200;
+
+/// The deepest expression tree a payoff may build: each operator of a chain such as
+/// `a + b + c` is a level, so a sum may have this many terms.
+pub const MAX_EXPRESSION_DEPTH: usize = 1_000;
+
+/// The furthest a date written in years may lie after the valuation date, and the longest
+/// period of an `every` schedule.
+pub const MAX_YEARS: u32 = 200;
+
+/// The stack given to [`on_deep_stack`]: room for every stage that walks a tree as deep as
+/// the limits above allow, even in an unoptimised build (where frames are large).
+const DEEP_STACK_BYTES: usize = 64 << 20;
+
+/// Runs `f` (parsing, checking or compiling a payoff: stages that recurse once per level of
+/// nesting) on a thread with a stack of known size, so that a payoff under the limits never
+/// overflows, whatever thread calls: a batch's worker threads have small stacks. If no
+/// thread can be started, `f` runs on the calling thread.
+pub fn on_deep_stack<T: Send>(f: impl FnOnce() -> T + Send) -> T {
+    let job = std::sync::Mutex::new(Some(f));
+    let take = || job.lock().unwrap_or_else(std::sync::PoisonError::into_inner).take();
+    let ran = std::thread::scope(|scope| {
+        let spawned =
+            std::thread::Builder::new().stack_size(DEEP_STACK_BYTES).spawn_scoped(scope, || take().map(|f| f()));
+        match spawned {
+            Ok(handle) => handle.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic)),
+            Err(_) => None,
+        }
+    });
+    match ran {
+        Some(value) => value,
+        None => take().map(|f| f()).expect("the job runs on one thread or the other"),
+    }
+}
+
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
+    check_nesting(source)?;
     let mut pairs = PayoffParser::parse(Rule::file, source).map_err(|e| from_pest(e, source))?;
     let file = pairs.next().expect("the file rule always yields one pair");
     let mut lowering = Lowering { errors: Vec::new() };
@@ -217,6 +256,135 @@ pub fn parse(source: &str) -> Result<File, Diagnostic> {
         Some(e) => Err(e),
         None => Ok(File { items }),
     }
+}
+
+/// A cheap scan of the raw text that refuses nesting deeper than [`MAX_NESTING`] before the
+/// recursive grammar can run out of stack. It over-counts rather than under-counts: every
+/// `-` and `not` in a row counts, and every `if` since the last statement boundary (`=`,
+/// `pay`, `end`, a keyword starting a top-level line, or a `}` not followed by `else`).
+fn check_nesting(source: &str) -> Result<(), Diagnostic> {
+    struct Frame {
+        /// Levels open outside this bracket, the bracket itself included.
+        base: usize,
+        /// `if`s open inside this bracket.
+        ifs: usize,
+        /// Prefix operators in a row.
+        run: usize,
+    }
+    let too_deep = |at: usize, len: usize| {
+        Diagnostic::at(
+            Span::new(at, at + len),
+            format!("the payoff is nested more than {MAX_NESTING} levels deep here"),
+        )
+        .with_fix(format!(
+            "brackets, `-`, `not` and `if` inside one another count together, at most {MAX_NESTING}; \
+                 name the inner parts with `let`, or write a long `else if` chain as separate `if`s"
+        ))
+    };
+    let bytes = source.as_bytes();
+    let mut frames = vec![Frame { base: 0, ifs: 0, run: 0 }];
+    let mut after_brace = false;
+    let mut i = 0;
+    while i < bytes.len() {
+        let b = bytes[i];
+        let start = i;
+        match b {
+            b'#' => {
+                while i < bytes.len() && bytes[i] != b'\n' && bytes[i] != b'\r' {
+                    i += 1;
+                }
+                continue;
+            }
+            b' ' | b'\t' | b'\r' | b'\n' => {
+                i += 1;
+                continue;
+            }
+            _ => {}
+        }
+        let top = frames.last_mut().expect("the outermost frame stays");
+        if after_brace {
+            after_brace = false;
+            if !source[i..].starts_with("else") {
+                top.ifs = 0;
+                top.run = 0;
+            }
+        }
+        match b {
+            b'"' => {
+                i += 1;
+                while i < bytes.len() && !matches!(bytes[i], b'"' | b'\n' | b'\r') {
+                    i += 1;
+                }
+                i += 1;
+                top.run = 0;
+            }
+            b'(' | b'{' => {
+                let base = top.base + top.ifs + top.run + 1;
+                if base > MAX_NESTING {
+                    return Err(too_deep(start, 1));
+                }
+                frames.push(Frame { base, ifs: 0, run: 0 });
+                i += 1;
+            }
+            b')' | b'}' => {
+                if frames.len() > 1 {
+                    frames.pop();
+                }
+                let top = frames.last_mut().expect("the outermost frame stays");
+                top.run = 0;
+                after_brace = b == b'}';
+                i += 1;
+            }
+            b'-' => {
+                top.run += 1;
+                if top.base + top.ifs + top.run > MAX_NESTING {
+                    return Err(too_deep(start, 1));
+                }
+                i += 1;
+            }
+            b'<' | b'>' | b'!' | b'=' => {
+                let two = bytes.get(i + 1) == Some(&b'=');
+                if b == b'=' && !two {
+                    // `name = value`: a new value starts.
+                    top.ifs = 0;
+                    top.run = 0;
+                }
+                i += if two { 2 } else { 1 };
+            }
+            c if c.is_ascii_alphanumeric() || c == b'_' || c >= 0x80 => {
+                while i < bytes.len() && (bytes[i].is_ascii_alphanumeric() || matches!(bytes[i], b'_' | b'.')) {
+                    i += 1;
+                }
+                if i == start {
+                    // A character outside ASCII: the grammar reports it.
+                    i += source[i..].chars().next().map_or(1, char::len_utf8);
+                    continue;
+                }
+                match &source[start..i] {
+                    "not" => {
+                        top.run += 1;
+                        if top.base + top.ifs + top.run > MAX_NESTING {
+                            return Err(too_deep(start, 3));
+                        }
+                    }
+                    "if" => {
+                        top.ifs += 1;
+                        if top.base + top.ifs + top.run > MAX_NESTING {
+                            return Err(too_deep(start, 2));
+                        }
+                    }
+                    "pay" | "end" | "param" | "dates" | "state" | "for" | "at" | "let" => {
+                        top.ifs = 0;
+                        top.run = 0;
+                    }
+                    "then" | "else" | "and" | "or" | "on" | "from" | "to" | "over" => {}
+                    _ => top.run = 0,
+                }
+            }
+            _ => i += 1,
+        }
+    }
+    Ok(())
 }
 
 fn pratt() -> PrattParser<Rule> {
@@ -301,21 +469,40 @@ impl Lowering {
             Rule::every_sched => {
                 let period = inner.next().unwrap();
                 let text = period.as_str();
-                let (digits, unit) = text.split_at(text.len() - 1);
-                let unit = match unit {
+                let (digits, letter) = text.split_at(text.len() - 1);
+                let unit = match letter {
                     "d" => PeriodUnit::Days,
                     "w" => PeriodUnit::Weeks,
                     "m" => PeriodUnit::Months,
                     _ => PeriodUnit::Years,
                 };
-                let count = self.count(digits, span_of(&period));
+                let most = match unit {
+                    PeriodUnit::Days => MAX_YEARS * 365,
+                    PeriodUnit::Weeks => MAX_YEARS * 52,
+                    PeriodUnit::Months => MAX_YEARS * 12,
+                    PeriodUnit::Years => MAX_YEARS,
+                };
+                let count = if digits.parse::<u32>().is_ok_and(|n| n > most) || digits.parse::<u32>().is_err() {
+                    self.errors.push(
+                        Diagnostic::at(span_of(&period), format!("`{text}` is too long a period"))
+                            .with_fix(format!("a period is at most {MAX_YEARS} years, so at most {most}{letter}")),
+                    );
+                    1
+                } else {
+                    self.count(digits, span_of(&period), most, "a period")
+                };
                 let from = self.date_term(inner.next().unwrap());
                 let to = self.date_term(inner.next().unwrap());
                 ScheduleKind::Every { count, unit, from, to }
             }
             Rule::steps_sched => {
                 let n = inner.next().unwrap();
-                let n = self.count(n.as_str(), span_of(&n));
+                let n = self.count(
+                    n.as_str(),
+                    span_of(&n),
+                    crate::compile::MAX_SCHEDULE_DATES as u32,
+                    "the number of dates in one schedule",
+                );
                 let from = self.date_term(inner.next().unwrap());
                 let to = self.date_term(inner.next().unwrap());
                 ScheduleKind::Steps { n, from, to }
@@ -330,24 +517,52 @@ impl Lowering {
         Schedule { kind, span }
     }
 
-    fn count(&mut self, digits: &str, span: Span) -> u32 {
-        match digits.parse::<u32>() {
-            Ok(n) if n > 0 => n,
-            _ => {
+    /// A whole count from 1 to `most`; `what` names it in the message.
+    fn count(&mut self, digits: &str, span: Span, most: u32, what: &str) -> u32 {
+        let n = digits.parse::<u32>();
+        match n {
+            Ok(n) if (1..=most).contains(&n) => n,
+            Ok(0) => {
                 self.errors.push(
                     Diagnostic::at(span, format!("`{digits}` is not a usable count"))
                         .with_fix("write a whole number from 1 up, such as `3` in `every 3m`"),
                 );
                 1
             }
+            _ => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("`{digits}` is too many: {what} is at most {most}"))
+                        .with_fix(format!("write a whole number from 1 to {most}")),
+                );
+                1
+            }
         }
+    }
+
+    /// `1.5y`: years after the valuation date, at most [`MAX_YEARS`].
+    fn years(&mut self, text: &str, span: Span) -> DateTerm {
+        let y = decimal(&text[..text.len() - 1]);
+        if y.is_finite() && y <= f64::from(MAX_YEARS) {
+            return DateTerm::Years(y);
+        }
+        self.errors.push(
+            Diagnostic::at(
+                span,
+                format!(
+                    "`{}` is too far ahead: dates lie at most {MAX_YEARS} years after the valuation date",
+                    shortened(text)
+                ),
+            )
+            .with_fix(format!("write a number of years from 0 to {MAX_YEARS}, or an ISO date such as 2031-12-01")),
+        );
+        DateTerm::Years(0.0)
     }
 
     fn date_term(&mut self, pair: Pair<'_, Rule>) -> (DateTerm, Span) {
         let span = span_of(&pair);
         let term = match pair.as_rule() {
             Rule::iso_date => self.iso_date(pair.as_str(), span),
-            Rule::year_offset => DateTerm::Years(decimal(&pair.as_str()[..pair.as_str().len() - 1])),
+            Rule::year_offset => self.years(pair.as_str(), span),
             Rule::start_ref => DateTerm::Start,
             other => unreachable!("grammar yields no date term {other:?}"),
         };
@@ -356,7 +571,17 @@ impl Lowering {
 
     fn iso_date(&mut self, text: &str, span: Span) -> DateTerm {
         match Date::parse(text) {
-            Some(d) => DateTerm::Iso(d),
+            Some(d) if d.in_range() => DateTerm::Iso(d),
+            Some(_) => {
+                self.errors.push(
+                    Diagnostic::at(span, format!("{text} is outside the dates pathfold prices")).with_fix(format!(
+                        "write a date from {}-01-01 to {}-12-31",
+                        crate::date::FIRST_YEAR,
+                        crate::date::LAST_YEAR
+                    )),
+                );
+                DateTerm::Years(0.0)
+            }
             None => {
                 self.errors.push(
                     Diagnostic::at(span, format!("`{text}` is not a calendar date"))
@@ -405,14 +630,23 @@ impl Lowering {
     }
 
     fn expr(&mut self, pair: Pair<'_, Rule>) -> Expr {
-        PRATT
+        self.expr_depth(pair).0
+    }
+
+    /// An expression with the depth of its tree. A tree deeper than
+    /// [`MAX_EXPRESSION_DEPTH`] is refused while it is built, so that no later stage (nor
+    /// dropping the tree) recurses deeper than that.
+    fn expr_depth(&mut self, pair: Pair<'_, Rule>) -> (Expr, usize) {
+        let too_deep = std::cell::Cell::new(None);
+        let out = PRATT
             .map_primary(|p| self.primary(p))
-            .map_prefix(|op, rhs| {
+            .map_prefix(|op, (rhs, depth)| {
                 let span = span_of(&op).join(rhs.span);
-                let op = if op.as_rule() == Rule::neg { UnaryOp::Neg } else { UnaryOp::Not };
-                Expr { kind: ExprKind::Unary(op, Box::new(rhs)), span }
+                let unary = if op.as_rule() == Rule::neg { UnaryOp::Neg } else { UnaryOp::Not };
+                bounded(Expr { kind: ExprKind::Unary(unary, Box::new(rhs)), span }, depth + 1, span_of(&op), &too_deep)
             })
-            .map_infix(|lhs, op, rhs| {
+            .map_infix(|(lhs, dl), op, (rhs, dr)| {
+                let at = span_of(&op);
                 let op = match op.as_rule() {
                     Rule::add => BinaryOp::Add,
                     Rule::sub => BinaryOp::Sub,
@@ -428,36 +662,63 @@ impl Lowering {
                     _ => BinaryOp::Or,
                 };
                 let span = lhs.span.join(rhs.span);
-                Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span }
+                bounded(
+                    Expr { kind: ExprKind::Binary(op, Box::new(lhs), Box::new(rhs)), span },
+                    dl.max(dr) + 1,
+                    at,
+                    &too_deep,
+                )
             })
-            .parse(children(pair))
+            .parse(children(pair));
+        if let Some(at) = too_deep.get() {
+            self.too_deep(at);
+        }
+        out
     }
 
-    fn primary(&mut self, pair: Pair<'_, Rule>) -> Expr {
+    fn too_deep(&mut self, at: Span) {
+        if self.errors.is_empty() {
+            self.errors.push(
+                Diagnostic::at(
+                    at,
+                    format!("this expression holds more than {MAX_EXPRESSION_DEPTH} operations one inside another"),
+                )
+                .with_fix(format!(
+                    "an expression takes at most {MAX_EXPRESSION_DEPTH} levels (each operator of a chain such as \
+                     `a + b + c` is one); split it into several `let`s and combine those"
+                )),
+            );
+        }
+    }
+
+    fn primary(&mut self, pair: Pair<'_, Rule>) -> (Expr, usize) {
         let span = span_of(&pair);
         let text = pair.as_str();
+        let mut depth = 0;
         let kind = match pair.as_rule() {
-            Rule::expr => return self.expr(pair),
+            Rule::expr => return self.expr_depth(pair),
             Rule::number => ExprKind::Number(decimal(text)),
             Rule::percent => ExprKind::Number(decimal(&text[..text.len() - 1]) / 100.0),
             Rule::boolean => ExprKind::Flag(text == "true"),
             Rule::iso_date => ExprKind::Date(self.iso_date(text, span)),
-            Rule::year_offset => ExprKind::Date(DateTerm::Years(decimal(&text[..text.len() - 1]))),
+            Rule::year_offset => ExprKind::Date(self.years(text, span)),
             Rule::start_ref => ExprKind::Date(DateTerm::Start),
             Rule::ident => ExprKind::Name(text.to_string()),
             Rule::if_expr => {
                 let mut inner = children(pair);
-                let c = self.expr(inner.next().unwrap());
-                let a = self.expr(inner.next().unwrap());
-                let b = self.expr(inner.next().unwrap());
+                let (c, dc) = self.expr_depth(inner.next().unwrap());
+                let (a, da) = self.expr_depth(inner.next().unwrap());
+                let (b, db) = self.expr_depth(inner.next().unwrap());
+                depth = dc.max(da).max(db);
                 ExprKind::If(Box::new(c), Box::new(a), Box::new(b))
             }
             Rule::touched => {
                 let mut inner = children(pair);
-                let condition = Box::new(self.expr(inner.next().unwrap()));
-                let from = Box::new(self.expr(inner.next().unwrap()));
-                let to = Box::new(self.expr(inner.next().unwrap()));
-                ExprKind::Touched { condition, from, to }
+                let (condition, dc) = self.expr_depth(inner.next().unwrap());
+                let (from, df) = self.expr_depth(inner.next().unwrap());
+                let (to, dt) = self.expr_depth(inner.next().unwrap());
+                depth = dc.max(df).max(dt);
+                ExprKind::Touched { condition: Box::new(condition), from: Box::new(from), to: Box::new(to) }
             }
             Rule::aggregate => {
                 let mut inner = children(pair);
@@ -470,19 +731,48 @@ impl Lowering {
                     "any" => Aggregate::Any,
                     _ => Aggregate::All,
                 };
-                let body = self.expr(inner.next().unwrap());
+                let (body, d) = self.expr_depth(inner.next().unwrap());
+                depth = d;
                 let schedule = name(inner.next().unwrap());
                 ExprKind::Aggregate(agg, Box::new(body), schedule)
             }
             Rule::call => {
                 let mut inner = children(pair);
                 let callee = name(inner.next().unwrap());
-                ExprKind::Call(callee, inner.map(|p| self.expr(p)).collect())
+                let mut args = Vec::new();
+                for p in inner {
+                    let (a, d) = self.expr_depth(p);
+                    depth = depth.max(d);
+                    args.push(a);
+                }
+                ExprKind::Call(callee, args)
             }
             other => unreachable!("grammar yields no primary {other:?}"),
         };
-        Expr { kind, span }
+        // Leaves are depth 0; a node holding others is one more than its deepest.
+        let depth = match kind {
+            ExprKind::If(..) | ExprKind::Touched { .. } | ExprKind::Aggregate(..) | ExprKind::Call(..) => depth + 1,
+            _ => 0,
+        };
+        let too_deep = std::cell::Cell::new(None);
+        let out = bounded(Expr { kind, span }, depth, span, &too_deep);
+        if let Some(at) = too_deep.get() {
+            self.too_deep(at);
+        }
+        out
     }
+}
+
+/// `e` with its depth, or a stand-in leaf when it is deeper than [`MAX_EXPRESSION_DEPTH`]
+/// (the place is noted in `too_deep`); the tree goes away at most one level too deep.
+fn bounded(e: Expr, depth: usize, at: Span, too_deep: &std::cell::Cell<Option<Span>>) -> (Expr, usize) {
+    if depth <= MAX_EXPRESSION_DEPTH {
+        return (e, depth);
+    }
+    if too_deep.get().is_none() {
+        too_deep.set(Some(at));
+    }
+    (Expr { kind: ExprKind::Number(0.0), span: e.span }, 0)
 }
 
 /// The children of a pair without the keywords, which carry no meaning once parsed.
@@ -535,6 +825,17 @@ fn string_text(pair: &Pair<'_, Rule>) -> String {
     pair.clone().into_inner().next().map(|p| p.as_str().to_string()).unwrap_or_default()
 }
 
+/// `text`, cut in the middle when it is too long to quote in a message.
+fn shortened(text: &str) -> String {
+    let chars: Vec<char> = text.chars().collect();
+    if chars.len() <= 24 {
+        return text.to_string();
+    }
+    let head: String = chars[..10].iter().collect();
+    let tail: String = chars[chars.len() - 10..].iter().collect();
+    format!("{head}...{tail} ({} characters)", chars.len())
+}
+
 /// `1_000_000.5` → 1000000.5 (the grammar guarantees the digits).
 fn decimal(text: &str) -> f64 {
     text.replace('_', "").parse().expect("the grammar only passes decimal digits")
@@ -547,6 +848,9 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
+    if let Some(d) = slip(source, at) {
+        return d;
+    }
     // A reserved word where a name belongs is the likeliest slip: say so plainly.
     let word: String = source[at..].chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
     let line_start = source[..at].rfind('\n').map_or(0, |i| i + 1);
@@ -583,6 +887,78 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         format!("expected {}", join_or(&expected))
     };
     Diagnostic::at(Span::new(at, at + 1), message).with_fix("compare the line with the syntax in grammar/REFERENCE.md")
+}
+
+/// A specific hint for a natural slip at byte `at`, where the grammar stopped: operators
+/// and words from other languages, and the forms of `if` and `touched` mixed up.
+fn slip(source: &str, at: usize) -> Option<Diagnostic> {
+    let rest = &source[at..];
+    // Only what stands before on the same line counts.
+    let before = source[..at].trim_end_matches([' ', '\t']);
+    let line_before = &source[source[..at].rfind(['\n', '\r']).map_or(0, |i| i + 1)..at];
+    let word: String = rest.chars().take_while(|c| c.is_ascii_alphanumeric() || *c == '_').collect();
+    let hint = |start: usize, len: usize, message: &str, fix: &str| {
+        Some(Diagnostic::at(Span::new(start, start + len), message).with_fix(fix))
+    };
+    if rest.starts_with("&&") {
+        return hint(at, 2, "`&&` is not an operator in pathfold", "write `and`, as in `perf(A) > 1 and perf(B) > 1`");
+    }
+    if rest.starts_with("||") {
+        return hint(
+            at,
+            2,
+            "`||` is not an operator in pathfold",
+            "write `or`, as in `perf(A) < 70% or perf(B) < 70%`",
+        );
+    }
+    if word == "elif" {
+        return hint(at, 4, "`elif` is not a pathfold word", "write `else if`, as in `} else if perf(A) > 1 {`");
+    }
+    if rest.starts_with('*') && before.ends_with('*') {
+        return hint(
+            before.len() - 1,
+            2,
+            "`**` is not an operator in pathfold: there is no power operator",
+            "multiply (`x * x`), or write `exp(y * log(x))` for x to the power y",
+        );
+    }
+    let after_percent = before.ends_with('%') && rest.starts_with(|c: char| c.is_ascii_alphanumeric() || c == '(');
+    if rest.starts_with('%') || after_percent {
+        let start = if after_percent { before.len() - 1 } else { at };
+        return hint(
+            start,
+            1,
+            "`%` only marks a percentage, right after its number (70% is 0.70); pathfold has no remainder operator",
+            "for a remainder write `x - floor(x / n) * n`",
+        );
+    }
+    let words_before = line_before.split(|c: char| !c.is_ascii_alphanumeric() && c != '_');
+    if word == "then" && words_before.clone().any(|w| w == "if") {
+        return hint(
+            at,
+            4,
+            "an `if` statement takes its branch in braces, not after `then`",
+            "write `if c { pay x }`; `then` belongs to the value form `if c then a else b`, which needs its `else`",
+        );
+    }
+    // Inside an unclosed `touched(`: the window is missing or misspelt.
+    if let Some(open) = source[..at].rfind("touched(") {
+        let inside = &source[open + "touched(".len()..at];
+        let depth = inside.chars().fold(1i32, |d, c| match c {
+            '(' => d + 1,
+            ')' => d - 1,
+            _ => d,
+        });
+        if depth > 0 && (!inside.contains(" from ") || rest.starts_with(')')) {
+            return hint(
+                open,
+                "touched".len(),
+                "`touched(...)` needs its window: the condition, then `from DATE to DATE`",
+                "write for example `touched(perf(OSMP) <= 65% from start to 1y)`",
+            );
+        }
+    }
+    None
 }
 
 /// The words that start a top-level line.
@@ -707,6 +1083,49 @@ mod tests {
         assert!(
             matches!(&file.items[2], Item::Dates(n, Schedule { kind: ScheduleKind::BusinessDays { .. }, .. }) if n.text == "days")
         );
+    }
+
+    #[test]
+    fn nesting_is_counted_before_the_grammar_runs() {
+        let deep = |n: usize| format!("param x = {}1{}", "(".repeat(n), ")".repeat(n));
+        assert!(parse(&deep(MAX_NESTING)).is_ok());
+        let err = parse(&deep(MAX_NESTING + 1)).unwrap_err();
+        assert_eq!(err.span, Some(Span::new(10 + MAX_NESTING, 11 + MAX_NESTING)));
+        // Sequential `if`s in a block are not nested; an `else if` chain is.
+        let ifs = |sep: &str, n: usize| {
+            let chain: Vec<String> = (0..n).map(|i| format!("if x > {i} {{ pay 1 }}")).collect();
+            format!("at 1y {{\n{}\n}}", chain.join(sep))
+        };
+        assert!(parse(&ifs("\n", 1_000)).is_ok());
+        assert!(parse(&ifs(" else ", 1_000)).is_err());
+        // Brackets inside comments and texts do not count.
+        assert!(parse(&format!("product \"{}\" # {}", "(".repeat(500), "(".repeat(500))).is_ok());
+    }
+
+    #[test]
+    fn long_chains_are_refused_while_the_tree_is_built() {
+        let sum = |n: usize| format!("param x = {}", vec!["1"; n].join(" + "));
+        assert!(parse(&sum(MAX_EXPRESSION_DEPTH + 1)).is_ok());
+        let err = parse(&sum(MAX_EXPRESSION_DEPTH + 2)).unwrap_err();
+        assert!(err.message.contains("more than 1000 operations"), "{}", err.message);
+    }
+
+    #[test]
+    fn the_deep_stages_run_from_a_thread_with_a_small_stack() {
+        let src = format!("param x = {}", vec!["-1"; MAX_EXPRESSION_DEPTH].join(" + "));
+        let small = std::thread::Builder::new().stack_size(64 << 10);
+        let handle = small.spawn(move || on_deep_stack(|| parse(&src).is_ok())).expect("a thread");
+        assert!(handle.join().expect("no overflow"));
+    }
+
+    #[test]
+    fn slips_get_their_hint_only_where_they_stand() {
+        let message = |src: &str| parse(src).unwrap_err().message;
+        assert!(message("param a = 7 % 2").contains("no remainder operator"));
+        // A percentage ending a line is not a remainder: the next line's slip is its own.
+        assert!(!message("param a = 70%\nfoo bar").contains("remainder"));
+        assert!(message("at 1y { if a then pay 1 }").contains("braces"));
+        assert!(message("at 1y { let then = 1 }").contains("reserved word"));
     }
 
     #[test]
