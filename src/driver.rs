@@ -404,7 +404,8 @@ pub fn price_file_to(
         }
     };
     let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-    let warnings = render_all(&in_file(product.warnings.clone()), Some(&source));
+    let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
+    let warnings = render_all(&in_file(found), Some(&source));
     Ok(Priced {
         warnings,
         file: file.display().to_string(),
