@@ -112,7 +112,7 @@ pub fn simulate_to_target(
     let mut paths = whole(settings.paths).min(max_paths);
     loop {
         run.extend_to(paths);
-        if run.total.bad_site.is_some() {
+        if !run.total.is_finite() {
             break;
         }
         let se = run.regression().std_error;
@@ -190,10 +190,8 @@ impl<'a> Run<'a> {
     fn finish(self, started: Instant) -> Result<Estimate, Diagnostic> {
         let (program, settings, controls, total, paths) =
             (self.program, self.settings, &self.controls, &self.total, self.paths);
-        if let Some(site) = total.bad_site {
-            let span = program.pay_sites[site as usize];
-            return Err(Diagnostic::at(span, "this payment is not a finite number on some paths")
-                .with_fix("look for a division by zero or the log or square root of a negative number in the amount"));
+        if !total.is_finite() {
+            return Err(not_finite(program, total, paths));
         }
         let regression = self.regression();
         let (price, std_error) = (regression.price, regression.std_error);
@@ -233,6 +231,36 @@ impl<'a> Run<'a> {
             warnings,
         })
     }
+}
+
+/// The error for a run whose payments are not all finite numbers, or whose statistics
+/// overflow: it names the `pay` and, for amounts that are not numbers, how many paths.
+fn not_finite(program: &Program, total: &BlockResult, paths: u64) -> Diagnostic {
+    let place = |site: usize| program.pay_sites.get(site).copied().unwrap_or_default();
+    if let Some(site) = total.bad_paths.iter().position(|&c| c > 0) {
+        let count = total.bad_paths[site];
+        let others = total.bad_paths.iter().filter(|&&c| c > 0).count() - 1;
+        let also = match others {
+            0 => String::new(),
+            1 => " (1 other payment is not finite either)".to_string(),
+            k => format!(" ({k} other payments are not finite either)"),
+        };
+        return Diagnostic::at(
+            place(site),
+            format!("this payment is not a finite number on {count} of {paths} paths{also}"),
+        )
+        .with_fix("look in the amount for a division by zero, the log or square root of a negative number, or an `exp` of more than 709 (numbers go up to about 1.8e308)");
+    }
+    let what = if total.paid.iter().all(|x| x.is_finite()) && total.moments.mean(0).is_finite() {
+        "their variance"
+    } else {
+        "their sum over the paths"
+    };
+    Diagnostic::at(
+        place(total.largest.1 as usize),
+        format!("the amounts paid here are too large to add up: {what} overflows (numbers go up to about 1.8e308)"),
+    )
+    .with_fix("pay in a larger unit, for example a notional of 1 with the price read as a fraction of it, or look for a runaway `exp`")
 }
 
 /// The warnings a regression gives: controls whose paths miss their closed-form mean or
