@@ -114,3 +114,67 @@ fn common_practice_a_fixed_payment_is_worth_its_discount_factor_whatever_the_sta
         assert!((p - exact).abs() <= (4.0 * se).max(1e-9 * exact), "year {year}: {p} ± {se}, exact {exact}");
     }
 }
+
+#[test]
+fn path_counts_out_of_range_are_refused_naming_the_option_and_the_range() {
+    // Issue 8, item 7: `--paths 2` gave no standard error, `--paths 18446744073709551615`
+    // ran no path and printed 0, `--max-paths 0` ran 256 paths silently.
+    let range = "a run uses from 256 paths (one block) to 1,000,000,000,000 paths\n";
+    for (args, expected) in [
+        (vec!["--paths", "2"], format!("--paths 2 is out of range: {range}")),
+        (vec!["--paths", "255"], format!("--paths 255 is out of range: {range}")),
+        (
+            vec!["--paths", "18446744073709551615"],
+            format!("--paths 18,446,744,073,709,551,615 is out of range: {range}"),
+        ),
+        (vec!["--paths", "1000000000001"], format!("--paths 1,000,000,000,001 is out of range: {range}")),
+        (vec!["--max-paths", "0", "--target-se", "1"], format!("--max-paths 0 is out of range: {range}")),
+        (vec!["--max-paths", "0"], format!("--max-paths 0 is out of range: {range}")),
+        (
+            vec!["--max-paths", "1000", "--target-se", "1%"],
+            "--max-paths 1,000 is below --paths 200,000: an error-bounded run starts from --paths and adds paths up to --max-paths; raise --max-paths or lower --paths\n".to_string(),
+        ),
+    ] {
+        for command in ["price", "compare"] {
+            let mut all = vec![command];
+            if command == "compare" {
+                // The options are checked before the price list is read.
+                all.push("no-such-list.csv");
+            }
+            all.push("payoffs/european_call.payoff");
+            all.extend_from_slice(&args);
+            let (stdout, stderr, code) = run(&all);
+            assert_eq!(code, Some(2), "{all:?}: {stderr}");
+            assert_eq!(stderr, expected, "{all:?}");
+            assert!(stdout.is_empty(), "{all:?}: {stdout}");
+        }
+    }
+    let (_, stderr, code) = run(&["check", "--paths", "2"]);
+    assert_eq!((code, stderr.as_str()), (Some(2), format!("--paths 2 is out of range: {range}").as_str()));
+}
+
+#[test]
+fn the_fewest_paths_allowed_give_a_finite_standard_error() {
+    // Reference: Black–Scholes for the one-year at-the-money call (src/closed_form,
+    // checked there against Hull's worked example, from memory), within 4 SE: a run of
+    // the smallest size is still an honest estimate with an error bar.
+    let reference = 1_000_000.0
+        * pathfold::closed_form::black_scholes(
+            pathfold::closed_form::OptionKind::Call,
+            1.0,
+            1.0,
+            common::years("2027-12-01"),
+            RATE,
+            RATE - common::ZPHX.q,
+            common::ZPHX.vol,
+        );
+    for extra in [&[][..], &["--no-antithetic"], &["--no-control"], &["--no-antithetic", "--no-control"]] {
+        let mut args = vec!["--paths", "256", "--seed", "3"];
+        args.extend_from_slice(extra);
+        let v = common::price("payoffs/european_call.payoff", &args);
+        let (p, se) = common::price_se(&v);
+        assert!(se.is_finite() && se > 0.0, "{extra:?}: {v}");
+        assert_eq!(v["paths"], 256);
+        common::assert_within(&format!("256 paths {extra:?}"), p, se, reference, 4.0);
+    }
+}

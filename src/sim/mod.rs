@@ -48,6 +48,59 @@ impl Default for Settings {
 
 /// The default number of paths of `pathfold price`.
 pub const DEFAULT_PATHS: u64 = 200_000;
+/// The fewest paths a run may use: one block, 128 antithetic pairs, enough for a standard
+/// error.
+pub const MIN_PATHS: u64 = BLOCK as u64;
+/// The most paths a run may use (10¹²).
+pub const MAX_PATHS: u64 = 1_000_000_000_000;
+
+impl Settings {
+    /// Checks the path count against [`MIN_PATHS`]..=[`MAX_PATHS`]; the message names
+    /// the option and the allowed range.
+    pub fn validate(&self) -> Result<(), String> {
+        path_count("--paths", self.paths)
+    }
+}
+
+/// Checks the cap of an error-bounded run (`--max-paths`): within the same range as
+/// `--paths`, and not below the `paths` the run starts from.
+pub fn validate_max_paths(max_paths: u64, paths: u64) -> Result<(), String> {
+    path_count("--max-paths", max_paths)?;
+    if max_paths < paths {
+        return Err(format!(
+            "--max-paths {} is below --paths {}: an error-bounded run starts from --paths and adds paths up to --max-paths; raise --max-paths or lower --paths",
+            thousands(max_paths),
+            thousands(paths)
+        ));
+    }
+    Ok(())
+}
+
+fn path_count(option: &str, n: u64) -> Result<(), String> {
+    if (MIN_PATHS..=MAX_PATHS).contains(&n) {
+        Ok(())
+    } else {
+        Err(format!(
+            "{option} {} is out of range: a run uses from {} paths (one block) to {} paths",
+            thousands(n),
+            thousands(MIN_PATHS),
+            thousands(MAX_PATHS)
+        ))
+    }
+}
+
+/// `1234567` as `1,234,567`.
+fn thousands(n: u64) -> String {
+    let digits = n.to_string();
+    let mut out = String::new();
+    for (i, c) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
 /// The default seed.
 pub const DEFAULT_SEED: u64 = 1;
 
@@ -85,8 +138,9 @@ pub struct Estimate {
 /// Prices a compiled program.
 pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diagnostic> {
     let started = Instant::now();
+    settings.validate().map_err(Diagnostic::new)?;
     let mut run = Run::new(program, settings);
-    let paths = if settings.antithetic { settings.paths.max(2).div_ceil(2) * 2 } else { settings.paths.max(2) };
+    let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     run.extend_to(paths);
     run.finish(started)
 }
@@ -105,8 +159,9 @@ pub fn simulate_to_target(
     max_paths: u64,
 ) -> Result<(Estimate, bool), Diagnostic> {
     let started = Instant::now();
+    settings.validate().and_then(|()| validate_max_paths(max_paths, settings.paths)).map_err(Diagnostic::new)?;
     let block = BLOCK as u64;
-    let whole = |n: u64| n.max(2).div_ceil(block) * block;
+    let whole = |n: u64| n.div_ceil(block) * block;
     let max_paths = whole(max_paths);
     let mut run = Run::new(program, settings);
     let mut paths = whole(settings.paths).min(max_paths);
@@ -307,5 +362,24 @@ fn how_many(x: f64) -> String {
         format!("{x:.digits$}")
     } else {
         format!("{x:.2e}")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn path_counts_have_documented_bounds() {
+        let at = |paths| Settings { paths, ..Settings::default() }.validate();
+        assert!(at(MIN_PATHS).is_ok() && at(MAX_PATHS).is_ok() && at(DEFAULT_PATHS).is_ok());
+        assert!(at(MIN_PATHS - 1).is_err() && at(MAX_PATHS + 1).is_err() && at(0).is_err() && at(u64::MAX).is_err());
+        assert!(validate_max_paths(MIN_PATHS, MIN_PATHS).is_ok());
+        assert!(validate_max_paths(MIN_PATHS, MIN_PATHS + 1).is_err());
+        assert!(validate_max_paths(0, MIN_PATHS).is_err());
+        assert_eq!(thousands(0), "0");
+        assert_eq!(thousands(999), "999");
+        assert_eq!(thousands(1_000), "1,000");
+        assert_eq!(thousands(18_446_744_073_709_551_615), "18,446,744,073,709,551,615");
     }
 }
