@@ -827,6 +827,14 @@ impl Checker {
         let span = expr.span;
         let num = |kind| Some(TExpr { kind, ty: Ty::Number, span });
         match &expr.kind {
+            ExprKind::Number(v) if !v.is_finite() => {
+                self.error(
+                    span,
+                    "this number is too large: numbers go up to about 1.8e308",
+                    "write a smaller number; amounts are in units of the currency, and a percentage such as 2.25% is a fraction",
+                );
+                None
+            }
             ExprKind::Number(v) => num(TKind::Const(*v)),
             ExprKind::Flag(b) => Some(TExpr { kind: TKind::Const(f64::from(u8::from(*b))), ty: Ty::Flag, span }),
             ExprKind::Date(d) => Some(TExpr { kind: TKind::Date(DateRef::Term(*d)), ty: Ty::Date, span }),

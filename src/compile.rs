@@ -233,6 +233,10 @@ impl V {
 /// A `let` binding during compilation.
 #[derive(Clone, Copy, Debug)]
 enum LetVal {
+    /// A value; `temp` here means the let owns the register and hands it back when the
+    /// run of the block ends. A let does not own what it only names: a level, a constant,
+    /// another let's register, or the running accumulator of an aggregate (which lives
+    /// on for the loop's later dates).
     Value(V),
     Date(f64, Option<Date>),
 }
@@ -546,6 +550,11 @@ impl<'p> Compiler<'p> {
         i
     }
 
+    /// Whether register `r` holds a `state` variable.
+    fn is_state(&self, r: u32) -> bool {
+        r != ALIVE && (r as usize) <= self.product.states.len()
+    }
+
     fn alloc(&mut self) -> u32 {
         self.free.pop().unwrap_or_else(|| {
             self.registers += 1;
@@ -592,7 +601,7 @@ impl<'p> Compiler<'p> {
             // Lets live for one run of a block.
             for slot in 0..self.lets.len() {
                 if let Some(LetVal::Value(v)) = self.lets[slot].take() {
-                    self.release(V { temp: true, ..v });
+                    self.release(v);
                 }
             }
         }
@@ -656,8 +665,18 @@ impl<'p> Compiler<'p> {
                         self.lets[*slot] = Some(LetVal::Date(w.0, w.1));
                     }
                 } else if let Some(v) = self.expr(e, now) {
-                    // The let owns the register until the run of the block ends.
-                    self.lets[*slot] = Some(LetVal::Value(V { temp: false, ..v }));
+                    // A let names the value it is given: a state's register changes when
+                    // the state is assigned, so the let keeps a copy of it.
+                    let v = match v.src {
+                        Src::Reg(r) if !v.temp && self.is_state(r) => {
+                            let dst = self.alloc();
+                            self.ops.push(Op::Copy { dst, src: v.src });
+                            V { src: Src::Reg(dst), temp: true }
+                        }
+                        _ => v,
+                    };
+                    // A temporary becomes the let's own until the run of the block ends.
+                    self.lets[*slot] = Some(LetVal::Value(v));
                 }
                 false
             }
@@ -805,7 +824,8 @@ impl<'p> Compiler<'p> {
             }
             TKind::State(s) => V { src: Src::Reg(1 + *s as u32), temp: false },
             TKind::Let(slot) => match self.lets[*slot] {
-                Some(LetVal::Value(v)) => v,
+                // Readers never free a let's register.
+                Some(LetVal::Value(v)) => V { temp: false, ..v },
                 _ => return None,
             },
             TKind::Unary(op, a) => {

@@ -151,7 +151,11 @@ pub fn run(cli: Cli) -> ExitCode {
 }
 
 fn check_command(args: &CheckArgs) -> ExitCode {
-    let settings = Settings { paths: args.paths.max(2), seed: args.seed, ..Settings::default() };
+    let settings = Settings { paths: args.paths, seed: args.seed, ..Settings::default() };
+    if let Err(e) = settings.validate() {
+        eprintln!("{e}");
+        return ExitCode::from(2);
+    }
     let outcomes = match with_threads(args.threads, || crate::validate::run(&args.folder, &settings)) {
         Ok(Ok(o)) => o,
         Ok(Err(d)) => {
@@ -207,13 +211,14 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
         antithetic: !args.no_antithetic,
         control_variates: !args.no_control,
     };
-    if settings.paths < 2 {
-        return Err("--paths must be at least 2\n".into());
-    }
+    settings.validate().map_err(|e| e + "\n")?;
     let target = match &args.target_se {
         Some(t) => Some(Target::parse(t).map_err(|e| format!("--target-se {t}: {e}\n"))?),
         None => None,
     };
+    if target.is_some() || args.max_paths != batch::DEFAULT_MAX_PATHS {
+        sim::validate_max_paths(args.max_paths, settings.paths).map_err(|e| e + "\n")?;
+    }
     Ok(Request { market: args.market.clone(), overrides, settings, target, max_paths: args.max_paths })
 }
 
@@ -409,7 +414,8 @@ pub fn price_file_to(
         }
     };
     let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-    let warnings = render_all(&in_file(product.warnings.clone()), Some(&source));
+    let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
+    let warnings = render_all(&in_file(found), Some(&source));
     Ok(Priced {
         warnings,
         file: file.display().to_string(),

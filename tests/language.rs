@@ -67,3 +67,65 @@ fn an_average_read_every_month_grows_with_the_fixings() {
     );
     assert_eq!(average, summed);
 }
+
+/// A block that runs on two dates and pays `amount`, with `lets` bound before the `pay`.
+fn two_date_loop(lets: &str, amount: &str) -> String {
+    format!(
+        "dates closes = business days from 2026-12-02 to 2027-12-01\ndates obs = 2027-06-01, 2027-12-01\nfor each t in obs {{\n{lets}    pay notional * {amount} / 100\n}}\n"
+    )
+}
+
+#[test]
+fn a_let_bound_to_an_aggregate_in_a_loop_prices_as_the_aggregate_written_inline() {
+    // Issue 8, item 1: the running accumulator of an aggregate that reads only levels
+    // was handed back to the free registers when the `let` holding it went out of scope,
+    // so the next run of the loop overwrote it (wrong price) or read a register being
+    // written (panic).
+    for (agg, body) in [
+        ("count", "perf(QMEN) > 100%"),
+        ("lowest", "perf(QMEN)"),
+        ("highest", "perf(QMEN)"),
+        ("sum", "perf(QMEN)"),
+        ("average", "perf(QMEN)"),
+    ] {
+        let call = format!("{agg}({body} over closes)");
+        let bound = price_of(&format!("let-{agg}.payoff"), &two_date_loop(&format!("    let n = {call}\n"), "n"));
+        let inline = price_of(&format!("inline-{agg}.payoff"), &two_date_loop("", &call));
+        assert_eq!(bound, inline, "`{agg}` bound by a let");
+    }
+}
+
+#[test]
+fn a_let_of_a_let_prices_as_the_expression_written_inline() {
+    // Two lets naming one register must not hand it back twice.
+    let bound = price_of(
+        "let-of-let.payoff",
+        &two_date_loop(
+            "    let a = lowest(perf(QMEN) over closes)\n    let b = a\n    let c = perf(QMEN) * 2\n    let d = c\n",
+            "(a + b + c + d)",
+        ),
+    );
+    let inline = price_of(
+        "let-of-let-inline.payoff",
+        &two_date_loop(
+            "",
+            "(lowest(perf(QMEN) over closes) + lowest(perf(QMEN) over closes) + perf(QMEN) * 2 + perf(QMEN) * 2)",
+        ),
+    );
+    assert_eq!(bound, inline);
+}
+
+#[test]
+fn a_let_bound_to_a_state_keeps_the_value_it_was_given() {
+    // A let names a value, not the state: assigning the state afterwards leaves it as it
+    // was, and the state's register is not handed back when the let goes out of scope.
+    let bound = price_of(
+        "let-state.payoff",
+        "dates obs = every 3m from 2027-03-01 to 2027-12-01\nstate total = 0\nfor each t in obs {\n    let before = total\n    total = total + perf(QMEN)\n    let x = perf(QMEN) * 3\n    pay notional * (before + x + total) / 100\n}\n",
+    );
+    let stated = price_of(
+        "let-state-inline.payoff",
+        "dates obs = every 3m from 2027-03-01 to 2027-12-01\nstate total = 0\nstate before = 0\nfor each t in obs {\n    before = total\n    total = total + perf(QMEN)\n    pay notional * (before + perf(QMEN) * 3 + total) / 100\n}\n",
+    );
+    assert_eq!(bound, stated);
+}

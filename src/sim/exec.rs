@@ -63,7 +63,8 @@ impl Workspace {
             raw: Moments::new(0),
             ended: vec![0.0; p.events.len()],
             paid: vec![0.0; p.payments.len()],
-            bad_site: None,
+            bad_paths: Vec::new(),
+            largest: (0.0, 0),
         };
         self.execute(p, lanes, &mut result);
         // Paths still alive after the last operation end on the last run date.
@@ -180,10 +181,17 @@ impl Workspace {
                     }
                     let total = sum(&paid[..lanes]);
                     result.paid[slot as usize] += total;
+                    result.note_total(total, site);
                     // A non-finite amount makes the total non-finite; only then look closer
-                    // (a finite total can also overflow).
-                    if !total.is_finite() && result.bad_site.is_none() && paid[..lanes].iter().any(|v| !v.is_finite()) {
-                        result.bad_site = Some(site);
+                    // (a total of finite amounts can also overflow).
+                    if !total.is_finite() {
+                        let bad = paid[..lanes].iter().filter(|v| !v.is_finite()).count() as u64;
+                        if bad > 0 {
+                            if result.bad_paths.is_empty() {
+                                result.bad_paths = vec![0; p.pay_sites.len()];
+                            }
+                            result.bad_paths[site as usize] += bad;
+                        }
                     }
                     (self.paid, self.pv) = (paid, pvs);
                 }

@@ -11,6 +11,7 @@
 pub mod exec;
 pub mod market;
 pub mod paths;
+pub mod regress;
 pub mod stats;
 
 use std::time::{Duration, Instant};
@@ -21,7 +22,7 @@ use crate::compile::Program;
 use crate::diagnostic::Diagnostic;
 use exec::Workspace;
 use paths::Controls;
-use stats::{BlockResult, Moments};
+use stats::BlockResult;
 
 /// Paths per block. Part of the definition of a seed's result: changing it changes the
 /// numbers every seed gives.
@@ -47,6 +48,59 @@ impl Default for Settings {
 
 /// The default number of paths of `pathfold price`.
 pub const DEFAULT_PATHS: u64 = 200_000;
+/// The fewest paths a run may use: one block, 128 antithetic pairs, enough for a standard
+/// error.
+pub const MIN_PATHS: u64 = BLOCK as u64;
+/// The most paths a run may use (10¹²).
+pub const MAX_PATHS: u64 = 1_000_000_000_000;
+
+impl Settings {
+    /// Checks the path count against [`MIN_PATHS`]..=[`MAX_PATHS`]; the message names
+    /// the option and the allowed range.
+    pub fn validate(&self) -> Result<(), String> {
+        path_count("--paths", self.paths)
+    }
+}
+
+/// Checks the cap of an error-bounded run (`--max-paths`): within the same range as
+/// `--paths`, and not below the `paths` the run starts from.
+pub fn validate_max_paths(max_paths: u64, paths: u64) -> Result<(), String> {
+    path_count("--max-paths", max_paths)?;
+    if max_paths < paths {
+        return Err(format!(
+            "--max-paths {} is below --paths {}: an error-bounded run starts from --paths and adds paths up to --max-paths; raise --max-paths or lower --paths",
+            thousands(max_paths),
+            thousands(paths)
+        ));
+    }
+    Ok(())
+}
+
+fn path_count(option: &str, n: u64) -> Result<(), String> {
+    if (MIN_PATHS..=MAX_PATHS).contains(&n) {
+        Ok(())
+    } else {
+        Err(format!(
+            "{option} {} is out of range: a run uses from {} paths (one block) to {} paths",
+            thousands(n),
+            thousands(MIN_PATHS),
+            thousands(MAX_PATHS)
+        ))
+    }
+}
+
+/// `1234567` as `1,234,567`.
+fn thousands(n: u64) -> String {
+    let digits = n.to_string();
+    let mut out = String::new();
+    for (i, c) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
 /// The default seed.
 pub const DEFAULT_SEED: u64 = 1;
 
@@ -76,13 +130,17 @@ pub struct Estimate {
     pub variance_reduction: Option<f64>,
     pub profile: Vec<ProfileRow>,
     pub elapsed: Duration,
+    /// What the caller should be told about the estimate (controls left out, a fallback
+    /// to the plain estimate); warnings, never errors.
+    pub warnings: Vec<Diagnostic>,
 }
 
 /// Prices a compiled program.
 pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diagnostic> {
     let started = Instant::now();
+    settings.validate().map_err(Diagnostic::new)?;
     let mut run = Run::new(program, settings);
-    let paths = if settings.antithetic { settings.paths.max(2).div_ceil(2) * 2 } else { settings.paths.max(2) };
+    let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     run.extend_to(paths);
     run.finish(started)
 }
@@ -101,17 +159,18 @@ pub fn simulate_to_target(
     max_paths: u64,
 ) -> Result<(Estimate, bool), Diagnostic> {
     let started = Instant::now();
+    settings.validate().and_then(|()| validate_max_paths(max_paths, settings.paths)).map_err(Diagnostic::new)?;
     let block = BLOCK as u64;
-    let whole = |n: u64| n.max(2).div_ceil(block) * block;
+    let whole = |n: u64| n.div_ceil(block) * block;
     let max_paths = whole(max_paths);
     let mut run = Run::new(program, settings);
     let mut paths = whole(settings.paths).min(max_paths);
     loop {
         run.extend_to(paths);
-        if run.total.bad_site.is_some() {
+        if !run.total.is_finite() {
             break;
         }
-        let (_, se, _) = regress(&run.total.moments, &run.controls);
+        let se = run.regression().std_error;
         if se <= target_se || paths >= max_paths {
             break;
         }
@@ -175,15 +234,23 @@ impl<'a> Run<'a> {
         self.paths = self.paths.max(paths);
     }
 
+    /// The control-variate regression of the blocks so far.
+    fn regression(&self) -> regress::Regression {
+        let known: Vec<regress::Known> = (0..self.controls.len())
+            .map(|j| regress::Known { mean: self.controls.mean(j), scale: self.controls.scale(j) })
+            .collect();
+        regress::regress(&self.total.moments, &known)
+    }
+
     fn finish(self, started: Instant) -> Result<Estimate, Diagnostic> {
         let (program, settings, controls, total, paths) =
             (self.program, self.settings, &self.controls, &self.total, self.paths);
-        if let Some(site) = total.bad_site {
-            let span = program.pay_sites[site as usize];
-            return Err(Diagnostic::at(span, "this payment is not a finite number on some paths")
-                .with_fix("look for a division by zero or the log or square root of a negative number in the amount"));
+        if !total.is_finite() {
+            return Err(not_finite(program, total, paths));
         }
-        let (price, std_error, used) = regress(&total.moments, controls);
+        let regression = self.regression();
+        let (price, std_error) = (regression.price, regression.std_error);
+        let warnings = control_warnings(&regression, controls);
         let raw_var = total.raw.variance(0) / paths as f64;
         let variance_reduction = (std_error > 0.0).then(|| raw_var / (std_error * std_error)).filter(|v| v.is_finite());
         let n = paths as f64;
@@ -212,70 +279,107 @@ impl<'a> Run<'a> {
             paths,
             seed: settings.seed,
             antithetic: settings.antithetic,
-            controls: used.into_iter().map(|i| controls.name(i)).collect(),
+            controls: regression.kept.iter().map(|&i| controls.name(i)).collect(),
             variance_reduction,
             profile,
             elapsed: started.elapsed(),
+            warnings,
         })
     }
 }
 
-/// The control-variate estimate: the mean of `y` corrected by `β·(x̄ − E[x])` with β the
-/// least-squares coefficient estimated from the same run. Controls whose sample
-/// covariance adds no information (constant, or collinear with others) are dropped.
-/// Returns the estimate, its standard error and the controls kept.
-fn regress(m: &Moments, controls: &Controls) -> (f64, f64, Vec<usize>) {
-    let n = m.count();
-    let k = controls.len();
-    let mean_y = m.mean(0);
-    if n < 2.0 {
-        return (mean_y, f64::NAN, Vec::new());
+/// The error for a run whose payments are not all finite numbers, or whose statistics
+/// overflow: it names the `pay` and, for amounts that are not numbers, how many paths.
+fn not_finite(program: &Program, total: &BlockResult, paths: u64) -> Diagnostic {
+    let place = |site: usize| program.pay_sites.get(site).copied().unwrap_or_default();
+    if let Some(site) = total.bad_paths.iter().position(|&c| c > 0) {
+        let count = total.bad_paths[site];
+        let others = total.bad_paths.iter().filter(|&&c| c > 0).count() - 1;
+        let also = match others {
+            0 => String::new(),
+            1 => " (1 other payment is not finite either)".to_string(),
+            k => format!(" ({k} other payments are not finite either)"),
+        };
+        return Diagnostic::at(
+            place(site),
+            format!("this payment is not a finite number on {count} of {paths} paths{also}"),
+        )
+        .with_fix("look in the amount for a division by zero, the log or square root of a negative number, or an `exp` of more than 709 (numbers go up to about 1.8e308)");
     }
-    // Keep controls one by one while the covariance matrix stays well conditioned
-    // (Cholesky on the correlation scale).
-    let mut kept: Vec<usize> = Vec::new();
-    let mut l: Vec<Vec<f64>> = Vec::new();
-    for j in 0..k {
-        let vj = m.cov(1 + j, 1 + j);
-        if vj.is_nan() || vj <= 0.0 {
-            continue;
-        }
-        let mut row: Vec<f64> = Vec::with_capacity(kept.len() + 1);
-        for (a, &i) in kept.iter().enumerate() {
-            let c = m.cov(1 + j, 1 + i) / (vj * m.cov(1 + i, 1 + i)).sqrt();
-            let s: f64 = (0..a).map(|b| row[b] * l[a][b]).sum();
-            row.push((c - s) / l[a][a]);
-        }
-        let d = 1.0 - row.iter().map(|x| x * x).sum::<f64>();
-        if d < 1e-9 {
-            continue;
-        }
-        row.push(d.sqrt());
-        l.push(row);
-        kept.push(j);
+    let what = if total.paid.iter().all(|x| x.is_finite()) && total.moments.mean(0).is_finite() {
+        "their variance"
+    } else {
+        "their sum over the paths"
+    };
+    Diagnostic::at(
+        place(total.largest.1 as usize),
+        format!("the amounts paid here are too large to add up: {what} overflows (numbers go up to about 1.8e308)"),
+    )
+    .with_fix("pay in a larger unit, for example a notional of 1 with the price read as a fraction of it, or look for a runaway `exp`")
+}
+
+/// The warnings a regression gives: controls whose paths miss their closed-form mean or
+/// overflow, and a fallback to the plain estimate.
+fn control_warnings(r: &regress::Regression, controls: &Controls) -> Vec<Diagnostic> {
+    let mut out = Vec::new();
+    for &(j, why) in &r.left_out {
+        let message = match why {
+            regress::LeftOut::Unsampled { z } => format!(
+                "the control variate `{}` was left out: its average over the paths is {} its closed-form value, so the paths do not sample it (a very high volatility or a very long horizon)",
+                controls.name(j),
+                if z.is_finite() { format!("{} standard errors from", how_many(z.abs())) } else { "far from".into() },
+            ),
+            regress::LeftOut::NotFinite => {
+                format!("the control variate `{}` was left out: its values overflow", controls.name(j))
+            }
+            regress::LeftOut::Constant | regress::LeftOut::Collinear => continue,
+        };
+        out.push(
+            Diagnostic::new(message)
+                .with_fix("check the volatilities and dates; the price uses the other controls, or none")
+                .as_warning(),
+        );
     }
-    let q = kept.len();
-    // Solve (D R D) β = c, with R = L Lᵀ the correlation matrix of kept controls.
-    let sd: Vec<f64> = kept.iter().map(|&j| m.cov(1 + j, 1 + j).sqrt()).collect();
-    let rhs: Vec<f64> = kept.iter().zip(&sd).map(|(&j, s)| m.cov(0, 1 + j) / s).collect();
-    let mut z = vec![0.0; q];
-    for a in 0..q {
-        let s: f64 = (0..a).map(|b| l[a][b] * z[b]).sum();
-        z[a] = (rhs[a] - s) / l[a][a];
+    if let Some((controlled, distance)) = r.fell_back {
+        out.push(
+            Diagnostic::new(format!(
+                "the control-variate estimate ({}) is {} standard errors from the plain Monte Carlo estimate (more than {}), so the plain estimate is reported",
+                how_many(controlled),
+                how_many(distance),
+                regress::GUARD_SES
+            ))
+            .with_fix("check the market data for extreme volatilities and the payoff for dates far from the valuation date; `--no-control` prices without controls")
+            .as_warning(),
+        );
     }
-    let mut w = vec![0.0; q];
-    for a in (0..q).rev() {
-        let s: f64 = (a + 1..q).map(|b| l[b][a] * w[b]).sum();
-        w[a] = (z[a] - s) / l[a][a];
+    out
+}
+
+/// A number for a message: plain when moderate, in scientific notation when huge or tiny.
+fn how_many(x: f64) -> String {
+    if x.is_finite() && (x == 0.0 || (1e-3..1e9).contains(&x.abs())) {
+        let digits = if x.abs() >= 100.0 { 0 } else { 1 };
+        format!("{x:.digits$}")
+    } else {
+        format!("{x:.2e}")
     }
-    let beta: Vec<f64> = w.iter().zip(&sd).map(|(w, s)| w / s).collect();
-    let mut price = mean_y;
-    let mut explained = 0.0;
-    for (a, &j) in kept.iter().enumerate() {
-        price -= beta[a] * (m.mean(1 + j) - controls.mean(j));
-        explained += beta[a] * m.cov(0, 1 + j);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn path_counts_have_documented_bounds() {
+        let at = |paths| Settings { paths, ..Settings::default() }.validate();
+        assert!(at(MIN_PATHS).is_ok() && at(MAX_PATHS).is_ok() && at(DEFAULT_PATHS).is_ok());
+        assert!(at(MIN_PATHS - 1).is_err() && at(MAX_PATHS + 1).is_err() && at(0).is_err() && at(u64::MAX).is_err());
+        assert!(validate_max_paths(MIN_PATHS, MIN_PATHS).is_ok());
+        assert!(validate_max_paths(MIN_PATHS, MIN_PATHS + 1).is_err());
+        assert!(validate_max_paths(0, MIN_PATHS).is_err());
+        assert_eq!(thousands(0), "0");
+        assert_eq!(thousands(999), "999");
+        assert_eq!(thousands(1_000), "1,000");
+        assert_eq!(thousands(18_446_744_073_709_551_615), "18,446,744,073,709,551,615");
     }
-    let dof = (n - 1.0 - q as f64).max(1.0);
-    let residual = ((m.cov(0, 0) - explained) * (n - 1.0) / dof).max(0.0);
-    (price, (residual / n).sqrt(), kept)
 }

@@ -330,6 +330,9 @@ struct Control {
     discount: f64,
     /// The control's expectation, from a closed form.
     mean: f64,
+    /// The size of the quantity the control is built on (its discounted forward): a
+    /// standard deviation below a tiny fraction of it is rounding, not randomness.
+    scale: f64,
 }
 
 /// The control variates of a program: discounted quantities whose expectations we know in
@@ -364,12 +367,14 @@ impl Controls {
                 kind: ControlKind::Terminal { asset: a },
                 discount,
                 mean: m.spot * (-m.dividend_yield * t).exp(),
+                scale: discount * forward,
             });
             list.push(Control {
                 name: format!("{} call", m.name),
                 kind: ControlKind::Call { asset: a, strike: forward },
                 discount,
                 mean: black_scholes(OptionKind::Call, m.spot, forward, t, p.rate, b, m.volatility),
+                scale: discount * forward,
             });
         }
         for (a, fixings) in &p.averages {
@@ -388,6 +393,7 @@ impl Controls {
                 kind: ControlKind::Geometric { asset: *a, fixings: fixings.clone() },
                 discount,
                 mean: geometric_forward,
+                scale: geometric_forward,
             });
             list.push(Control {
                 name: format!("{} geometric-average call", m.name),
@@ -403,6 +409,7 @@ impl Controls {
                     b,
                     m.volatility,
                 ),
+                scale: geometric_forward,
             });
         }
         Controls { list }
@@ -422,6 +429,12 @@ impl Controls {
 
     pub fn mean(&self, j: usize) -> f64 {
         self.list[j].mean
+    }
+
+    /// The size of what control `j` is built on (its discounted forward), for telling
+    /// randomness from rounding.
+    pub fn scale(&self, j: usize) -> f64 {
+        self.list[j].scale
     }
 
     /// Whether any control needs log levels.

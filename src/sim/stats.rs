@@ -137,8 +137,13 @@ pub struct BlockResult {
     pub ended: Vec<f64>,
     /// Sum of discounted payments on each payment date.
     pub paid: Vec<f64>,
-    /// The first `pay` whose amount was not finite, if any.
-    pub bad_site: Option<u32>,
+    /// Paths on which each `pay` (by site) paid an amount that is not a finite number;
+    /// empty while there are none.
+    pub bad_paths: Vec<u64>,
+    /// The largest sum over one block's paths of one `pay`, in absolute value (a sum
+    /// that is not a number counts as infinite), and its site: the payment to name when
+    /// the statistics overflow although every amount is finite.
+    pub largest: (f64, u32),
 }
 
 impl BlockResult {
@@ -148,7 +153,8 @@ impl BlockResult {
             raw: Moments::new(1),
             ended: vec![0.0; events],
             paid: vec![0.0; payments],
-            bad_site: None,
+            bad_paths: Vec::new(),
+            largest: (0.0, 0),
         }
     }
 
@@ -161,7 +167,32 @@ impl BlockResult {
         for (a, b) in self.paid.iter_mut().zip(&other.paid) {
             *a += b;
         }
-        self.bad_site = self.bad_site.or(other.bad_site);
+        if self.bad_paths.len() < other.bad_paths.len() {
+            self.bad_paths.resize(other.bad_paths.len(), 0);
+        }
+        for (a, b) in self.bad_paths.iter_mut().zip(&other.bad_paths) {
+            *a += b;
+        }
+        self.note_total(other.largest.0, other.largest.1);
+    }
+
+    /// Records the sum over a block's paths of one payment at `site`, keeping the largest
+    /// (the earliest on ties, so the result does not depend on the order of merging
+    /// beyond the fixed block order).
+    pub fn note_total(&mut self, total: f64, site: u32) {
+        let size = if total.is_nan() { f64::INFINITY } else { total.abs() };
+        if size > self.largest.0 {
+            self.largest = (size, site);
+        }
+    }
+
+    /// Whether every statistic of the payoff is a finite number. Controls are not
+    /// checked: one that overflows is left out of the regression.
+    pub fn is_finite(&self) -> bool {
+        let m = &self.moments;
+        self.bad_paths.is_empty()
+            && [m.mean(0), m.variance(0), self.raw.mean(0), self.raw.variance(0)].iter().all(|x| x.is_finite())
+            && self.paid.iter().all(|x| x.is_finite())
     }
 }
 
