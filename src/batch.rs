@@ -375,10 +375,11 @@ fn write_table(out: &mut dyn Write, rows: &[Row]) -> io::Result<()> {
         match &row.outcome {
             Ok(p) => {
                 let e = &p.estimate;
+                let d = report::decimals(e.std_error);
                 let mut status = "ok".to_string();
                 if let Some(t) = &p.record.target {
                     if !t.met {
-                        status = format!("ok, error target {} not met", report::group(t.std_error, 2));
+                        status = format!("ok, error target {} not met", report::group(t.std_error, d));
                     }
                 }
                 writeln!(
@@ -386,9 +387,9 @@ fn write_table(out: &mut dyn Write, rows: &[Row]) -> io::Result<()> {
                     "{:<width$}  {:<36} {:>16} {:>9.4}% {:>12} {:>11} {:>6.2}  {status}",
                     row.file,
                     clip(&p.product, 36),
-                    format!("{} {}", report::group(e.price, 2), p.currency),
+                    format!("{} {}", report::group(e.price, d), p.currency),
                     p.percent_of_notional(),
-                    report::group(e.std_error, 2),
+                    report::group(e.std_error, d),
                     report::group(e.paths as f64, 0),
                     e.elapsed.as_secs_f64(),
                 )?;

@@ -464,14 +464,15 @@ fn write_table(out: &mut dyn Write, lines: &[Line]) -> io::Result<()> {
         let z = l.z().map_or("-".to_string(), |z| format!("{z:.2}"));
         let rel = l.relative().map_or("-".to_string(), |r| format!("{:.3}%", 100.0 * r));
         let note = if l.message.is_empty() { String::new() } else { format!("  ({})", l.message) };
+        let d = l.priced.as_ref().map_or(2, |p| report::decimals(p.estimate.std_error));
         writeln!(
             out,
             "{:<width$} {:>14} {:>14} {:>10} {:>12} {:>8} {:>9}  {}{note}",
             l.key,
-            cell(l.external, 2),
-            cell(l.priced.as_ref().map(|p| p.estimate.price), 2),
-            cell(l.priced.as_ref().map(|p| p.estimate.std_error), 2),
-            cell(l.difference(), 2),
+            cell(l.external, d),
+            cell(l.priced.as_ref().map(|p| p.estimate.price), d),
+            cell(l.priced.as_ref().map(|p| p.estimate.std_error), d),
+            cell(l.difference(), d),
             z,
             rel,
             l.verdict.word(),
