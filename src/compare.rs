@@ -16,6 +16,7 @@ use serde_json::json;
 use crate::batch::Row;
 use crate::diagnostic::Diagnostic;
 use crate::report::{self, Format, Priced, CAUTION};
+use crate::sim::market::read_regular_bytes;
 
 /// How far apart the prices may be regardless of the standard error.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -77,11 +78,9 @@ pub struct BadQuote {
 /// Reads a price list. A list that cannot be read at all, or lacks the needed columns, is
 /// an error; a bad row becomes a [`BadQuote`] and the rest are still compared.
 pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic> {
-    let mut reader = csv::ReaderBuilder::new()
-        .trim(csv::Trim::All)
-        .flexible(true)
-        .from_path(path)
+    let bytes = read_regular_bytes(path)
         .map_err(|e| Diagnostic::new(format!("cannot read the price list: {e}")).in_file(path))?;
+    let mut reader = csv::ReaderBuilder::new().trim(csv::Trim::All).flexible(true).from_reader(&bytes[..]);
     let headers = reader
         .headers()
         .map_err(|e| Diagnostic::new(format!("cannot read the header row of the price list: {e}")).in_file(path))?

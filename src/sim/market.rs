@@ -74,11 +74,28 @@ const MIN_PIVOT: f64 = 1e-12;
 /// Volatilities above this are surely a percentage typed as a number.
 const MAX_VOLATILITY: f64 = 5.0;
 
+/// Reads a text file, refusing anything that is not a regular file before opening it:
+/// a named pipe would block forever, a device would never end.
+pub fn read_regular_file(path: &Path) -> std::io::Result<String> {
+    String::from_utf8(read_regular_bytes(path)?)
+        .map_err(|_| std::io::Error::new(std::io::ErrorKind::InvalidData, "stream did not contain valid UTF-8"))
+}
+
+/// [`read_regular_file`] without the UTF-8 check.
+pub fn read_regular_bytes(path: &Path) -> std::io::Result<Vec<u8>> {
+    let meta = std::fs::metadata(path)?;
+    if !meta.is_file() {
+        let what = if meta.is_dir() { "a folder" } else { "not a regular file (a pipe, socket or device)" };
+        return Err(std::io::Error::new(std::io::ErrorKind::InvalidInput, format!("it is {what}")));
+    }
+    std::fs::read(path)
+}
+
 impl Market {
     /// Reads and validates a market file. Errors carry the file path and, where possible,
     /// the span of the offending value.
     pub fn load(path: &Path) -> Result<Market, Vec<Diagnostic>> {
-        let text = std::fs::read_to_string(path).map_err(|err| {
+        let text = read_regular_file(path).map_err(|err| {
             vec![Diagnostic::new(format!("cannot read the market file: {err}"))
                 .with_fix("check that the path is right and the file is readable")
                 .in_file(path)]
