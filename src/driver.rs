@@ -293,7 +293,9 @@ fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
         format!("--output {shown}: the folder {} cannot be used: {e}\n  fix: create the folder first, or name a file in an existing one\n", dir.display())
     })?;
     let target = folder.join(name);
-    if let Some(input) = inputs.iter().find(|i| fs::canonicalize(i).is_ok_and(|c| c == target)) {
+    let same_file =
+        |input: &Path| fs::canonicalize(input).is_ok_and(|c| c == target) || same_inode(input, output).unwrap_or(false);
+    if let Some(input) = inputs.iter().find(|i| same_file(i)) {
         return Err(format!(
             "--output {shown} is the input {}; writing the report there would destroy it\n  fix: name another file for the report\n",
             input.display()
@@ -305,6 +307,21 @@ fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
             dir.display()
         )
     })
+}
+
+/// Whether two existing paths are one file (a hard link has another canonical path).
+fn same_inode(a: &Path, b: &Path) -> Option<bool> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        let (a, b) = (fs::metadata(a).ok()?, fs::metadata(b).ok()?);
+        Some(a.dev() == b.dev() && a.ino() == b.ino())
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = (a, b);
+        None
+    }
 }
 
 /// The `--output` checks of `price` and `compare`, reported with exit status 2.

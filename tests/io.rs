@@ -183,6 +183,13 @@ fn output_never_overwrites_an_input() {
         "{stderr}"
     );
 
+    // A hard link to the payoff is the payoff.
+    let hard = dir.join("hard.csv");
+    std::fs::hard_link(&payoff, &hard).unwrap();
+    let (_, stderr, code) = run(&["price", p, "--output", hard.to_str().unwrap()]);
+    assert_eq!(code, Some(2));
+    assert!(stderr.contains("is the input"), "{stderr}");
+
     // The market file given with --market, and the one the payoff names.
     let m = dir.join("market.toml");
     let (_, stderr, code) = run(&["price", p, "--market", m.to_str().unwrap(), "--output", m.to_str().unwrap()]);
