@@ -7,10 +7,12 @@
 //! walked in sorted order) whatever the thread count, and each simulation is
 //! deterministic, so a batch gives the same bits on 1 thread or many.
 
+use std::collections::HashSet;
 use std::fs;
 use std::io::{self, IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
+use std::sync::Mutex;
 
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use rayon::prelude::*;
@@ -120,49 +122,165 @@ fn place(d: &Diagnostic, source: Option<&str>) -> String {
 
 /// Expands the inputs into payoff files: a file stands for itself, a folder for every
 /// `.payoff` file below it (sorted, so the order is the same everywhere). An input that
-/// does not exist, or a folder without payoff files, becomes an error.
+/// does not exist, a folder without payoff files, a folder that cannot be read, or a
+/// `.payoff` that is not a regular file (a FIFO, a device, a broken link) becomes an error
+/// row of its own; the rest are still priced.
+///
+/// Links are followed, but each file is priced once (by its canonical path, under the
+/// first name it was found by) and each folder is walked once, so a link back up the tree
+/// ends the walk instead of looping.
 pub fn collect_files(inputs: &[PathBuf]) -> Vec<Result<PathBuf, Failure>> {
-    let mut out = Vec::new();
+    let mut walk = Walk::default();
     for input in inputs {
-        if input.is_dir() {
-            let mut found = Vec::new();
-            match walk(input, &mut found) {
-                Ok(()) if found.is_empty() => out.push(Err(input_failure(
-                    input,
-                    "this folder holds no `.payoff` files",
-                    "name the payoff files, or a folder that holds some",
-                ))),
-                Ok(()) => out.extend(found.into_iter().map(Ok)),
-                Err(e) => out.push(Err(input_failure(
-                    input,
-                    &format!("cannot read this folder: {e}"),
-                    "check the path and its permissions",
-                ))),
+        match fs::metadata(input) {
+            Ok(m) if m.is_dir() => {
+                if fs::canonicalize(input).is_ok_and(|c| walk.folders.contains(&c)) {
+                    continue; // given twice, or inside a folder given before
+                }
+                let before = walk.found;
+                walk.folder(input);
+                if walk.found == before {
+                    walk.out.push(Err(input_failure(
+                        input,
+                        "this folder holds no `.payoff` files",
+                        "name the payoff files, or a folder that holds some",
+                    )));
+                }
             }
-        } else if input.exists() {
-            out.push(Ok(input.clone()));
-        } else {
-            out.push(Err(input_failure(input, "no such file or folder", "check the path")));
+            Ok(m) => walk.file(input, &m),
+            Err(e) if e.kind() == io::ErrorKind::NotFound && fs::symlink_metadata(input).is_err() => {
+                walk.out.push(Err(input_failure(input, "no such file or folder", "check the path")))
+            }
+            Err(e) => walk.out.push(Err(unreadable(input, &e))),
         }
     }
-    out
+    walk.out
+}
+
+/// The state of a walk over the inputs.
+#[derive(Default)]
+struct Walk {
+    out: Vec<Result<PathBuf, Failure>>,
+    /// Canonical paths of the files already taken, and of the folders already walked.
+    files: HashSet<PathBuf>,
+    folders: HashSet<PathBuf>,
+    /// Payoff files met (taken, refused or seen before), to tell an empty folder.
+    found: usize,
+}
+
+impl Walk {
+    /// Takes a file (named directly, or found with a `.payoff` extension).
+    fn file(&mut self, path: &Path, meta: &fs::Metadata) {
+        self.found += 1;
+        if !meta.is_file() {
+            self.out.push(Err(input_failure(
+                path,
+                &format!("not a regular file ({})", kind_of(meta)),
+                "give a plain payoff file; pathfold does not read pipes, sockets or devices",
+            )));
+            return;
+        }
+        match fs::canonicalize(path) {
+            // Already taken under another name (a link, or the same file given twice).
+            Ok(canonical) if self.files.contains(&canonical) => {}
+            Ok(canonical) => {
+                self.files.insert(canonical);
+                self.out.push(Ok(path.to_path_buf()));
+            }
+            Err(e) => self.out.push(Err(unreadable(path, &e))),
+        }
+    }
+
+    /// Walks a folder depth first, in sorted order, without recursion (a deep tree cannot
+    /// exhaust the stack); a folder already walked, by any name, is skipped.
+    fn folder(&mut self, root: &Path) {
+        let mut stack: Vec<std::vec::IntoIter<PathBuf>> = Vec::new();
+        if let Some(entries) = self.entries(root) {
+            stack.push(entries);
+        }
+        while let Some(top) = stack.last_mut() {
+            let Some(path) = top.next() else {
+                stack.pop();
+                continue;
+            };
+            let payoff = path.extension().is_some_and(|x| x == "payoff");
+            match fs::metadata(&path) {
+                Ok(m) if m.is_dir() => {
+                    if let Some(entries) = self.entries(&path) {
+                        stack.push(entries);
+                    }
+                }
+                Ok(m) if payoff => self.file(&path, &m),
+                Ok(_) => {}
+                Err(e) if payoff => {
+                    self.found += 1;
+                    self.out.push(Err(unreadable(&path, &e)));
+                }
+                // A broken link or an unreadable entry without the extension is not ours.
+                Err(_) => {}
+            }
+        }
+    }
+
+    /// The sorted entries of a folder not walked before; a folder that cannot be read
+    /// becomes an error row.
+    fn entries(&mut self, dir: &Path) -> Option<std::vec::IntoIter<PathBuf>> {
+        let canonical = match fs::canonicalize(dir) {
+            Ok(c) => c,
+            Err(e) => {
+                self.found += 1;
+                self.out.push(Err(folder_failure(dir, &e)));
+                return None;
+            }
+        };
+        if !self.folders.insert(canonical) {
+            return None;
+        }
+        let read: io::Result<Vec<PathBuf>> =
+            fs::read_dir(dir).and_then(|entries| entries.map(|e| e.map(|e| e.path())).collect());
+        match read {
+            Ok(mut paths) => {
+                paths.sort();
+                Some(paths.into_iter())
+            }
+            Err(e) => {
+                self.found += 1;
+                self.out.push(Err(folder_failure(dir, &e)));
+                None
+            }
+        }
+    }
+}
+
+fn kind_of(meta: &fs::Metadata) -> &'static str {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::FileTypeExt;
+        let t = meta.file_type();
+        if t.is_fifo() {
+            return "a named pipe";
+        }
+        if t.is_socket() {
+            return "a socket";
+        }
+        if t.is_block_device() || t.is_char_device() {
+            return "a device";
+        }
+    }
+    let _ = meta;
+    "not a file or folder"
+}
+
+fn unreadable(path: &Path, e: &io::Error) -> Failure {
+    input_failure(path, &format!("cannot read this file: {e}"), "check the path, its links and its permissions")
+}
+
+fn folder_failure(path: &Path, e: &io::Error) -> Failure {
+    input_failure(path, &format!("cannot read this folder: {e}"), "check the path and its permissions")
 }
 
 fn input_failure(path: &Path, message: &str, fix: &str) -> Failure {
     Failure { diagnostics: vec![Diagnostic::new(message).with_fix(fix).in_file(path)], source: None, internal: false }
-}
-
-fn walk(dir: &Path, found: &mut Vec<PathBuf>) -> io::Result<()> {
-    let mut entries: Vec<PathBuf> = fs::read_dir(dir)?.map(|e| e.map(|e| e.path())).collect::<Result<_, _>>()?;
-    entries.sort();
-    for path in entries {
-        if path.is_dir() {
-            walk(&path, found)?;
-        } else if path.extension().is_some_and(|x| x == "payoff") {
-            found.push(path);
-        }
-    }
-    Ok(())
 }
 
 /// A progress bar on stderr, drawn only when stderr is a terminal.
@@ -375,10 +493,11 @@ fn write_table(out: &mut dyn Write, rows: &[Row]) -> io::Result<()> {
         match &row.outcome {
             Ok(p) => {
                 let e = &p.estimate;
+                let d = report::decimals(e.std_error);
                 let mut status = "ok".to_string();
                 if let Some(t) = &p.record.target {
                     if !t.met {
-                        status = format!("ok, error target {} not met", report::group(t.std_error, 2));
+                        status = format!("ok, error target {} not met", report::group(t.std_error, d));
                     }
                 }
                 writeln!(
@@ -386,9 +505,9 @@ fn write_table(out: &mut dyn Write, rows: &[Row]) -> io::Result<()> {
                     "{:<width$}  {:<36} {:>16} {:>9.4}% {:>12} {:>11} {:>6.2}  {status}",
                     row.file,
                     clip(&p.product, 36),
-                    format!("{} {}", report::group(e.price, 2), p.currency),
+                    format!("{} {}", report::group(e.price, d), p.currency),
                     p.percent_of_notional(),
-                    report::group(e.std_error, 2),
+                    report::group(e.std_error, d),
                     report::group(e.paths as f64, 0),
                     e.elapsed.as_secs_f64(),
                 )?;
@@ -419,23 +538,66 @@ fn clip(s: &str, n: usize) -> String {
     }
 }
 
+/// The temporary file being written, if any: removed by the signal handler.
+static PENDING: Mutex<Option<PathBuf>> = Mutex::new(None);
+
+/// The temporary file [`write_atomically`] writes `path` through.
+fn temporary(path: &Path) -> io::Result<PathBuf> {
+    let dir = path.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    let name = path.file_name().ok_or_else(|| io::Error::new(io::ErrorKind::InvalidInput, "not a file name"))?;
+    Ok(dir.join(format!(".{}.{}.tmp", name.to_string_lossy(), std::process::id())))
+}
+
+/// Checks, before any pricing, that the file `path` can be written: creates its temporary
+/// file and removes it again.
+pub fn check_writable(path: &Path) -> io::Result<()> {
+    let tmp = temporary(path)?;
+    fs::OpenOptions::new().write(true).create_new(true).open(&tmp)?;
+    fs::remove_file(&tmp)
+}
+
+/// On SIGINT or SIGTERM (and SIGHUP), removes the temporary file of a write in progress
+/// and exits with status 130, so an interrupted run leaves neither half a report nor a
+/// stray `.NAME.<pid>.tmp`. Installed once, only when there is an `--output`.
+pub fn clean_up_on_signal() {
+    let _ = ctrlc::set_handler(|| {
+        // Taking the lock waits for a temporary file being created, and keeps another from
+        // being created after this removal.
+        let pending = PENDING.lock().unwrap_or_else(|e| e.into_inner());
+        if let Some(tmp) = pending.as_ref() {
+            let _ = fs::remove_file(tmp);
+        }
+        eprintln!("interrupted: nothing written");
+        std::process::exit(130);
+    });
+}
+
 /// Writes a file whole or not at all: into a temporary file beside it, flushed to disk,
 /// then renamed over the target, so a run killed half-way leaves the old file (or none).
 pub fn write_atomically(path: &Path, write: impl FnOnce(&mut dyn Write) -> io::Result<()>) -> io::Result<()> {
-    let dir = path.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
-    let name = path.file_name().ok_or_else(|| io::Error::new(io::ErrorKind::InvalidInput, "not a file name"))?;
-    let tmp = dir.join(format!(".{}.{}.tmp", name.to_string_lossy(), std::process::id()));
+    let tmp = temporary(path)?;
     let result = (|| {
-        let file = fs::File::create(&tmp)?;
+        let file = {
+            let mut pending = PENDING.lock().unwrap_or_else(|e| e.into_inner());
+            let file = fs::File::create(&tmp)?;
+            *pending = Some(tmp.clone());
+            file
+        };
+        // Test hook: holds the write open so a test can signal the process mid-write.
+        if std::env::var_os("PATHFOLD_TEST_PAUSE_WRITE").is_some() {
+            std::thread::sleep(std::time::Duration::from_secs(30));
+        }
         let mut buf = io::BufWriter::new(file);
         write(&mut buf)?;
         let file = buf.into_inner().map_err(|e| e.into_error())?;
         file.sync_all()?;
         fs::rename(&tmp, path)
     })();
+    let mut pending = PENDING.lock().unwrap_or_else(|e| e.into_inner());
     if result.is_err() {
         let _ = fs::remove_file(&tmp);
     }
+    *pending = None;
     result
 }
 

@@ -163,6 +163,8 @@ pub struct StateDef {
 pub struct Product {
     pub name: String,
     pub currency: String,
+    /// Where the payoff names its currency, for market errors about it.
+    pub currency_span: Span,
     pub notional: f64,
     pub underlyings: Vec<Name>,
     /// Default market file named by the payoff, relative to the payoff file.
@@ -309,6 +311,7 @@ impl Default for Product {
         Product {
             name: String::new(),
             currency: String::new(),
+            currency_span: Span::default(),
             notional: 1.0,
             underlyings: Vec::new(),
             market: None,
@@ -384,6 +387,7 @@ impl Checker {
                         );
                     }
                     self.product.currency.clone_from(&code.text);
+                    self.product.currency_span = code.span;
                 }
                 Item::Underlyings(names) => {
                     self.once("underlyings", names[0].span);

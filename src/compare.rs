@@ -16,6 +16,7 @@ use serde_json::json;
 use crate::batch::Row;
 use crate::diagnostic::Diagnostic;
 use crate::report::{self, Format, Priced, CAUTION};
+use crate::sim::market::read_regular_bytes;
 
 /// How far apart the prices may be regardless of the standard error.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -77,11 +78,9 @@ pub struct BadQuote {
 /// Reads a price list. A list that cannot be read at all, or lacks the needed columns, is
 /// an error; a bad row becomes a [`BadQuote`] and the rest are still compared.
 pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic> {
-    let mut reader = csv::ReaderBuilder::new()
-        .trim(csv::Trim::All)
-        .flexible(true)
-        .from_path(path)
+    let bytes = read_regular_bytes(path)
         .map_err(|e| Diagnostic::new(format!("cannot read the price list: {e}")).in_file(path))?;
+    let mut reader = csv::ReaderBuilder::new().trim(csv::Trim::All).flexible(true).from_reader(&bytes[..]);
     let headers = reader
         .headers()
         .map_err(|e| Diagnostic::new(format!("cannot read the header row of the price list: {e}")).in_file(path))?
@@ -123,7 +122,29 @@ pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic
             out.push(Err(bad("the row names neither a file nor a product (fix: fill in one of them)".into())));
             continue;
         }
+        let separator_fix = "fix: write plain decimals such as `79321.93`, or put the price in double quotes";
+        // An unquoted `170,506.83` is two fields: with every column present the row is too
+        // long; without a tolerance value it would read as price 170, tolerance 506.83.
+        if record.len() > headers.len() {
+            let example = price_col
+                .and_then(|c| split_number(record.get(c)?, record.get(c + 1)?))
+                .map_or("such as `1,250.00`".to_string(), |n| format!("(`{n}`)"));
+            out.push(Err(bad(format!(
+                "the row has {} fields but the header names {} columns; a price written with a thousands separator {example} splits into two fields ({separator_fix})",
+                record.len(),
+                headers.len()
+            ))));
+            continue;
+        }
         let price_text = get(price_col).unwrap_or_default();
+        if let Some(tolerance_text) = get(tol_col).filter(|_| tol_col == price_col.map(|c| c + 1)) {
+            if let Some(n) = split_number(&price_text, &tolerance_text) {
+                out.push(Err(bad(format!(
+                    "the price `{price_text}` and the tolerance `{tolerance_text}` read as one number with a thousands separator, `{n}` ({separator_fix}; for a price of {price_text} with a tolerance of {tolerance_text} write the price as `{price_text}.0`)"
+                ))));
+                continue;
+            }
+        }
         let price = match price_text.replace('_', "").parse::<f64>() {
             Ok(p) if p.is_finite() => p,
             _ => {
@@ -148,6 +169,17 @@ pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic
         out.push(Ok(Quote { line, file, product, price, tolerance }));
     }
     Ok(out)
+}
+
+/// `170` and `506.83` → `170,506.83`: two fields that are one number whose thousands
+/// separator was taken for a field separator (1 to 3 digits, then 3 digits and maybe a
+/// decimal part).
+fn split_number(head: &str, tail: &str) -> Option<String> {
+    let digits = head.strip_prefix('-').unwrap_or(head);
+    let head_ok = (1..=3).contains(&digits.len()) && digits.bytes().all(|b| b.is_ascii_digit());
+    let (int, frac) = tail.split_once('.').unwrap_or((tail, ""));
+    let tail_ok = int.len() == 3 && int.bytes().all(|b| b.is_ascii_digit()) && frac.bytes().all(|b| b.is_ascii_digit());
+    (head_ok && tail_ok).then(|| format!("{head},{tail}"))
 }
 
 /// The verdict on one line of the comparison.
@@ -431,14 +463,15 @@ fn write_table(out: &mut dyn Write, lines: &[Line]) -> io::Result<()> {
         let z = l.z().map_or("-".to_string(), |z| format!("{z:.2}"));
         let rel = l.relative().map_or("-".to_string(), |r| format!("{:.3}%", 100.0 * r));
         let note = if l.message.is_empty() { String::new() } else { format!("  ({})", l.message) };
+        let d = l.priced.as_ref().map_or(2, |p| report::decimals(p.estimate.std_error));
         writeln!(
             out,
             "{:<width$} {:>14} {:>14} {:>10} {:>12} {:>8} {:>9}  {}{note}",
             l.key,
-            cell(l.external, 2),
-            cell(l.priced.as_ref().map(|p| p.estimate.price), 2),
-            cell(l.priced.as_ref().map(|p| p.estimate.std_error), 2),
-            cell(l.difference(), 2),
+            cell(l.external, d),
+            cell(l.priced.as_ref().map(|p| p.estimate.price), d),
+            cell(l.priced.as_ref().map(|p| p.estimate.std_error), d),
+            cell(l.difference(), d),
             z,
             rel,
             l.verdict.word(),

@@ -171,8 +171,26 @@ pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path
     let valuation = market.valuation_date;
     // Underlyings from the market.
     let mut assets = Vec::new();
+    let market_name = market_file.display();
     for u in &product.underlyings {
         match market.underlying(&u.text) {
+            // Until quanto pricing exists, a stock quoted in another currency would silently
+            // drift at the payoff currency's rate: refused.
+            Some(m) if !product.currency.is_empty() && m.currency != product.currency => {
+                errors.push(
+                    Diagnostic::at(
+                        u.span,
+                        format!(
+                            "`{}` is quoted in {} (market file {market_name}) but this payoff pays in {}; pathfold does not price payoffs in another currency than their underlyings (quanto)",
+                            u.text, m.currency, product.currency
+                        ),
+                    )
+                    .with_fix(format!(
+                        "write `currency {}` in the payoff, or use an underlying quoted in {}; if the market file is wrong, correct `currency` under [underlyings.{}]",
+                        m.currency, product.currency, u.text
+                    )),
+                );
+            }
             Some(m) => assets.push(AssetModel {
                 name: u.text.clone(),
                 spot: m.spot,
@@ -190,8 +208,11 @@ pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path
     let rate = market.rate(&product.currency);
     if rate.is_none() && !product.currency.is_empty() {
         errors.push(
-            Diagnostic::new(format!("the market has no rate for {}", product.currency))
-                .with_fix(format!("add `{} = 0.03` (for example) under [rates] in the market file", product.currency)),
+            Diagnostic::at(
+                product.currency_span,
+                format!("the market file {market_name} has no rate for {}", product.currency),
+            )
+            .with_fix(format!("add `{} = 0.03` (for example) under [rates] in {market_name}", product.currency)),
         );
     }
     if !errors.is_empty() {

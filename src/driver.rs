@@ -18,7 +18,8 @@ use crate::compare;
 use crate::compile;
 use crate::diagnostic::{render_all, Diagnostic};
 use crate::report::{self, Format, Priced, Record, TargetOutcome};
-use crate::sim::{self, market::Market, Settings};
+use crate::sim::market::{read_regular_bytes, read_regular_file, Market};
+use crate::sim::{self, Settings};
 use crate::syntax;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -65,7 +66,7 @@ pub struct CheckArgs {
     /// Random seed.
     #[arg(long, default_value_t = sim::DEFAULT_SEED)]
     pub seed: u64,
-    /// Worker threads (default: all cores).
+    /// Worker threads, 1 to 1024 (default: all cores).
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
     /// Output format.
@@ -104,7 +105,7 @@ pub struct PricingArgs {
     /// Do not use control variates.
     #[arg(long)]
     pub no_control: bool,
-    /// Worker threads (default: all cores).
+    /// Worker threads, 1 to 1024 (default: all cores).
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
     /// Output format.
@@ -159,7 +160,7 @@ fn check_command(args: &CheckArgs) -> ExitCode {
     let outcomes = match with_threads(args.threads, || crate::validate::run(&args.folder, &settings)) {
         Ok(Ok(o)) => o,
         Ok(Err(d)) => {
-            let text = d.file.as_ref().and_then(|f| fs::read_to_string(f).ok());
+            let text = d.file.as_ref().and_then(|f| read_regular_file(f).ok());
             eprint!("{}", d.render(text.as_deref()));
             return ExitCode::from(2);
         }
@@ -181,10 +182,24 @@ fn check_command(args: &CheckArgs) -> ExitCode {
     }
 }
 
+/// The most worker threads `--threads` accepts: far more than any machine pathfold runs on
+/// has cores, and few enough to start at once.
+pub const MAX_THREADS: usize = 1024;
+
+/// Checks `--threads` before anything is read or priced.
+fn check_threads(threads: Option<usize>) -> Result<(), String> {
+    match threads {
+        Some(n) if !(1..=MAX_THREADS).contains(&n) => {
+            Err(format!("--threads must be between 1 and {MAX_THREADS} (got {n}); leave it out to use every core"))
+        }
+        _ => Ok(()),
+    }
+}
+
 fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -> Result<T, String> {
+    check_threads(threads)?;
     match threads {
         None => Ok(f()),
-        Some(0) => Err("--threads must be at least 1".into()),
         Some(n) => rayon::ThreadPoolBuilder::new()
             .num_threads(n)
             .build()
@@ -212,6 +227,7 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
         control_variates: !args.no_control,
     };
     settings.validate().map_err(|e| e + "\n")?;
+    check_threads(args.threads).map_err(|e| e + "\n")?;
     let target = match &args.target_se {
         Some(t) => Some(Target::parse(t).map_err(|e| format!("--target-se {t}: {e}\n"))?),
         None => None,
@@ -223,25 +239,136 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
 }
 
 /// Writes a report to stdout, or atomically to `--output`; returns the exit status on failure.
+/// A report that cannot go to `--output` goes to stdout instead, so the priced results are
+/// never lost.
 fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>) -> Result<(), ExitCode> {
+    let to_stdout = || {
+        let stdout = io::stdout();
+        let mut out = stdout.lock();
+        write(&mut out).and_then(|()| out.flush())
+    };
     let result = match output {
         Some(path) => batch::write_atomically(path, |w| write(w)),
-        None => {
-            let stdout = io::stdout();
-            let mut out = stdout.lock();
-            write(&mut out).and_then(|()| out.flush())
-        }
+        None => to_stdout(),
     };
     match result {
         Ok(()) => Ok(()),
         Err(e) if output.is_none() && e.kind() == io::ErrorKind::BrokenPipe => Ok(()),
         Err(e) => {
             match output {
-                Some(path) => eprintln!("could not write {}: {e}", path.display()),
+                Some(path) => {
+                    eprintln!("could not write {}: {e}; the report follows on stdout", path.display());
+                    let _ = to_stdout();
+                }
                 None => eprintln!("could not write the report: {e}"),
             }
             Err(ExitCode::from(1))
         }
+    }
+}
+
+/// Checks `--output` before anything is priced: it must not be one of the inputs, must not
+/// be anything but a regular file if it exists (a link, a folder or a device is refused,
+/// never replaced), and its folder must take a new file. `inputs` are the payoff files, the
+/// market file and the price list.
+fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
+    let shown = output.display();
+    let name = output
+        .file_name()
+        .ok_or_else(|| format!("--output {shown}: not a file name\n  fix: name a file, e.g. --output prices.csv\n"))?;
+    let dir = output.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    match fs::symlink_metadata(output) {
+        Ok(m) if !m.file_type().is_file() => {
+            let what = if m.file_type().is_symlink() {
+                "a symbolic link"
+            } else if m.is_dir() {
+                "a folder"
+            } else {
+                "not a regular file (a pipe, socket or device)"
+            };
+            return Err(format!(
+                "--output {shown}: it exists and is {what}; pathfold only ever replaces a regular file\n  fix: name a new file, or a regular file to replace\n"
+            ));
+        }
+        Ok(_) => {}
+        Err(e) if e.kind() == io::ErrorKind::NotFound => {}
+        Err(e) => return Err(format!("--output {shown}: {e}\n  fix: check the path and its permissions\n")),
+    }
+    let folder = fs::canonicalize(dir).map_err(|e| {
+        format!("--output {shown}: the folder {} cannot be used: {e}\n  fix: create the folder first, or name a file in an existing one\n", dir.display())
+    })?;
+    let target = folder.join(name);
+    let same_file =
+        |input: &Path| fs::canonicalize(input).is_ok_and(|c| c == target) || same_inode(input, output).unwrap_or(false);
+    if let Some(input) = inputs.iter().find(|i| same_file(i)) {
+        return Err(format!(
+            "--output {shown} is the input {}; writing the report there would destroy it\n  fix: name another file for the report\n",
+            input.display()
+        ));
+    }
+    batch::check_writable(output).map_err(|e| {
+        format!(
+            "--output {shown}: cannot write in the folder {}: {e}\n  fix: name a file in a folder you can write to\n",
+            dir.display()
+        )
+    })
+}
+
+/// Whether two existing paths are one file (a hard link has another canonical path).
+fn same_inode(a: &Path, b: &Path) -> Option<bool> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        let (a, b) = (fs::metadata(a).ok()?, fs::metadata(b).ok()?);
+        Some(a.dev() == b.dev() && a.ino() == b.ino())
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = (a, b);
+        None
+    }
+}
+
+/// The `--output` checks of `price` and `compare`, reported with exit status 2.
+fn checked_output(
+    output: Option<&Path>,
+    files: &[Result<PathBuf, Failure>],
+    others: &[Option<&Path>],
+) -> Result<(), ExitCode> {
+    let Some(output) = output else {
+        return Ok(());
+    };
+    let mut inputs: Vec<&Path> = files.iter().filter_map(|f| f.as_ref().ok().map(PathBuf::as_path)).collect();
+    inputs.extend(others.iter().flatten());
+    check_output(output, &inputs).map_err(|e| {
+        eprint!("{e}");
+        ExitCode::from(2)
+    })?;
+    batch::clean_up_on_signal();
+    Ok(())
+}
+
+/// After pricing: the market files the payoffs named are inputs too. If `--output` is one of
+/// them the report goes to stdout instead, and the exit status is 2.
+fn output_after_pricing<'a>(output: Option<&'a Path>, rows: &[batch::Row]) -> Result<Option<&'a Path>, ()> {
+    let Some(out) = output else {
+        return Ok(None);
+    };
+    let target = fs::canonicalize(out).ok();
+    let clash = rows
+        .iter()
+        .filter_map(|r| r.outcome.as_ref().ok())
+        .find(|p| target.is_some() && fs::canonicalize(&p.market_file).ok() == target);
+    match clash {
+        Some(p) => {
+            eprintln!(
+                "--output {} is the market file of {}; writing the report there would destroy it: the report follows on stdout\n  fix: name another file for the report",
+                out.display(),
+                p.file
+            );
+            Err(())
+        }
+        None => Ok(Some(out)),
     }
 }
 
@@ -252,34 +379,41 @@ fn price_command(args: &PriceArgs) -> ExitCode {
         Err(code) => return code,
     };
     let single = args.files.len() == 1 && !args.files[0].is_dir();
-    let rows = match price_inputs(&args.files, &request, p.threads, !single) {
+    let files = batch::collect_files(&args.files);
+    if let Err(code) = checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]) {
+        return code;
+    }
+    let rows = match price_inputs(files, &request, p.threads, !single) {
         Ok(rows) => rows,
         Err(code) => return code,
     };
+    let output = output_after_pricing(p.output.as_deref(), &rows);
     let written = if single && p.format != Format::Csv {
         match &rows[0].outcome {
-            Ok(priced) => emit(p.output.as_deref(), |w| report::write_one(w, priced, p.format)),
+            Ok(priced) => emit(output.unwrap_or(None), |w| report::write_one(w, priced, p.format)),
             Err(_) => Ok(()),
         }
     } else {
-        emit(p.output.as_deref(), |w| batch::write_rows(w, &rows, p.format))
+        emit(output.unwrap_or(None), |w| batch::write_rows(w, &rows, p.format))
     };
     if let Err(code) = written {
         return code;
     }
+    if output.is_err() {
+        return ExitCode::from(2);
+    }
     batch::exit_status(&rows)
 }
 
-/// Prices every payoff file found in `inputs` on the thread pool, with a progress bar when
+/// Prices the payoff files found in the inputs on the thread pool, with a progress bar when
 /// `progress` (and stderr is a terminal); the diagnostics of failed files go to stderr.
 fn price_inputs(
-    inputs: &[PathBuf],
+    files: Vec<Result<PathBuf, Failure>>,
     request: &batch::Request,
     threads: Option<usize>,
     progress: bool,
 ) -> Result<Vec<batch::Row>, ExitCode> {
     let rows = with_threads(threads, || {
-        let files = batch::collect_files(inputs);
         let bar = batch::Progress::new(files.len(), progress);
         let rows = batch::price_all(files, request, &bar);
         bar.done();
@@ -324,7 +458,7 @@ fn compare_command(args: &CompareArgs) -> ExitCode {
     let list = match compare::read_list(&args.prices) {
         Ok(l) => l,
         Err(d) => {
-            eprint!("{}", d.render(fs::read_to_string(&args.prices).ok().as_deref()));
+            eprint!("{}", d.render(read_regular_file(&args.prices).ok().as_deref()));
             return ExitCode::from(2);
         }
     };
@@ -333,13 +467,21 @@ fn compare_command(args: &CompareArgs) -> ExitCode {
     } else {
         args.files.clone()
     };
-    let rows = match price_inputs(&inputs, &request, p.threads, true) {
+    let files = batch::collect_files(&inputs);
+    if let Err(code) = checked_output(p.output.as_deref(), &files, &[p.market.as_deref(), Some(&args.prices)]) {
+        return code;
+    }
+    let rows = match price_inputs(files, &request, p.threads, true) {
         Ok(rows) => rows,
         Err(code) => return code,
     };
+    let output = output_after_pricing(p.output.as_deref(), &rows);
     let lines = compare::compare(&list, &rows, args.max_z);
-    if let Err(code) = emit(p.output.as_deref(), |w| compare::write(w, &lines, p.format)) {
+    if let Err(code) = emit(output.unwrap_or(None), |w| compare::write(w, &lines, p.format)) {
         return code;
+    }
+    if output.is_err() {
+        return ExitCode::from(2);
     }
     compare::exit_status(&lines)
 }
@@ -363,7 +505,7 @@ pub fn price_file_to(
     settings: &Settings,
     target: Option<(Target, u64)>,
 ) -> Result<Priced, Failure> {
-    let bytes = fs::read(file).map_err(|e| {
+    let bytes = read_regular_bytes(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
     let source =
@@ -386,7 +528,7 @@ pub fn price_file_to(
     let market_data = match Market::load(&market_path) {
         Ok(m) => m,
         Err(ds) => {
-            let text = fs::read_to_string(&market_path).ok();
+            let text = read_regular_file(&market_path).ok();
             let ds = ds.into_iter().map(|d| d.in_file(&market_path)).collect();
             return Err(Failure::input(ds, text));
         }
@@ -395,12 +537,12 @@ pub fn price_file_to(
         // Errors in the market (a correlation pair) name the market file; the rest point into the payoff.
         let market_side = ds.iter().any(|d| d.file.as_deref() == Some(market_path.as_path()));
         if market_side {
-            Failure::input(ds, fs::read_to_string(&market_path).ok())
+            Failure::input(ds, read_regular_file(&market_path).ok())
         } else {
             Failure::input(in_file(ds), Some(source.clone()))
         }
     })?;
-    let market_bytes = fs::read(&market_path).map_err(|e| {
+    let market_bytes = crate::sim::market::read_regular_bytes(&market_path).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the market file: {e}")).in_file(&market_path)], None)
     })?;
     let (estimate, target) = match target {

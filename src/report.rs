@@ -153,6 +153,8 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     let e = &p.estimate;
     let (lo, hi) = p.interval();
     let ccy = &p.currency;
+    // The price and its interval carry as many decimals as the standard error needs.
+    let d = decimals(e.std_error);
     let title = if p.product.is_empty() { p.file.as_str() } else { p.product.as_str() };
     writeln!(out, "{title}")?;
     writeln!(out, "  file              {}", p.file)?;
@@ -168,14 +170,11 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         writeln!(out, "  parameters        {}", list.join(", "))?;
     }
     writeln!(out)?;
-    writeln!(out, "  price             {} {ccy}   ({:.4}% of notional)", group(e.price, 2), p.percent_of_notional())?;
-    writeln!(
-        out,
-        "  standard error    {} {ccy}   ({:.4}% of notional)",
-        group(e.std_error, 2),
-        100.0 * e.std_error / p.notional
-    )?;
-    writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, 2), group(hi, 2))?;
+    let se_percent = 100.0 * e.std_error / p.notional;
+    let dp = decimals(se_percent).max(4);
+    writeln!(out, "  price             {} {ccy}   ({:.dp$}% of notional)", group(e.price, d), p.percent_of_notional())?;
+    writeln!(out, "  standard error    {} {ccy}   ({se_percent:.dp$}% of notional)", group(e.std_error, d))?;
+    writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, d), group(hi, d))?;
     let pairs = if e.antithetic { " in antithetic pairs" } else { "" };
     writeln!(out, "  paths             {}{pairs}, seed {}", group(e.paths as f64, 0), e.seed)?;
     let controls = if e.controls.is_empty() { "none".to_string() } else { e.controls.join(", ") };
@@ -189,7 +188,7 @@ fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         writeln!(
             out,
             "  error target      {} {ccy}: {verdict} (at most {} paths)",
-            group(t.std_error, 2),
+            group(t.std_error, decimals(t.std_error)),
             group(t.max_paths as f64, 0)
         )?;
     }
@@ -346,6 +345,17 @@ pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -
     }
 }
 
+/// Decimals that show a standard error with at least two significant digits, and never
+/// fewer than two (cents): 763.53 → 2, 0.0034 → 4, 0.05 → 3. Prices and intervals are
+/// shown with the decimals of their standard error.
+pub fn decimals(std_error: f64) -> usize {
+    if !(std_error.is_finite() && std_error > 0.0) {
+        return 2;
+    }
+    // 12 decimals is far below any amount that matters, and keeps a tiny error printable.
+    (1 - std_error.log10().floor() as i64).clamp(2, 12) as usize
+}
+
 /// `1234567.891` → `1,234,567.89`.
 pub fn group(x: f64, decimals: usize) -> String {
     if !x.is_finite() {
@@ -382,5 +392,19 @@ mod tests {
         assert_eq!(group(-999.5, 0), "-1,000");
         assert_eq!(group(12.0, 2), "12.00");
         assert_eq!(group(-0.001, 2), "0.00");
+    }
+
+    #[test]
+    fn shows_two_significant_digits_of_the_standard_error() {
+        assert_eq!(decimals(763.53), 2);
+        assert_eq!(decimals(1.0), 2);
+        assert_eq!(decimals(0.1), 2);
+        assert_eq!(decimals(0.099), 3);
+        assert_eq!(decimals(0.05), 3);
+        assert_eq!(decimals(0.0034), 4);
+        assert_eq!(decimals(0.0), 2);
+        assert_eq!(decimals(f64::NAN), 2);
+        assert_eq!(decimals(1e-30), 12);
+        assert_eq!(group(0.0034, decimals(0.0034)), "0.0034");
     }
 }

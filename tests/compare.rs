@@ -157,3 +157,32 @@ fn a_bad_row_is_an_error_line_and_the_rest_go_on() {
     assert_eq!(lines[1]["verdict"], "error");
     assert!(lines[1]["message"].ends_with("bad_row.csv:3: the price `about 38k` is not a number (fix: write a plain decimal such as `79321.93`, no currency or thousands separators)"), "{:?}", lines[1]);
 }
+
+#[test]
+fn a_thousands_separator_that_splits_a_price_is_an_error_not_a_tolerance() {
+    // `170,506.83` unquoted: with a `tolerance` column left empty the row has one field too
+    // many; without it the price would read as 170 with a tolerance of 506.83.
+    let [call, ..] = references();
+    let text = format!(
+        "file,product,price,tolerance\n{},,{},\ndigital,,37,140.00,\ncall.payoff,,170,506.83\n",
+        call.0, call.1
+    );
+    let list = price_list("separator.csv", &text);
+    let o = pathfold(&[&["compare", list.to_str().unwrap()][..], &RUN[..]].concat());
+    assert_eq!(o.status.code(), Some(1));
+    let lines = rows(&o);
+    assert_eq!(lines[0]["verdict"], "agree");
+    assert_eq!(lines[1]["verdict"], "error");
+    assert!(
+        lines[1]["message"].ends_with("separator.csv:3: the row has 5 fields but the header names 4 columns; a price written with a thousands separator (`37,140.00`) splits into two fields (fix: write plain decimals such as `79321.93`, or put the price in double quotes)"),
+        "{:?}",
+        lines[1]
+    );
+    assert_eq!(lines[2]["verdict"], "error");
+    assert!(
+        lines[2]["message"].ends_with("separator.csv:4: the price `170` and the tolerance `506.83` read as one number with a thousands separator, `170,506.83` (fix: write plain decimals such as `79321.93`, or put the price in double quotes; for a price of 170 with a tolerance of 506.83 write the price as `170.0`)"),
+        "{:?}",
+        lines[2]
+    );
+    assert_eq!(lines[2]["external_price"], "");
+}

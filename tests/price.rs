@@ -232,3 +232,47 @@ fn the_table_report_shows_the_price_profile_and_caution() {
     }
     assert!(stdout.trim_end().ends_with("come first."), "the caution is the last line");
 }
+
+/// The number after `label` on the report line that starts with it, as written.
+fn shown<'a>(report: &'a str, label: &str) -> Vec<&'a str> {
+    let line = report.lines().find(|l| l.trim_start().starts_with(label)).unwrap_or_else(|| panic!("{report}"));
+    line.trim_start()[label.len()..]
+        .split_whitespace()
+        .filter(|w| w.starts_with(|c: char| c.is_ascii_digit()))
+        .collect()
+}
+
+fn decimals(number: &str) -> usize {
+    number.split_once('.').map_or(0, |(_, f)| f.len())
+}
+
+#[test]
+fn a_small_standard_error_is_shown_with_two_significant_digits() {
+    // A price near 11 with control variates has a standard error well under a cent: the
+    // table must not round it to 0.00, and the interval must not collapse to one number.
+    // Reference: Black–Scholes–Merton (src/closed_form, checked there against Hull's and
+    // Haug's worked examples) for S = K = 100, T = 1, r = 8%, b = 4%, σ = 25%.
+    let (stdout, stderr, code) = run(&["price", "payoffs/validation/call_atm.payoff", "--paths", "20000"]);
+    assert_eq!(code, Some(0), "{stderr}");
+    let se_text = shown(&stdout, "standard error")[0];
+    let se: f64 = se_text.parse().unwrap();
+    assert!(se > 0.0 && se < 0.01, "{stdout}");
+    let significant = se_text.trim_start_matches(['0', '.']).len();
+    assert!(significant >= 2, "standard error shown as {se_text}:\n{stdout}");
+    let price_text = shown(&stdout, "price")[0];
+    let interval = shown(&stdout, "95% interval");
+    assert_eq!(decimals(price_text), decimals(se_text), "{stdout}");
+    assert!(interval.iter().all(|x| decimals(x) == decimals(se_text)), "{stdout}");
+    assert_ne!(interval[0], interval[1], "{stdout}");
+    let price: f64 = price_text.parse().unwrap();
+    let reference = black_scholes(OptionKind::Call, 100.0, 100.0, 1.0, 0.08, 0.04, 0.25);
+    assert_within("call_atm", price, se, reference, 4.0);
+
+    // The batch table shows the same decimals.
+    let (stdout, _, code) =
+        run(&["price", "payoffs/validation/call_atm.payoff", "payoffs/validation/put_atm.payoff", "--paths", "20000"]);
+    assert_eq!(code, Some(0));
+    let row = stdout.lines().find(|l| l.starts_with("payoffs/validation/call_atm.payoff")).unwrap();
+    assert!(row.contains(&format!(" {price_text} USD ")), "{row}");
+    assert!(row.contains(&format!(" {se_text} ")), "{row}");
+}

@@ -15,6 +15,7 @@
 //! USD = 0.038
 //!
 //! [underlyings.ZPHX]
+//! currency = "USD"                      # ISO 4217 code the underlying is quoted in
 //! spot = 4250.0
 //! volatility = 0.18                     # annual, lognormal
 //! dividend_yield = 0.019                # continuous; 0 when absent
@@ -30,8 +31,10 @@ use crate::date::Date;
 use crate::diagnostic::{closest, Diagnostic, Span};
 
 /// One underlying's parameters, all finite: spot > 0, volatility in (0, 5].
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct Underlying {
+    /// The ISO 4217 code of the currency the underlying is quoted in.
+    pub currency: String,
     pub spot: f64,
     /// Annual lognormal volatility, as a fraction (0.18 for 18%).
     pub volatility: f64,
@@ -68,11 +71,28 @@ const MIN_PIVOT: f64 = 1e-12;
 /// Volatilities above this are surely a percentage typed as a number.
 const MAX_VOLATILITY: f64 = 5.0;
 
+/// Reads a text file, refusing anything that is not a regular file before opening it:
+/// a named pipe would block forever, a device would never end.
+pub fn read_regular_file(path: &Path) -> std::io::Result<String> {
+    String::from_utf8(read_regular_bytes(path)?)
+        .map_err(|_| std::io::Error::new(std::io::ErrorKind::InvalidData, "stream did not contain valid UTF-8"))
+}
+
+/// [`read_regular_file`] without the UTF-8 check.
+pub fn read_regular_bytes(path: &Path) -> std::io::Result<Vec<u8>> {
+    let meta = std::fs::metadata(path)?;
+    if !meta.is_file() {
+        let what = if meta.is_dir() { "a folder" } else { "not a regular file (a pipe, socket or device)" };
+        return Err(std::io::Error::new(std::io::ErrorKind::InvalidInput, format!("it is {what}")));
+    }
+    std::fs::read(path)
+}
+
 impl Market {
     /// Reads and validates a market file. Errors carry the file path and, where possible,
     /// the span of the offending value.
     pub fn load(path: &Path) -> Result<Market, Vec<Diagnostic>> {
-        let text = std::fs::read_to_string(path).map_err(|err| {
+        let text = read_regular_file(path).map_err(|err| {
             vec![Diagnostic::new(format!("cannot read the market file: {err}"))
                 .with_fix("check that the path is right and the file is readable")
                 .in_file(path)]
@@ -289,7 +309,7 @@ fn list_or_none(names: &[&str]) -> String {
 // Validation: from the spanned TOML tree to a `Market`, collecting every problem.
 
 const TOP_KEYS: &[&str] = &["valuation_date", "rates", "underlyings", "correlations"];
-const UNDERLYING_KEYS: &[&str] = &["spot", "volatility", "dividend_yield"];
+const UNDERLYING_KEYS: &[&str] = &["currency", "spot", "volatility", "dividend_yield"];
 
 struct Reader<'a> {
     file: &'a Path,
@@ -392,8 +412,9 @@ impl Reader<'_> {
                 // (so the sections are read first).
                 let misplaced = self.errors.iter().any(|d| d.message.starts_with("unknown key `valuation_date`"));
                 if !misplaced {
+                    // A missing key has no place of its own: the start of the file.
                     self.error(
-                        None,
+                        Some(Span::new(0, 0)),
                         "missing valuation_date".into(),
                         "add `valuation_date = YYYY-MM-DD` (a TOML date, no quotes) above the first [section]".into(),
                     );
@@ -494,14 +515,22 @@ impl Reader<'_> {
 
     fn underlying(&mut self, key: &Key, node: &Node) -> Option<Underlying> {
         let name = &key.name;
-        let example = format!("[underlyings.{name}] with spot, volatility and dividend_yield lines");
+        let example = format!("[underlyings.{name}] with currency, spot, volatility and dividend_yield lines");
         let entries = self.table(node, &format!("underlyings.{name}"), &example)?;
         let (mut spot, mut volatility, mut dividend_yield) = (None, None, Some(0.0));
+        let mut currency = None;
         let mut broken = false;
         // A misspelt key is already reported; don't report its field as missing too.
         let mut misspelt = Vec::new();
         for (field, value) in entries {
             let path = format!("underlyings.{name}.{}", field.name);
+            if field.name == "currency" {
+                match self.currency(value, &path) {
+                    Some(code) => currency = Some(code),
+                    None => broken = true,
+                }
+                continue;
+            }
             let slot = match field.name.as_str() {
                 "spot" => &mut spot,
                 "volatility" => &mut volatility,
@@ -547,10 +576,14 @@ impl Reader<'_> {
                 None => *slot = Some(x),
             }
         }
-        for (field, slot, example) in [("spot", spot, "spot = 100.0"), ("volatility", volatility, "volatility = 0.25")]
-        {
+        let given = [
+            ("currency", currency.is_some(), "currency = \"USD\""),
+            ("spot", spot.is_some(), "spot = 100.0"),
+            ("volatility", volatility.is_some(), "volatility = 0.25"),
+        ];
+        for (field, found, example) in given {
             let present = entries.iter().any(|(k, _)| k.name == field);
-            if slot.is_none() && !present && !misspelt.contains(&field) {
+            if !found && !present && !misspelt.contains(&field) {
                 self.error(
                     key.span.or(node.span),
                     format!("underlyings.{name} has no {field}"),
@@ -562,7 +595,27 @@ impl Reader<'_> {
         if broken {
             return None;
         }
-        Some(Underlying { spot: spot?, volatility: volatility?, dividend_yield: dividend_yield? })
+        Some(Underlying { currency: currency?, spot: spot?, volatility: volatility?, dividend_yield: dividend_yield? })
+    }
+
+    /// The ISO 4217 code of an underlying's `currency = "USD"`, or `None` with an error.
+    fn currency(&mut self, node: &Node, path: &str) -> Option<String> {
+        let example = "currency = \"USD\"";
+        let Kind::String(code) = &node.kind else {
+            let message = format!("{path} must be a currency code in quotes (got {})", node.kind.describe());
+            self.error(node.span, message, format!("write the ISO 4217 code in quotes, e.g. {example}"));
+            return None;
+        };
+        if code.len() == 3 && code.bytes().all(|b| b.is_ascii_uppercase()) {
+            return Some(code.clone());
+        }
+        let fix = if code.len() == 3 && code.bytes().all(|b| b.is_ascii_alphabetic()) {
+            format!("write the code in capitals: currency = \"{}\"", code.to_ascii_uppercase())
+        } else {
+            format!("use a three-letter ISO 4217 code, e.g. {example}")
+        };
+        self.error(node.span, format!("{path} `{code}` is not an ISO 4217 currency code"), fix);
+        None
     }
 
     #[allow(clippy::type_complexity)]
@@ -783,21 +836,25 @@ valuation_date = 2026-12-01          # TOML local date
 USD = 0.038
 
 [underlyings.ZPHX]
+currency = "USD"
 spot = 4250
 volatility = 0.18                     # annual, lognormal
 dividend_yield = 0.019                # continuous
 
 [underlyings.QMEN]
+currency = "USD"
 spot = 38.40
 volatility = 0.32
 dividend_yield = 0.031
 
 [underlyings.OSMP]
+currency = "USD"
 spot = 112.00
 volatility = 0.26
 dividend_yield = 0.012
 
 [underlyings.VNTL]
+currency = "USD"
 spot = 57.25
 volatility = 0.29
 
@@ -839,10 +896,22 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(m.rate("USD"), Some(0.038));
         assert_eq!(m.rate("EUR"), None);
         assert_eq!(m.underlying_names().collect::<Vec<_>>(), ["ZPHX", "QMEN", "OSMP", "VNTL"]);
-        assert_eq!(m.underlying("ZPHX"), Some(&Underlying { spot: 4250.0, volatility: 0.18, dividend_yield: 0.019 }));
-        assert_eq!(m.underlying("QMEN"), Some(&Underlying { spot: 38.40, volatility: 0.32, dividend_yield: 0.031 }));
-        assert_eq!(m.underlying("OSMP"), Some(&Underlying { spot: 112.0, volatility: 0.26, dividend_yield: 0.012 }));
-        assert_eq!(m.underlying("VNTL"), Some(&Underlying { spot: 57.25, volatility: 0.29, dividend_yield: 0.0 }));
+        assert_eq!(
+            m.underlying("ZPHX"),
+            Some(&Underlying { currency: "USD".into(), spot: 4250.0, volatility: 0.18, dividend_yield: 0.019 })
+        );
+        assert_eq!(
+            m.underlying("QMEN"),
+            Some(&Underlying { currency: "USD".into(), spot: 38.40, volatility: 0.32, dividend_yield: 0.031 })
+        );
+        assert_eq!(
+            m.underlying("OSMP"),
+            Some(&Underlying { currency: "USD".into(), spot: 112.0, volatility: 0.26, dividend_yield: 0.012 })
+        );
+        assert_eq!(
+            m.underlying("VNTL"),
+            Some(&Underlying { currency: "USD".into(), spot: 57.25, volatility: 0.29, dividend_yield: 0.0 })
+        );
         assert_eq!(m.correlation("ZPHX", "QMEN"), Some(0.55));
         assert_eq!(m.correlation("QMEN", "ZPHX"), Some(0.55));
         assert_eq!(m.correlation("OSMP", "VNTL"), Some(0.50));
@@ -894,6 +963,25 @@ VNTL = { OSMP = 0.50 }
     }
 
     #[test]
+    fn reads_and_checks_the_currency_of_each_underlying() {
+        let text = DEMO.replacen("[underlyings.QMEN]\ncurrency = \"USD\"", "[underlyings.QMEN]\ncurrency = \"EUR\"", 1);
+        let m = Market::from_toml(&text, file()).unwrap();
+        assert_eq!(m.underlying("QMEN").unwrap().currency, "EUR");
+        assert_eq!(m.underlying("ZPHX").unwrap().currency, "USD");
+
+        let text = DEMO.replacen("[underlyings.QMEN]\ncurrency = \"USD\"", "[underlyings.QMEN]\ncurrency = \"usd\"", 1);
+        let (d, at) = only_error(&text);
+        assert_eq!(d.message, "underlyings.QMEN.currency `usd` is not an ISO 4217 currency code");
+        assert_eq!(d.fix.unwrap(), "write the code in capitals: currency = \"USD\"");
+        assert_eq!(at, "\"usd\"");
+
+        let text = DEMO.replacen("[underlyings.QMEN]\ncurrency = \"USD\"", "[underlyings.QMEN]\ncurrency = 840", 1);
+        let (d, at) = only_error(&text);
+        assert_eq!(d.message, "underlyings.QMEN.currency must be a currency code in quotes (got a number)");
+        assert_eq!(at, "840");
+    }
+
+    #[test]
     fn negative_dividend_yield_is_allowed() {
         let m = Market::from_toml(&demo_with("dividend_yield = 0.031", "dividend_yield = -0.004"), file()).unwrap();
         assert_eq!(m.underlying("QMEN").unwrap().dividend_yield, -0.004);
@@ -903,7 +991,10 @@ VNTL = { OSMP = 0.50 }
     fn refuses_unknown_keys_naming_the_allowed_ones() {
         let (d, at) = only_error(&demo_with("volatility = 0.32", "volatilty = 0.32"));
         assert_eq!(d.message, "unknown key `volatilty` in [underlyings.QMEN]");
-        assert_eq!(d.fix.unwrap(), "did you mean `volatility`? allowed keys: spot, volatility, dividend_yield");
+        assert_eq!(
+            d.fix.unwrap(),
+            "did you mean `volatility`? allowed keys: currency, spot, volatility, dividend_yield"
+        );
         assert_eq!(at, "volatilty");
 
         let (d, at) = only_error(&demo_with("[rates]", "[rate]"));
@@ -959,10 +1050,18 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(d.message, "underlyings.QMEN has no spot");
         assert_eq!(at, "QMEN");
 
+        // A missing key is placed at the start of the file, so the message has a line:col.
         let errs = errors(&demo_with("valuation_date = 2026-12-01", ""));
         assert_eq!(errs.len(), 1);
         assert_eq!(errs[0].message, "missing valuation_date");
-        assert_eq!(errs[0].span, None);
+        assert_eq!(errs[0].span, Some(Span::new(0, 0)));
+        assert!(errs[0].render(Some(DEMO)).starts_with("market.toml:1:1: missing valuation_date"));
+
+        let text = DEMO.replacen("[underlyings.QMEN]\ncurrency = \"USD\"\n", "[underlyings.QMEN]\n", 1);
+        let (d, at) = only_error(&text);
+        assert_eq!(d.message, "underlyings.QMEN has no currency");
+        assert_eq!(d.fix.unwrap(), "add a line such as `currency = \"USD\"` under [underlyings.QMEN]");
+        assert_eq!(at, "QMEN");
 
         let (d, at) = only_error(&demo_with("valuation_date = 2026-12-01", "valuation_date = \"2026-12-01\""));
         assert_eq!(d.message, "valuation_date must be a TOML date, not a string");
@@ -1015,7 +1114,7 @@ VNTL = { OSMP = 0.50 }
     fn cholesky_of_two_reproduces_the_matrix() {
         let rho = -0.37;
         let text = format!(
-            "valuation_date = 2026-12-01\n[underlyings.A]\nspot = 1\nvolatility = 0.2\n[underlyings.B]\nspot = 2\nvolatility = 0.3\n[correlations]\nB = {{ A = {rho} }}\n"
+            "valuation_date = 2026-12-01\n[underlyings.A]\ncurrency = \"USD\"\nspot = 1\nvolatility = 0.2\n[underlyings.B]\ncurrency = \"USD\"\nspot = 2\nvolatility = 0.3\n[correlations]\nB = {{ A = {rho} }}\n"
         );
         let m = Market::from_toml(&text, file()).unwrap();
         let l = m.cholesky(&["A", "B"], file()).unwrap();
@@ -1032,9 +1131,9 @@ VNTL = { OSMP = 0.50 }
     #[test]
     fn refuses_a_matrix_that_is_not_positive_definite() {
         let text = "valuation_date = 2026-12-01\n\
-            [underlyings.A]\nspot = 1\nvolatility = 0.2\n\
-            [underlyings.B]\nspot = 1\nvolatility = 0.2\n\
-            [underlyings.C]\nspot = 1\nvolatility = 0.2\n\
+            [underlyings.A]\ncurrency = \"USD\"\nspot = 1\nvolatility = 0.2\n\
+            [underlyings.B]\ncurrency = \"USD\"\nspot = 1\nvolatility = 0.2\n\
+            [underlyings.C]\ncurrency = \"USD\"\nspot = 1\nvolatility = 0.2\n\
             [correlations]\nA = { B = 0.9, C = 0.9 }\nB = { C = -0.9 }\n";
         let m = Market::from_toml(text, file()).unwrap();
         let d = m.cholesky(&["A", "B", "C"], file()).unwrap_err();
@@ -1070,7 +1169,7 @@ VNTL = { OSMP = 0.50 }
         let text = demo_with("volatility = 0.32", "volatility = -0.32");
         let d = &errors(&text)[0];
         let shown = d.render(Some(&text));
-        assert!(shown.starts_with("market.toml:14:14: underlyings.QMEN.volatility"), "{shown}");
+        assert!(shown.starts_with("market.toml:16:14: underlyings.QMEN.volatility"), "{shown}");
         assert!(shown.contains("^^^^^"), "{shown}");
     }
 }
