@@ -14,7 +14,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
 use criterion::{criterion_group, BenchmarkId, Criterion, SamplingMode};
-use pathfold::driver::price_file;
+use pathfold::pricing::price_file;
 use pathfold::sim::Settings;
 use rayon::ThreadPool;
 

@@ -1,4 +1,4 @@
-//! Stage 3: checked product + market → flat program.
+//! Stage 3: typed product + market → flat program.
 //!
 //! Dates become times on one grid (ACT/365 fixed from the valuation date), schedules are
 //! generated and validated, and every block is unrolled over its dates into straight-line
@@ -7,11 +7,11 @@
 //! Names are slots, parameters and dates are constants, and `if` on a date (such as
 //! `t == last(s)`) is decided here, not on every path.
 
-use crate::check::{self, DateRef, Direction, Func, Product, TExpr, TKind, TStmt, When};
 use crate::date::Date;
 use crate::diagnostic::{Diagnostic, Span};
-use crate::sim::market::Market;
+use crate::market::Market;
 use crate::syntax::{Aggregate, BinaryOp, DateTerm, PeriodUnit, ScheduleKind, UnaryOp};
+use crate::typing::{self, DateRef, Direction, Func, Product, TExpr, TKind, TStmt, When};
 
 /// Where an operation reads a value for each path of a block.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -301,8 +301,8 @@ struct Now {
 
 const TIME_EPS: f64 = 1e-9;
 
-/// The most dates one schedule may hold.
-pub const MAX_SCHEDULE_DATES: usize = 100_000;
+/// The most dates one schedule may hold (the syntax already refuses more steps).
+pub use crate::syntax::MAX_SCHEDULE_DATES;
 
 /// The most dates all schedules together may hold, so the most simulation dates.
 pub const MAX_GRID_DATES: usize = 200_000;
@@ -854,12 +854,12 @@ impl<'p> Compiler<'p> {
                 self.push_un(if *op == UnaryOp::Neg { Un::Neg } else { Un::Not }, a)
             }
             TKind::Binary(op, a, b) => {
-                if a.ty == check::Ty::Date {
+                if a.ty == typing::Ty::Date {
                     let (TKind::Date(da), TKind::Date(db)) = (&a.kind, &b.kind) else { return None };
                     let x = self.resolve(*da, a.span, Some(&now))?;
                     let y = self.resolve(*db, b.span, Some(&now))?;
                     let (x, y) = (round_time(x.0), round_time(y.0));
-                    return Some(V::konst(check::fold(*op, x, y)));
+                    return Some(V::konst(typing::fold(*op, x, y)));
                 }
                 let x = self.expr(a, now)?;
                 let y = self.expr(b, now)?;

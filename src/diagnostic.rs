@@ -1,8 +1,8 @@
 //! Diagnostics: what every stage returns when the input is wrong.
 //!
 //! A diagnostic is data: a message, an optional place (byte span in one source file) and
-//! a suggested fix. Stages collect as many as they can before giving up; only the driver
-//! renders them, through [`Diagnostic::render`], and picks the exit status.
+//! a suggested fix. Stages collect as many as they can before giving up; only the commands
+//! render them, through [`Diagnostic::render`], and pick the exit status.
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};

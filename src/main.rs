@@ -1,7 +1,34 @@
-//! The `pathfold` command: parses arguments and hands them to the library's driver.
+//! The `pathfold` command: parses the command line and hands it to the command asked for.
+//! Adding a command means a module under `src/commands/` and one arm here.
 
-use clap::Parser;
+use std::process::ExitCode;
 
-fn main() -> std::process::ExitCode {
-    pathfold::driver::run(pathfold::driver::Cli::parse())
+use clap::{Parser, Subcommand};
+use pathfold::commands::{check, compare, price};
+use pathfold::output::CAUTION;
+
+/// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
+#[derive(Debug, Parser)]
+#[command(name = "pathfold", version, about, after_help = CAUTION)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Price payoff files.
+    Price(price::PriceArgs),
+    /// Compare an external price list (CSV) with pathfold's prices.
+    Compare(compare::CompareArgs),
+    /// Price the validation set and compare each case with its closed form.
+    Check(check::CheckArgs),
+}
+
+fn main() -> ExitCode {
+    match Cli::parse().command {
+        Command::Price(args) => price::run(&args),
+        Command::Compare(args) => compare::run(&args),
+        Command::Check(args) => check::run(&args),
+    }
 }

@@ -216,6 +216,9 @@ pub const MAX_NESTING: usize = 200;
 /// `a + b + c` is a level, so a sum may have this many terms.
 pub const MAX_EXPRESSION_DEPTH: usize = 1_000;
 
+/// The most dates one schedule may hold.
+pub const MAX_SCHEDULE_DATES: usize = 100_000;
+
 /// The furthest a date written in years may lie after the valuation date, and the longest
 /// period of an `every` schedule.
 pub const MAX_YEARS: u32 = 200;
@@ -500,7 +503,7 @@ impl Lowering {
                 let n = self.count(
                     n.as_str(),
                     span_of(&n),
-                    crate::compile::MAX_SCHEDULE_DATES as u32,
+                    MAX_SCHEDULE_DATES as u32,
                     "the number of dates in one schedule",
                 );
                 let from = self.date_term(inner.next().unwrap());

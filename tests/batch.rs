@@ -9,7 +9,7 @@ use std::process::Output;
 use common::output as pathfold;
 
 use pathfold::closed_form::{black_scholes, OptionKind};
-use pathfold::report::CAUTION;
+use pathfold::output::CAUTION;
 
 fn stdout(o: &Output) -> String {
     String::from_utf8(o.stdout.clone()).expect("UTF-8 stdout")

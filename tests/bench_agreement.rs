@@ -13,7 +13,7 @@ mod reference;
 use std::path::Path;
 
 use pathfold::closed_form::{black_scholes, geometric_asian_discrete, OptionKind};
-use pathfold::driver::price_file;
+use pathfold::pricing::price_file;
 use pathfold::sim::Settings;
 
 fn engine(file: &str, paths: u64, seed: u64) -> (f64, f64) {

@@ -8,7 +8,7 @@ use std::process::Output;
 use common::output as pathfold;
 
 use pathfold::closed_form::{black_scholes, cash_or_nothing, standard_barrier, BarrierKind, OptionKind};
-use pathfold::report::CAUTION;
+use pathfold::output::CAUTION;
 
 // The market of tests/compare/market.toml; every payoff there runs one year
 // (2026-12-01 to 2027-12-01, 365 days ACT/365, so T = 1) on 1,000,000 notional.

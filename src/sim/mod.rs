@@ -9,7 +9,6 @@
 //! blocks in flight, not by the path count.
 
 pub mod exec;
-pub mod market;
 pub mod paths;
 pub mod regress;
 pub mod stats;

@@ -6,9 +6,9 @@ use rand::Rng;
 use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
-use crate::check::Direction;
 use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
 use crate::compile::Program;
+use crate::typing::Direction;
 
 /// Per-step constants of the risk-neutral dynamics
 /// `ln S(t+Δ) = ln S(t) + (r − q − σ²/2)Δ + σ√Δ·Z`, exact for any step length.

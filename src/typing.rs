@@ -1,4 +1,4 @@
-//! Stage 2: syntax tree → checked product.
+//! Stage 2, typing: syntax tree → typed product.
 //!
 //! Resolves every name (parameters, schedules, state, lets, underlyings, the loop date),
 //! gives every expression a type (number, flag or date), folds parameters to their values

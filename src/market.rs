@@ -1,4 +1,4 @@
-//! Stage 4 input: the market the simulation runs on — valuation date, flat rates per
+//! An input beside the stages: the market the simulation runs on — valuation date, flat rates per
 //! currency and, per underlying, spot, volatility, dividend yield and pairwise correlations,
 //! read from a TOML file.
 //!
@@ -29,6 +29,7 @@ use std::path::Path;
 
 use crate::date::Date;
 use crate::diagnostic::{closest, Diagnostic, Span};
+use crate::files::read_regular_file;
 
 /// One underlying's parameters, all finite: spot > 0, volatility in (0, 5].
 #[derive(Clone, Debug, PartialEq)]
@@ -70,23 +71,6 @@ const MIN_PIVOT: f64 = 1e-12;
 
 /// Volatilities above this are surely a percentage typed as a number.
 const MAX_VOLATILITY: f64 = 5.0;
-
-/// Reads a text file, refusing anything that is not a regular file before opening it:
-/// a named pipe would block forever, a device would never end.
-pub fn read_regular_file(path: &Path) -> std::io::Result<String> {
-    String::from_utf8(read_regular_bytes(path)?)
-        .map_err(|_| std::io::Error::new(std::io::ErrorKind::InvalidData, "stream did not contain valid UTF-8"))
-}
-
-/// [`read_regular_file`] without the UTF-8 check.
-pub fn read_regular_bytes(path: &Path) -> std::io::Result<Vec<u8>> {
-    let meta = std::fs::metadata(path)?;
-    if !meta.is_file() {
-        let what = if meta.is_dir() { "a folder" } else { "not a regular file (a pipe, socket or device)" };
-        return Err(std::io::Error::new(std::io::ErrorKind::InvalidInput, format!("it is {what}")));
-    }
-    std::fs::read(path)
-}
 
 impl Market {
     /// Reads and validates a market file. Errors carry the file path and, where possible,

@@ -20,8 +20,7 @@ use crate::closed_form::{
     standard_barrier_with_rebate, two_asset_extreme, RebateTiming,
 };
 use crate::diagnostic::Diagnostic;
-use crate::driver::{price_file, Failure};
-use crate::report::Priced;
+use crate::pricing::{price_file, Failure, Priced};
 use crate::sim::Settings;
 
 /// A case passes when |Monte Carlo − closed form| is at most this many standard errors.

@@ -1,0 +1,144 @@
+//! One priced file → the full report (table) or one JSON object.
+
+use std::io::{self, Write};
+
+use serde_json::json;
+
+use super::{decimals, group, short_hash, CAUTION};
+use crate::pricing::{Priced, Record};
+
+/// The JSON object of one priced file.
+pub fn to_json(p: &Priced) -> serde_json::Value {
+    let e = &p.estimate;
+    let (lo, hi) = p.interval();
+    let params: serde_json::Map<String, serde_json::Value> =
+        p.params.iter().map(|(n, v)| (n.clone(), json!(v))).collect();
+    json!({
+        "file": p.file,
+        "market_file": p.market_file,
+        "product": p.product,
+        "currency": p.currency,
+        "notional": p.notional,
+        "parameters": params,
+        "price": e.price,
+        "percent_of_notional": p.percent_of_notional(),
+        "std_error": e.std_error,
+        "interval_95": [lo, hi],
+        "paths": e.paths,
+        "seed": e.seed,
+        "antithetic": e.antithetic,
+        "controls": e.controls,
+        "variance_reduction": e.variance_reduction,
+        "elapsed_seconds": e.elapsed.as_secs_f64(),
+        "target": target_json(&p.record),
+        "reproduce": record_json(p),
+        "profile": e.profile.iter().map(|r| json!({
+            "date": r.label,
+            "years": r.time,
+            "end_probability": r.end_probability,
+            "expected_pv": r.expected_pv,
+        })).collect::<Vec<_>>(),
+        "caution": CAUTION,
+    })
+}
+
+/// The target of an error-bounded run, or null.
+pub fn target_json(r: &Record) -> serde_json::Value {
+    match &r.target {
+        Some(t) => json!({ "std_error": t.std_error, "max_paths": t.max_paths, "met": t.met }),
+        None => serde_json::Value::Null,
+    }
+}
+
+/// The reproducibility record as JSON.
+pub fn record_json(p: &Priced) -> serde_json::Value {
+    let (e, r) = (&p.estimate, &p.record);
+    json!({
+        "pathfold_version": r.version,
+        "seed": e.seed,
+        "paths": e.paths,
+        "antithetic": e.antithetic,
+        "control_variates": r.control_variates,
+        "overrides": r.overrides,
+        "payoff_sha256": r.payoff_sha256,
+        "market_file": p.market_file,
+        "market_sha256": r.market_sha256,
+    })
+}
+
+/// The full report of one priced file, for people.
+pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
+    let e = &p.estimate;
+    let (lo, hi) = p.interval();
+    let ccy = &p.currency;
+    // The price and its interval carry as many decimals as the standard error needs.
+    let d = decimals(e.std_error);
+    let title = if p.product.is_empty() { p.file.as_str() } else { p.product.as_str() };
+    writeln!(out, "{title}")?;
+    writeln!(out, "  file              {}", p.file)?;
+    writeln!(out, "  market            {}", p.market_file)?;
+    writeln!(out, "  notional          {} {ccy}", group(p.notional, 2))?;
+    if !p.params.is_empty() {
+        let list: Vec<String> = p
+            .params
+            .iter()
+            .zip(&p.params_written)
+            .map(|((n, _), w)| format!("{n} = {}", w.split_whitespace().collect::<Vec<_>>().join(" ")))
+            .collect();
+        writeln!(out, "  parameters        {}", list.join(", "))?;
+    }
+    writeln!(out)?;
+    let se_percent = 100.0 * e.std_error / p.notional;
+    let dp = decimals(se_percent).max(4);
+    writeln!(out, "  price             {} {ccy}   ({:.dp$}% of notional)", group(e.price, d), p.percent_of_notional())?;
+    writeln!(out, "  standard error    {} {ccy}   ({se_percent:.dp$}% of notional)", group(e.std_error, d))?;
+    writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, d), group(hi, d))?;
+    let pairs = if e.antithetic { " in antithetic pairs" } else { "" };
+    writeln!(out, "  paths             {}{pairs}, seed {}", group(e.paths as f64, 0), e.seed)?;
+    let controls = if e.controls.is_empty() { "none".to_string() } else { e.controls.join(", ") };
+    writeln!(out, "  control variates  {controls}")?;
+    match e.variance_reduction {
+        Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
+        None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
+    }
+    if let Some(t) = &p.record.target {
+        let verdict = if t.met { "met" } else { "NOT met" };
+        writeln!(
+            out,
+            "  error target      {} {ccy}: {verdict} (at most {} paths)",
+            group(t.std_error, decimals(t.std_error)),
+            group(t.max_paths as f64, 0)
+        )?;
+    }
+    writeln!(out, "  time              {:.2} s", e.elapsed.as_secs_f64())?;
+    writeln!(
+        out,
+        "  reproduce         pathfold {}, payoff sha256 {}",
+        p.record.version,
+        short_hash(&p.record.payoff_sha256)
+    )?;
+    writeln!(out, "                    market sha256 {}", short_hash(&p.record.market_sha256))?;
+    writeln!(out)?;
+    writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
+    // Dates on which nothing is paid and nothing ends (most fixings of a daily schedule)
+    // would drown the few that matter; JSON keeps them all.
+    let quiet = |r: &&crate::sim::ProfileRow| r.expected_pv == 0.0 && r.end_probability.unwrap_or(0.0) == 0.0;
+    for r in e.profile.iter().filter(|r| !quiet(r)) {
+        let ends = r.end_probability.map_or("-".to_string(), |x| format!("{:.2}%", 100.0 * x));
+        writeln!(out, "  {:<12} {:>14} {:>22}", r.label, ends, group(r.expected_pv, 2))?;
+    }
+    let hidden = e.profile.iter().filter(quiet).count();
+    if hidden > 0 {
+        writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
+    }
+    writeln!(out, "  (plain averages over the paths: they add up to the price before control variates)")?;
+    if e.variance_reduction.is_some_and(|v| v < 1.0) {
+        writeln!(out)?;
+        writeln!(
+            out,
+            "  note: variance reduction made this estimate noisier; antithetic pairs can raise the variance of a payoff that is not monotone in the levels: compare with --no-antithetic"
+        )?;
+    }
+    writeln!(out)?;
+    writeln!(out, "{CAUTION}")
+}
