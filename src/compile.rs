@@ -785,13 +785,13 @@ impl<'p> Compiler<'p> {
             }
             TKind::If(c, a, b) => {
                 let c = self.expr(c, now)?;
+                if let Src::Const(k) = c.src {
+                    // Decided by the dates: like an `if` statement, only the branch taken is
+                    // compiled (the other may read fixings that are not there yet).
+                    return self.expr(if k != 0.0 { a } else { b }, now);
+                }
                 let a = self.expr(a, now)?;
                 let b = self.expr(b, now)?;
-                if let Src::Const(k) = c.src {
-                    let (keep, drop) = if k != 0.0 { (a, b) } else { (b, a) };
-                    self.release(drop);
-                    return Some(keep);
-                }
                 let dst = self.alloc();
                 self.ops.push(Op::Select { dst, cond: c.src, a: a.src, b: b.src });
                 self.release(c);

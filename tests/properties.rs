@@ -1019,3 +1019,24 @@ fn a_let_naming_another_let_changes_nothing() {
     assert!(matches!(price_checked(&without, &settings), Outcome::Priced(_)));
     assert_same(&with, &without, &settings, false);
 }
+
+/// An `if` whose condition the dates decide runs one branch: as a statement, the other
+/// branch is never compiled; as an expression it was compiled anyway, and an aggregate in
+/// it with no fixing yet refused a payoff that the statement writing prices. Found by
+/// `an_if_statement_prices_as_an_if_expression`.
+#[test]
+fn an_if_expression_decided_by_dates_compiles_only_its_branch() {
+    let settings = Settings { paths: PATHS, ..Settings::default() };
+    let file = |body: &str| {
+        format!(
+            "product \"Dead branch\"\ncurrency USD\nnotional 100\nunderlyings ZPHX\n\
+             dates late = 2027-06-01, 2027-12-01\ndates days = business days from 2026-12-02 to 2026-12-31\n\
+             for each t in days {{\n{body}\n}}\n"
+        )
+    };
+    let statement =
+        file("    if t >= first(days) {\n        pay perf(ZPHX)\n    } else {\n        pay sum(1 over late)\n    }");
+    let expression = file("    pay if t >= first(days) then perf(ZPHX) else sum(1 over late)");
+    assert!(matches!(price_checked(&statement, &settings), Outcome::Priced(_)));
+    assert_same(&statement, &expression, &settings, false);
+}
