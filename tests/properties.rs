@@ -875,7 +875,7 @@ fn price_checked(text: &str, settings: &Settings) -> Outcome {
 }
 
 /// Both writings give the same outcome: the same bits, or both refused.
-/// `first_may_refuse`: only the first writing is checked when it is refused (an aggregate
+/// `first_may_refuse`: nothing is checked when the first writing is refused (an aggregate
 /// before its schedule's first date is refused, the fold of it is simply 0).
 fn assert_same(a: &str, b: &str, settings: &Settings, first_may_refuse: bool) {
     let (x, y) = (price_checked(a, settings), price_checked(b, settings));
@@ -918,7 +918,10 @@ proptest! {
     #[test]
     fn a_let_prices_as_its_expression_written_out(bytes in tape()) {
         let p = generate(&bytes, LETS);
-        assert_same(&p.write(Writing::Plain), &p.write(Writing::InlineLets), &p.settings, false);
+        // A let is compiled where it stands; written out only where it is used, which may
+        // be a branch the dates rule out: the let may be refused (an aggregate before its
+        // first fixing) where the inlined writing prices.
+        assert_same(&p.write(Writing::Plain), &p.write(Writing::InlineLets), &p.settings, true);
     }
 
     #[test]
@@ -952,7 +955,7 @@ proptest! {
     #[ignore = "issue 8 item 1: a let bound to a register it does not own; enable after the fix lands"]
     fn a_bare_let_prices_as_its_expression_written_out(bytes in tape()) {
         let p = generate(&bytes, Options { bare_lets: true, ..LETS });
-        assert_same(&p.write(Writing::Plain), &p.write(Writing::InlineLets), &p.settings, false);
+        assert_same(&p.write(Writing::Plain), &p.write(Writing::InlineLets), &p.settings, true);
     }
 
     #[test]
