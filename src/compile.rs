@@ -820,6 +820,18 @@ impl<'p> Compiler<'p> {
         Some(self.level(asset, idx))
     }
 
+    /// The date an expression is read on: the block's date, or inside an aggregate the
+    /// fixing being folded.
+    fn reading_date(&self, now: &Now) -> When_ {
+        let t = self.grid[now.idx];
+        if (t - now.event.0).abs() <= TIME_EPS {
+            now.event
+        } else {
+            // Grid times are whole days (ACT/365) from the valuation date.
+            (t, self.valuation.add_days((t * 365.0).round() as i64))
+        }
+    }
+
     /// The grid index of a date an expression reads a level at, refusing dates after the
     /// date the expression is evaluated on.
     fn read_index(&mut self, at: Option<DateRef>, span: Span, now: &Now) -> Option<usize> {
@@ -828,7 +840,7 @@ impl<'p> Compiler<'p> {
         if w.0 > self.grid[now.idx] + TIME_EPS {
             self.error(
                 span,
-                format!("the level on {} is not known yet on {}", label(w), label(now.event)),
+                format!("the level on {} is not known yet on {}", label(w), label(self.reading_date(now))),
                 "read levels only on or before the date of the block (or of the aggregate's fixing)",
             );
             return None;
@@ -881,13 +893,13 @@ impl<'p> Compiler<'p> {
             }
             TKind::If(c, a, b) => {
                 let c = self.expr(c, now)?;
+                if let Src::Const(k) = c.src {
+                    // Decided by the dates: like an `if` statement, only the branch taken is
+                    // compiled (the other may read fixings that are not there yet).
+                    return self.expr(if k != 0.0 { a } else { b }, now);
+                }
                 let a = self.expr(a, now)?;
                 let b = self.expr(b, now)?;
-                if let Src::Const(k) = c.src {
-                    let (keep, drop) = if k != 0.0 { (a, b) } else { (b, a) };
-                    self.release(drop);
-                    return Some(keep);
-                }
                 let dst = self.alloc();
                 self.ops.push(Op::Select { dst, cond: c.src, a: a.src, b: b.src });
                 self.release(c);
