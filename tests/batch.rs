@@ -263,3 +263,33 @@ fn a_missing_input_is_a_row_not_a_stop() {
     assert!(out.contains("QMEN six-month digital"));
     assert!(out.contains("tests/batch/nowhere.payoff  error: tests/batch/nowhere.payoff: no such file or folder (fix: check the path)"), "{out}");
 }
+
+/// Issue 8's reproducers, every bad payoff under `tests/bad/`, priced as one folder: the
+/// batch finishes and gives exactly one row per file, whatever each file contains. The
+/// files that need their `# args:` line price or fail on their own; the others are errors.
+#[test]
+fn a_batch_of_every_bad_file_gives_one_row_per_file() {
+    fn walk(dir: &Path, out: &mut Vec<String>) {
+        for e in std::fs::read_dir(dir).expect("readable fixture folder") {
+            let p = e.expect("entry").path();
+            if p.is_dir() {
+                walk(&p, out);
+            } else if p.extension().is_some_and(|x| x == "payoff") {
+                out.push(p.display().to_string());
+            }
+        }
+    }
+    let mut files = Vec::new();
+    walk(Path::new("tests/bad"), &mut files);
+    files.sort();
+    assert!(files.len() > 30, "the reproducers are there: {}", files.len());
+    let o = pathfold(&["price", "tests/bad", "--paths", "512", "--format", "json"]);
+    assert_eq!(o.status.code(), Some(2), "a batch with failed rows exits 2:\n{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("valid JSON, however bad the files");
+    let rows = v["results"].as_array().expect("the rows");
+    let mut got: Vec<String> = rows.iter().map(|r| r["file"].as_str().expect("a file").to_string()).collect();
+    got.sort();
+    assert_eq!(got, files, "one row per file, no more, no fewer");
+    let errors = rows.iter().filter(|r| r["status"] == "error").count();
+    assert!(errors * 10 >= files.len() * 8, "most reproducers are refused: {errors} of {}", files.len());
+}
