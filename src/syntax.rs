@@ -935,6 +935,14 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
             "for a remainder write `x - floor(x / n) * n`",
         );
     }
+    if let Some(len) = period_with_exponent(rest) {
+        return hint(
+            at,
+            len,
+            "a period is a whole number of days, weeks, months or years, written out without an exponent",
+            "write the number in full, as in `5y` or `18m`; dates lie at most 200 years after the valuation date",
+        );
+    }
     let words_before = line_before.split(|c: char| !c.is_ascii_alphanumeric() && c != '_');
     if word == "then" && words_before.clone().any(|w| w == "if") {
         return hint(
@@ -962,6 +970,38 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
         }
     }
     None
+}
+
+/// The length of a period written with an exponent (`1e20y`, `2.5E3d`) at the start of
+/// `text`, if there is one.
+fn period_with_exponent(text: &str) -> Option<usize> {
+    let b = text.as_bytes();
+    let digits = |mut i: usize| {
+        while i < b.len() && (b[i].is_ascii_digit() || b[i] == b'_') {
+            i += 1;
+        }
+        i
+    };
+    let mut i = digits(0);
+    if i == 0 {
+        return None;
+    }
+    if b.get(i) == Some(&b'.') {
+        i = digits(i + 1);
+    }
+    if !matches!(b.get(i), Some(b'e' | b'E')) {
+        return None;
+    }
+    i += 1;
+    if matches!(b.get(i), Some(b'+' | b'-')) {
+        i += 1;
+    }
+    let end = digits(i);
+    if end == i || !matches!(b.get(end), Some(b'd' | b'w' | b'm' | b'y')) {
+        return None;
+    }
+    let after = b.get(end + 1);
+    (!after.is_some_and(|c| c.is_ascii_alphanumeric() || *c == b'_')).then_some(end + 1)
 }
 
 /// The words that start a top-level line.
@@ -1119,6 +1159,15 @@ mod tests {
         let small = std::thread::Builder::new().stack_size(64 << 10);
         let handle = small.spawn(move || on_deep_stack(|| parse(&src).is_ok())).expect("a thread");
         assert!(handle.join().expect("no overflow"));
+    }
+
+    #[test]
+    fn a_period_with_an_exponent_is_recognised() {
+        assert_eq!(period_with_exponent("1e20y { pay 1 }"), Some(5));
+        assert_eq!(period_with_exponent("2.5E+3d,"), Some(7));
+        assert_eq!(period_with_exponent("1e20"), None);
+        assert_eq!(period_with_exponent("1e20years"), None);
+        assert_eq!(period_with_exponent("20y"), None);
     }
 
     #[test]
