@@ -35,6 +35,8 @@ pub enum Bin {
     Div,
     Min,
     Max,
+    /// `remainder(a, b)`: `a - floor(a / b) * b`.
+    Rem,
     Lt,
     Le,
     Gt,
@@ -913,6 +915,11 @@ impl<'p> Compiler<'p> {
                     vals.push(self.expr(a, now)?);
                 }
                 match f {
+                    Func::Remainder => {
+                        let n = vals.pop()?;
+                        let x = vals.pop()?;
+                        self.push_bin(Bin::Rem, x, n)
+                    }
                     Func::Min | Func::Max => {
                         let op = if *f == Func::Min { Bin::Min } else { Bin::Max };
                         let mut it = vals.into_iter();
@@ -1166,6 +1173,7 @@ pub fn eval_bin(op: Bin, x: f64, y: f64) -> f64 {
         Bin::Div => x / y,
         Bin::Min => x.min(y),
         Bin::Max => x.max(y),
+        Bin::Rem => typing::remainder(x, y),
         Bin::Lt => flag(x < y),
         Bin::Le => flag(x <= y),
         Bin::Gt => flag(x > y),

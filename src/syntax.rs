@@ -931,8 +931,8 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
         return hint(
             start,
             1,
-            "`%` only marks a percentage, right after its number (70% is 0.70); pathfold has no remainder operator",
-            "for a remainder write `x - floor(x / n) * n`",
+            "`%` only marks a percentage, right after its number (70% is 0.70); it is not a remainder operator",
+            "for a remainder write `remainder(x, n)`",
         );
     }
     if let Some(len) = period_with_exponent(rest) {

@@ -56,6 +56,8 @@ pub enum Func {
     Log,
     Sqrt,
     Floor,
+    /// `remainder(x, n)`: `x - floor(x / n) * n`, so it has the sign of `n`.
+    Remainder,
 }
 
 /// Direction of a continuously monitored barrier.
@@ -329,7 +331,20 @@ impl Default for Product {
 }
 
 const FUNCTIONS: &[&str] = &[
-    "min", "max", "abs", "exp", "log", "sqrt", "floor", "level", "initial", "perf", "position", "years", "first",
+    "min",
+    "max",
+    "abs",
+    "exp",
+    "log",
+    "sqrt",
+    "floor",
+    "remainder",
+    "level",
+    "initial",
+    "perf",
+    "position",
+    "years",
+    "first",
     "last",
 ];
 
@@ -1031,6 +1046,25 @@ impl Checker {
                 }
                 number(TKind::Func(func, out))
             }
+            "remainder" => {
+                if !arity(self, 2, 2, "remainder(x, n)") {
+                    return None;
+                }
+                let x = self.expr(&args[0]);
+                let n = self.expr(&args[1]);
+                let x = self.expect(x?, Ty::Number, "the first argument of `remainder`")?;
+                let n = self.expect(n?, Ty::Number, "the second argument of `remainder`")?;
+                if let TKind::Const(d) = n.kind {
+                    if d == 0.0 {
+                        self.error(n.span, "`remainder` by 0 is not a number", "divide by a number other than 0");
+                        return None;
+                    }
+                }
+                if let (TKind::Const(a), TKind::Const(d)) = (&x.kind, &n.kind) {
+                    return number(TKind::Const(remainder(*a, *d)));
+                }
+                number(TKind::Func(Func::Remainder, vec![x, n]))
+            }
             "abs" | "exp" | "log" | "sqrt" | "floor" => {
                 if !arity(self, 1, 1, &format!("{f}(x)")) {
                     return None;
@@ -1231,8 +1265,14 @@ pub fn apply(func: Func, x: f64) -> f64 {
         Func::Log => x.ln(),
         Func::Sqrt => x.sqrt(),
         Func::Floor => x.floor(),
-        Func::Min | Func::Max => x,
+        Func::Min | Func::Max | Func::Remainder => x,
     }
+}
+
+/// The remainder of `x` divided by `n`, with the sign of `n`: `x - floor(x / n) * n`,
+/// computed in exactly that order, so it gives the same bits as the expression written out.
+pub fn remainder(x: f64, n: f64) -> f64 {
+    x - (x / n).floor() * n
 }
 
 #[cfg(test)]

@@ -129,3 +129,17 @@ fn a_let_bound_to_a_state_keeps_the_value_it_was_given() {
     );
     assert_eq!(bound, stated);
 }
+
+#[test]
+fn a_remainder_is_its_floor_formula_written_out() {
+    // A Napoleon-style count: how far the running count of up-days is past a multiple of 5.
+    let remainder = price_of(
+        "remainder.payoff",
+        "dates days = every 1w from 2026-12-08 to 2027-12-01\nstate ups = 0\nfor each t in days {\n    if perf(QMEN) > 100% { ups = ups + 1 }\n    if t == last(days) { pay notional * remainder(ups * perf(QMEN), 5) / 100 }\n}\n",
+    );
+    let written = price_of(
+        "written.payoff",
+        "dates days = every 1w from 2026-12-08 to 2027-12-01\nstate ups = 0\nfor each t in days {\n    if perf(QMEN) > 100% { ups = ups + 1 }\n    if t == last(days) { pay notional * (ups * perf(QMEN) - floor(ups * perf(QMEN) / 5) * 5) / 100 }\n}\n",
+    );
+    assert_eq!(remainder, written);
+}

@@ -363,6 +363,7 @@ fn binary(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
         Bin::Div => kernel(out, a, b, |x, y| x / y),
         Bin::Min => kernel(out, a, b, f64::min),
         Bin::Max => kernel(out, a, b, f64::max),
+        Bin::Rem => kernel(out, a, b, crate::typing::remainder),
         Bin::Lt => kernel(out, a, b, |x, y| flag(x < y)),
         Bin::Le => kernel(out, a, b, |x, y| flag(x <= y)),
         Bin::Gt => kernel(out, a, b, |x, y| flag(x > y)),
