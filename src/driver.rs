@@ -38,6 +38,8 @@ pub enum Command {
     Compare(CompareArgs),
     /// Price the validation set and compare each case with its closed form.
     Check(CheckArgs),
+    /// Combine the partial results of `price FILE --part K/N` into the full run's result.
+    Merge(crate::partial::MergeArgs),
 }
 
 #[derive(Debug, Args)]
@@ -82,6 +84,10 @@ pub struct PriceArgs {
     pub files: Vec<PathBuf>,
     #[command(flatten)]
     pub pricing: PricingArgs,
+    /// Run only part K of N (K from 1 to N): of one payoff's blocks of paths, written as a
+    /// partial result for `pathfold merge`; of a library's files, as CSV rows.
+    #[arg(long, value_name = "K/N")]
+    pub part: Option<String>,
 }
 
 /// The pricing options `compare` shares with `price`.
@@ -133,7 +139,7 @@ pub struct Failure {
 }
 
 impl Failure {
-    fn input(diagnostics: Vec<Diagnostic>, source: Option<String>) -> Self {
+    pub(crate) fn input(diagnostics: Vec<Diagnostic>, source: Option<String>) -> Self {
         Failure { diagnostics, source, internal: false }
     }
 
@@ -148,6 +154,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Price(args) => price_command(&args),
         Command::Compare(args) => compare_command(&args),
         Command::Check(args) => check_command(&args),
+        Command::Merge(args) => crate::partial::merge_command(&args),
     }
 }
 
@@ -196,7 +203,7 @@ fn check_threads(threads: Option<usize>) -> Result<(), String> {
     }
 }
 
-fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -> Result<T, String> {
+pub(crate) fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -> Result<T, String> {
     check_threads(threads)?;
     match threads {
         None => Ok(f()),
@@ -210,14 +217,14 @@ fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -
 
 /// Turns the pricing options into a request, or the message for a bad option.
 /// The request of `price` or `compare`; a bad option is reported here, with exit status 2.
-fn checked_request(args: &PricingArgs) -> Result<Request, ExitCode> {
+pub(crate) fn checked_request(args: &PricingArgs) -> Result<Request, ExitCode> {
     request(args).map_err(|e| {
         eprint!("{e}");
         ExitCode::from(2)
     })
 }
 
-fn request(args: &PricingArgs) -> Result<Request, String> {
+pub(crate) fn request(args: &PricingArgs) -> Result<Request, String> {
     let overrides: Vec<Override> =
         args.set.iter().map(|s| Override::parse(s)).collect::<Result<_, Diagnostic>>().map_err(|d| d.render(None))?;
     let settings = Settings {
@@ -241,7 +248,7 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
 /// Writes a report to stdout, or atomically to `--output`; returns the exit status on failure.
 /// A report that cannot go to `--output` goes to stdout instead, so the priced results are
 /// never lost.
-fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>) -> Result<(), ExitCode> {
+pub(crate) fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>) -> Result<(), ExitCode> {
     let to_stdout = || {
         let stdout = io::stdout();
         let mut out = stdout.lock();
@@ -271,7 +278,7 @@ fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::Result<()>)
 /// be anything but a regular file if it exists (a link, a folder or a device is refused,
 /// never replaced), and its folder must take a new file. `inputs` are the payoff files, the
 /// market file and the price list.
-fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
+pub(crate) fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
     let shown = output.display();
     let name = output
         .file_name()
@@ -330,7 +337,7 @@ fn same_inode(a: &Path, b: &Path) -> Option<bool> {
 }
 
 /// The `--output` checks of `price` and `compare`, reported with exit status 2.
-fn checked_output(
+pub(crate) fn checked_output(
     output: Option<&Path>,
     files: &[Result<PathBuf, Failure>],
     others: &[Option<&Path>],
@@ -350,7 +357,7 @@ fn checked_output(
 
 /// After pricing: the market files the payoffs named are inputs too. If `--output` is one of
 /// them the report goes to stdout instead, and the exit status is 2.
-fn output_after_pricing<'a>(output: Option<&'a Path>, rows: &[batch::Row]) -> Result<Option<&'a Path>, ()> {
+pub(crate) fn output_after_pricing<'a>(output: Option<&'a Path>, rows: &[batch::Row]) -> Result<Option<&'a Path>, ()> {
     let Some(out) = output else {
         return Ok(None);
     };
@@ -373,6 +380,9 @@ fn output_after_pricing<'a>(output: Option<&'a Path>, rows: &[batch::Row]) -> Re
 }
 
 fn price_command(args: &PriceArgs) -> ExitCode {
+    if let Some(part) = &args.part {
+        return crate::partial::price_part(args, part);
+    }
     let p = &args.pricing;
     let request = match checked_request(p) {
         Ok(r) => r,
@@ -407,7 +417,7 @@ fn price_command(args: &PriceArgs) -> ExitCode {
 
 /// Prices the payoff files found in the inputs on the thread pool, with a progress bar when
 /// `progress` (and stderr is a terminal); the diagnostics of failed files go to stderr.
-fn price_inputs(
+pub(crate) fn price_inputs(
     files: Vec<Result<PathBuf, Failure>>,
     request: &batch::Request,
     threads: Option<usize>,
@@ -430,7 +440,7 @@ fn price_inputs(
 /// Full diagnostics with the caret go to stderr; rows carry a one-line summary. A problem
 /// found in another file (the market) is introduced, in a batch, by the payoff file it
 /// stopped; a single file keeps the plain diagnostic.
-fn report_failures(rows: &[batch::Row]) {
+pub(crate) fn report_failures(rows: &[batch::Row]) {
     for row in rows {
         if let Ok(p) = &row.outcome {
             eprint!("{}", p.warnings);
@@ -505,6 +515,35 @@ pub fn price_file_to(
     settings: &Settings,
     target: Option<(Target, u64)>,
 ) -> Result<Priced, Failure> {
+    let compiled = compile_file(file, market, overrides)?;
+    let program = &compiled.program;
+    let (estimate, target) = match target {
+        None => (sim::simulate(program, settings), None),
+        Some((t, max_paths)) => {
+            let se = t.amount(program.notional);
+            match sim::simulate_to_target(program, settings, se, max_paths) {
+                Ok((e, met)) => (Ok(e), Some(TargetOutcome { std_error: se, max_paths, met })),
+                Err(d) => (Err(d), None),
+            }
+        }
+    };
+    compiled.priced(estimate, settings, overrides, target)
+}
+
+/// A payoff file parsed, checked and compiled against its market, with what the report
+/// and the reproducibility record need of both files.
+pub struct Compiled {
+    pub file: PathBuf,
+    pub source: String,
+    pub product: check::Product,
+    /// The market file used: `--market`, or the one the payoff names.
+    pub market_path: PathBuf,
+    pub market_bytes: Vec<u8>,
+    pub program: compile::Program,
+}
+
+/// Parses, checks and compiles one payoff file with its market data.
+pub fn compile_file(file: &Path, market: Option<&Path>, overrides: &[Override]) -> Result<Compiled, Failure> {
     let bytes = read_regular_bytes(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
@@ -545,36 +584,41 @@ pub fn price_file_to(
     let market_bytes = crate::sim::market::read_regular_bytes(&market_path).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the market file: {e}")).in_file(&market_path)], None)
     })?;
-    let (estimate, target) = match target {
-        None => (sim::simulate(&program, settings), None),
-        Some((t, max_paths)) => {
-            let se = t.amount(program.notional);
-            match sim::simulate_to_target(&program, settings, se, max_paths) {
-                Ok((e, met)) => (Ok(e), Some(TargetOutcome { std_error: se, max_paths, met })),
-                Err(d) => (Err(d), None),
-            }
-        }
-    };
-    let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-    let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
-    let warnings = render_all(&in_file(found), Some(&source));
-    Ok(Priced {
-        warnings,
-        file: file.display().to_string(),
-        market_file: market_path.display().to_string(),
-        product: program.name.clone(),
-        currency: program.currency.clone(),
-        notional: program.notional,
-        params: product.params.clone(),
-        params_written: product.params_written.iter().map(|w| w.text(&source).to_string()).collect(),
-        estimate,
-        record: Record {
-            version: env!("CARGO_PKG_VERSION"),
-            payoff_sha256: batch::sha256_hex(source.as_bytes()),
-            market_sha256: batch::sha256_hex(&market_bytes),
-            control_variates: settings.control_variates,
-            overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
-            target,
-        },
-    })
+    Ok(Compiled { file: file.to_path_buf(), source, product, market_path, market_bytes, program })
+}
+
+impl Compiled {
+    /// The report of a simulation of this payoff (or the failure of the simulation).
+    pub fn priced(
+        &self,
+        estimate: Result<sim::Estimate, Diagnostic>,
+        settings: &Settings,
+        overrides: &[Override],
+        target: Option<TargetOutcome>,
+    ) -> Result<Priced, Failure> {
+        let (file, source, product, program) = (&self.file, &self.source, &self.product, &self.program);
+        let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
+        let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+        let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
+        let warnings = render_all(&in_file(found), Some(source));
+        Ok(Priced {
+            warnings,
+            file: file.display().to_string(),
+            market_file: self.market_path.display().to_string(),
+            product: program.name.clone(),
+            currency: program.currency.clone(),
+            notional: program.notional,
+            params: product.params.clone(),
+            params_written: product.params_written.iter().map(|w| w.text(source).to_string()).collect(),
+            estimate,
+            record: Record {
+                version: env!("CARGO_PKG_VERSION"),
+                payoff_sha256: batch::sha256_hex(source.as_bytes()),
+                market_sha256: batch::sha256_hex(&self.market_bytes),
+                control_variates: settings.control_variates,
+                overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
+                target,
+            },
+        })
+    }
 }

@@ -25,6 +25,7 @@ pub mod compile;
 pub mod date;
 pub mod diagnostic;
 pub mod driver;
+pub mod partial;
 pub mod report;
 pub mod sim;
 pub mod syntax;

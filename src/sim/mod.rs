@@ -10,6 +10,7 @@
 
 pub mod exec;
 pub mod market;
+pub mod partial;
 pub mod paths;
 pub mod regress;
 pub mod stats;
