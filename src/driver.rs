@@ -278,7 +278,7 @@ pub(crate) fn emit(output: Option<&Path>, write: impl Fn(&mut dyn Write) -> io::
 /// be anything but a regular file if it exists (a link, a folder or a device is refused,
 /// never replaced), and its folder must take a new file. `inputs` are the payoff files, the
 /// market file and the price list.
-pub(crate) fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
+fn check_output(output: &Path, inputs: &[&Path]) -> Result<(), String> {
     let shown = output.display();
     let name = output
         .file_name()

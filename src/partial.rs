@@ -396,6 +396,10 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
             payoff.display()
         ));
     }
+    // The output is checked before the work: it must not be one of the inputs.
+    let mut inputs: Vec<Option<&Path>> = args.parts.iter().map(|p| Some(p.as_path())).collect();
+    inputs.extend([Some(payoff.as_path()), Some(market.as_path())]);
+    driver::checked_output(args.output.as_deref(), &[], &inputs).map_err(|_| String::new())?;
     // Second pass: every block, in block order, into the full run's sequence of merges.
     let mut replay = Replay::new(&compiled.program, &settings);
     let mut elapsed = 0.0;
@@ -425,11 +429,6 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
     // The time is the work of the whole run: the parts' simulations plus this merge.
     priced.estimate.elapsed = Duration::from_secs_f64(elapsed) + started.elapsed();
     eprint!("{}", priced.warnings);
-    if let Some(out) = &args.output {
-        let inputs: Vec<&Path> =
-            args.parts.iter().map(PathBuf::as_path).chain([payoff.as_path(), market.as_path()]).collect();
-        driver::check_output(out, &inputs)?;
-    }
     match driver::emit(args.output.as_deref(), |w| report::write_one(w, &priced, args.format)) {
         Ok(()) => Ok(ExitCode::SUCCESS),
         Err(code) => Ok(code),

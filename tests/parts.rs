@@ -121,6 +121,19 @@ fn parts_that_do_not_make_one_run_are_refused_naming_the_culprit() {
     std::fs::copy(c, &copy).unwrap();
     let e = merge_fails(&[a, b, c, d, &copy]);
     assert!(e.contains("both part 3/4") && e.contains("copy.json"), "{e}");
+    // Writing the result over one of the parts would destroy it.
+    let (e, code) = fails(&[
+        "merge",
+        a.to_str().unwrap(),
+        b.to_str().unwrap(),
+        c.to_str().unwrap(),
+        d.to_str().unwrap(),
+        "--output",
+        b.to_str().unwrap(),
+    ]);
+    assert_eq!(code, Some(2));
+    assert!(e.contains("is the input"), "{e}");
+    assert!(std::fs::read_to_string(b).unwrap().contains("pathfold partial result"));
     // Another seed, paths, override, payoff, split: the odd part is named with what differs.
     let other = |name: &str, file: &str, options: &[&str]| {
         let out = dir.join(name);
