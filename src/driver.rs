@@ -549,6 +549,17 @@ pub fn compile_file(file: &Path, market: Option<&Path>, overrides: &[Override]) 
     })?;
     let source =
         crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
+    compile_source(file, source, market, overrides)
+}
+
+/// [`compile_file`] for a payoff's text; `file` names it in messages, and a market file
+/// the payoff names is looked for beside `file`.
+pub fn compile_source(
+    file: &Path,
+    source: String,
+    market: Option<&Path>,
+    overrides: &[Override],
+) -> Result<Compiled, Failure> {
     let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
     // Parsing and checking recurse once per level of nesting: they get a stack of known size.
     let product = syntax::on_deep_stack(|| {

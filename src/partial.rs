@@ -171,7 +171,31 @@ fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Re
     if p.format != Format::Table {
         return Err("--format does not apply to a part of one payoff: it always writes a partial result (JSON) for `pathfold merge`, whose --format applies to the merged result".into());
     }
-    let settings = &request.settings;
+    let file = &args.files[0];
+    let files = batch::collect_files(std::slice::from_ref(file));
+    check_part_count(&request.settings, part)?;
+    driver::checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]).map_err(|_| String::new())?;
+    let result = driver::with_threads(p.threads, || {
+        run_part(file, request.market.as_deref(), &request.overrides, &request.settings, part)
+    })??;
+    let record = match result {
+        Ok(r) => r,
+        Err(f) => {
+            eprint!("{}", f.render());
+            return Ok(ExitCode::from(if f.internal { 1 } else { 2 }));
+        }
+    };
+    match driver::emit(p.output.as_deref(), |w| {
+        serde_json::to_writer_pretty(&mut *w, &record)?;
+        writeln!(w)
+    }) {
+        Ok(()) => Ok(ExitCode::SUCCESS),
+        Err(code) => Ok(code),
+    }
+}
+
+/// Refuses more parts than the run has blocks.
+fn check_part_count(settings: &Settings, part: Part) -> Result<(), String> {
     let blocks = blocks_run(settings);
     if part.n > blocks {
         return Err(format!(
@@ -183,25 +207,31 @@ fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Re
             if blocks == 1 { "" } else { "s" }
         ));
     }
-    let file = &args.files[0];
-    let files = batch::collect_files(std::slice::from_ref(file));
-    driver::checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]).map_err(|_| String::new())?;
+    Ok(())
+}
+
+/// Runs part `part` of the run of `file` with these settings: the partial result, or the
+/// payoff's failure (`Ok(Err)`); `Err` refuses the part (more parts than blocks, or bad
+/// settings).
+pub fn run_part(
+    file: &Path,
+    market: Option<&Path>,
+    overrides: &[Override],
+    settings: &Settings,
+    part: Part,
+) -> Result<Result<PartFile, Failure>, String> {
+    settings.validate()?;
+    check_part_count(settings, part)?;
     let started = Instant::now();
+    let blocks = blocks_run(settings);
     let range = part_blocks(blocks, part.k, part.n);
-    let result = driver::with_threads(p.threads, || {
-        let compiled = driver::compile_file(file, request.market.as_deref(), &request.overrides)?;
-        let shape = Shape::of(&compiled.program, settings);
-        let stats = sim::partial::simulate_blocks(&compiled.program, settings, range.clone());
-        Ok::<_, Failure>((compiled, shape, stats))
-    })?;
-    let (compiled, shape, stats) = match result {
-        Ok(r) => r,
-        Err(f) => {
-            eprint!("{}", f.render());
-            return Ok(ExitCode::from(if f.internal { 1 } else { 2 }));
-        }
+    let compiled = match driver::compile_file(file, market, overrides) {
+        Ok(c) => c,
+        Err(f) => return Ok(Err(f)),
     };
-    let record = PartFile {
+    let shape = Shape::of(&compiled.program, settings);
+    let stats = sim::partial::simulate_blocks(&compiled.program, settings, range.clone());
+    Ok(Ok(PartFile {
         format: FORMAT_NAME.into(),
         format_version: FORMAT_VERSION,
         pathfold_version: env!("CARGO_PKG_VERSION").into(),
@@ -217,20 +247,13 @@ fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Re
             seed: settings.seed,
             antithetic: settings.antithetic,
             control_variates: settings.control_variates,
-            overrides: request.overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
+            overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
         },
         shape: shape.into(),
         elapsed_seconds: started.elapsed().as_secs_f64(),
         statistics: stats.iter().map(|b| words_hex(&to_words(b))).collect(),
         caution: CAUTION.into(),
-    };
-    match driver::emit(p.output.as_deref(), |w| {
-        serde_json::to_writer_pretty(&mut *w, &record)?;
-        writeln!(w)
-    }) {
-        Ok(()) => Ok(ExitCode::SUCCESS),
-        Err(code) => Ok(code),
-    }
+    }))
 }
 
 /// Part K of N of a library's files, written as CSV (the header by part 1 only).
@@ -290,15 +313,22 @@ pub fn merge_command(args: &MergeArgs) -> ExitCode {
 /// A part's header: its file without the statistics.
 struct Header {
     path: PathBuf,
+    index: usize,
     file: PartFile,
 }
 
-/// Reads a partial result; the statistics are dropped unless `keep`.
-fn read_part(path: &Path, keep: bool) -> Result<PartFile, String> {
+/// Reads a partial result from its file.
+pub fn read_part(path: &Path) -> Result<PartFile, String> {
     let shown = path.display();
     let text =
         crate::sim::market::read_regular_file(path).map_err(|e| format!("{shown}: cannot read this part: {e}"))?;
-    let value: serde_json::Value = serde_json::from_str(&text)
+    parse_part(path, &text)
+}
+
+/// Reads a partial result from its text; `path` names it in messages.
+pub fn parse_part(path: &Path, text: &str) -> Result<PartFile, String> {
+    let shown = path.display();
+    let value: serde_json::Value = serde_json::from_str(text)
         .map_err(|e| format!("{shown}: not a partial result of `pathfold price --part` (not JSON: {e})"))?;
     if value.get("format").and_then(|f| f.as_str()) != Some(FORMAT_NAME) {
         return Err(format!(
@@ -315,20 +345,49 @@ fn read_part(path: &Path, keep: bool) -> Result<PartFile, String> {
         }
         None => return Err(format!("{shown}: the partial result has no `format_version`")),
     }
-    let mut part: PartFile =
-        serde_json::from_value(value).map_err(|e| format!("{shown}: a damaged partial result: {e}"))?;
-    if !keep {
-        part.statistics = Vec::new();
-    }
-    Ok(part)
+    serde_json::from_value(value).map_err(|e| format!("{shown}: a damaged partial result: {e}"))
 }
 
 fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
+    let load = |i: usize| read_part(&args.parts[i]);
+    // The output is checked before the work: it must not be one of the inputs.
+    let check = |payoff: &Path, market: &Path| {
+        let mut inputs: Vec<Option<&Path>> = args.parts.iter().map(|p| Some(p.as_path())).collect();
+        inputs.extend([Some(payoff), Some(market)]);
+        driver::checked_output(args.output.as_deref(), &[], &inputs).map_err(|_| String::new())
+    };
+    let priced = match merge_parts(&args.parts, &load, &check)? {
+        Ok(p) => p,
+        Err(f) => {
+            eprint!("{}", f.render());
+            return Ok(ExitCode::from(if f.internal { 1 } else { 2 }));
+        }
+    };
+    eprint!("{}", priced.warnings);
+    match driver::emit(args.output.as_deref(), |w| report::write_one(w, &priced, args.format)) {
+        Ok(()) => Ok(ExitCode::SUCCESS),
+        Err(code) => Ok(code),
+    }
+}
+
+/// Merges the parts `names` (files, or other labels), which `load` reads by index (it is
+/// called twice per part, so that one part's statistics are in memory at a time), into the
+/// full run's result. `ready` is told the payoff and market files before the work starts.
+/// `Err` refuses the parts (the message names the culprit); `Ok(Err)` is the full run's
+/// own failure (a payment that is not a finite number), as `price` reports it.
+pub fn merge_parts(
+    names: &[PathBuf],
+    load: &dyn Fn(usize) -> Result<PartFile, String>,
+    ready: &dyn Fn(&Path, &Path) -> Result<(), String>,
+) -> Result<Result<report::Priced, Failure>, String> {
     let started = Instant::now();
+    if names.is_empty() {
+        return Err("no parts to merge".into());
+    }
     // First pass: the headers, checked against each other and for coverage.
     let mut headers = Vec::new();
-    for path in &args.parts {
-        let file = read_part(path, true)?;
+    for (i, path) in names.iter().enumerate() {
+        let mut file = load(i)?;
         let b = &file.blocks;
         if file.statistics.len() as u64 != b.end.saturating_sub(b.first) {
             return Err(format!(
@@ -340,9 +399,8 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
                 b.end.saturating_sub(b.first)
             ));
         }
-        let mut file = file;
         file.statistics = Vec::new();
-        headers.push(Header { path: path.clone(), file });
+        headers.push(Header { path: path.clone(), index: i, file });
     }
     check_together(&headers)?;
     let first = &headers[0].file;
@@ -365,16 +423,9 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
         s.overrides.iter().map(|o| Override::parse(o)).collect::<Result<_, _>>().map_err(|d| d.render(None))?;
     let payoff = PathBuf::from(&first.payoff_file);
     let market = PathBuf::from(&first.market_file);
-    let compiled = match driver::compile_file(&payoff, Some(&market), &overrides) {
-        Ok(c) => c,
-        Err(f) => {
-            eprint!("{}", f.render());
-            return Err(format!(
-                "the payoff {} of the parts cannot be compiled again for the merge (see above)",
-                payoff.display()
-            ));
-        }
-    };
+    let compiled = driver::compile_file(&payoff, Some(&market), &overrides).map_err(|f| {
+        format!("{}the payoff {} of the parts cannot be compiled again for the merge", f.render(), payoff.display())
+    })?;
     for (what, path, recorded, now) in [
         ("payoff", &payoff, &first.payoff_sha256, batch::sha256_hex(compiled.source.as_bytes())),
         ("market", &market, &first.market_sha256, batch::sha256_hex(&compiled.market_bytes)),
@@ -396,15 +447,12 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
             payoff.display()
         ));
     }
-    // The output is checked before the work: it must not be one of the inputs.
-    let mut inputs: Vec<Option<&Path>> = args.parts.iter().map(|p| Some(p.as_path())).collect();
-    inputs.extend([Some(payoff.as_path()), Some(market.as_path())]);
-    driver::checked_output(args.output.as_deref(), &[], &inputs).map_err(|_| String::new())?;
+    ready(&payoff, &market)?;
     // Second pass: every block, in block order, into the full run's sequence of merges.
     let mut replay = Replay::new(&compiled.program, &settings);
     let mut elapsed = 0.0;
     for h in &ordered {
-        let part = read_part(&h.path, true)?;
+        let part = load(h.index)?;
         if part.blocks != h.file.blocks || part.payoff_sha256 != h.file.payoff_sha256 {
             return Err(format!("{}: changed while it was being merged", h.path.display()));
         }
@@ -419,20 +467,11 @@ fn merge(args: &MergeArgs) -> Result<ExitCode, String> {
         }
     }
     let estimate = replay.finish(started);
-    let mut priced = match compiled.priced(estimate, &settings, &overrides, None) {
-        Ok(p) => p,
-        Err(f) => {
-            eprint!("{}", f.render());
-            return Ok(ExitCode::from(2));
-        }
-    };
-    // The time is the work of the whole run: the parts' simulations plus this merge.
-    priced.estimate.elapsed = Duration::from_secs_f64(elapsed) + started.elapsed();
-    eprint!("{}", priced.warnings);
-    match driver::emit(args.output.as_deref(), |w| report::write_one(w, &priced, args.format)) {
-        Ok(()) => Ok(ExitCode::SUCCESS),
-        Err(code) => Ok(code),
-    }
+    Ok(compiled.priced(estimate, &settings, &overrides, None).map(|mut priced| {
+        // The time is the work of the whole run: the parts' simulations plus this merge.
+        priced.estimate.elapsed = Duration::from_secs_f64(elapsed) + started.elapsed();
+        priced
+    }))
 }
 
 fn short(hash: &str) -> &str {
