@@ -19,6 +19,14 @@ use pathfold::sim::{self, Settings};
 
 create_exception!(_pathfold, PathfoldError, PyException, "A payoff, market or argument pathfold refuses.");
 
+/// Runs `f` without the GIL on a thread pool of its own, dropped when `f` returns. Not
+/// rayon's global pool: a process forked after a call (a `multiprocessing` pool on Linux)
+/// inherits that pool's state without its threads, and would hang on its next call.
+fn pooled<T: Send>(py: Python<'_>, f: impl FnOnce() -> T + Send) -> PyResult<T> {
+    py.allow_threads(|| rayon::ThreadPoolBuilder::new().build().map(|pool| pool.install(f)))
+        .map_err(|e| refused(format!("could not start the worker threads: {e}")))
+}
+
 fn refused(message: impl Into<String>) -> PyErr {
     PathfoldError::new_err(message.into().trim_end().to_string())
 }
@@ -62,7 +70,7 @@ fn price(
 ) -> PyResult<String> {
     let settings = settings(paths, seed, antithetic, control_variates)?;
     let overrides = overrides(&set)?;
-    let priced = py.allow_threads(|| driver::price_file(&file, market.as_deref(), &overrides, &settings));
+    let priced = pooled(py, || driver::price_file(&file, market.as_deref(), &overrides, &settings))?;
     priced_json(&priced.map_err(|f| failure(&f))?)
 }
 
@@ -83,11 +91,11 @@ fn price_text(
 ) -> PyResult<String> {
     let settings = settings(paths, seed, antithetic, control_variates)?;
     let overrides = overrides(&set)?;
-    let priced = py.allow_threads(|| {
+    let priced = pooled(py, || {
         let compiled = driver::compile_source(Path::new(&name), text, market.as_deref(), &overrides)?;
         let estimate = sim::simulate(&compiled.program, &settings);
         compiled.priced(estimate, &settings, &overrides, None)
-    });
+    })?;
     priced_json(&priced.map_err(|f| failure(&f))?)
 }
 
@@ -96,7 +104,7 @@ fn price_text(
 #[pyo3(signature = (folder=PathBuf::from("payoffs/validation"), paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED))]
 fn check(py: Python<'_>, folder: PathBuf, paths: u64, seed: u64) -> PyResult<String> {
     let settings = settings(paths, seed, true, true)?;
-    let outcomes = py.allow_threads(|| pathfold::validate::run(&folder, &settings)).map_err(|d| {
+    let outcomes = pooled(py, || pathfold::validate::run(&folder, &settings))?.map_err(|d| {
         refused(
             d.render(pathfold::sim::market::read_regular_file(d.file.as_deref().unwrap_or(&folder)).ok().as_deref()),
         )
@@ -132,11 +140,11 @@ fn compare(
         files
     };
     let request = Request { market, overrides, settings, target: None, max_paths: batch::DEFAULT_MAX_PATHS };
-    let rows = py.allow_threads(|| {
+    let rows = pooled(py, || {
         let files = batch::collect_files(&inputs);
         let bar = batch::Progress::new(files.len(), false);
         batch::price_all(files, &request, &bar)
-    });
+    })?;
     let lines = pathfold::compare::compare(&list, &rows, max_z);
     json_text(|w| pathfold::compare::write(w, &lines, Format::Json))
 }
@@ -159,9 +167,8 @@ fn price_part(
     let part = Part::parse(&part).map_err(refused)?;
     let settings = settings(paths, seed, antithetic, control_variates)?;
     let overrides = overrides(&set)?;
-    let result = py
-        .allow_threads(|| partial::run_part(&file, market.as_deref(), &overrides, &settings, part))
-        .map_err(refused)?;
+    let result =
+        pooled(py, || partial::run_part(&file, market.as_deref(), &overrides, &settings, part))?.map_err(refused)?;
     let record = result.map_err(|f| failure(&f))?;
     serde_json::to_string_pretty(&record).map_err(|e| refused(e.to_string()))
 }
@@ -174,10 +181,10 @@ fn merge(py: Python<'_>, texts: Vec<String>, names: Vec<String>) -> PyResult<Str
     if names.len() != texts.len() {
         return Err(refused("one name per part"));
     }
-    let priced = py.allow_threads(|| {
+    let priced = pooled(py, || {
         let load = |i: usize| partial::parse_part(&names[i], &texts[i]);
         partial::merge_parts(&names, &load, &|_, _| Ok(()))
-    });
+    })?;
     let priced = priced.map_err(refused)?.map_err(|f| failure(&f))?;
     priced_json(&priced)
 }

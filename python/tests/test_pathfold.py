@@ -112,3 +112,14 @@ def test_compare_gives_the_command_lines_json(cli, tmp_path):
             if line.get("result"):
                 line["result"].pop("elapsed_seconds")
     assert mine == theirs
+
+
+def test_a_pool_forked_after_a_call_still_prices(cli):
+    # On Linux a process pool forks by default: the children must not inherit a thread
+    # pool without its threads (each call has its own pool).
+    single = pathfold.price(AUTOCALL, paths=8192)
+    fork = multiprocessing.get_context("fork")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=2, mp_context=fork) as pool:
+        futures = [pool.submit(pathfold.price_part, AUTOCALL, (k, 4), paths=8192) for k in range(1, 5)]
+        parts = [f.result(timeout=120) for f in futures]
+    assert without_time(pathfold.merge(parts)) == without_time(single)
