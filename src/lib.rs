@@ -30,6 +30,7 @@ pub mod diagnostic;
 pub mod files;
 pub mod market;
 pub mod output;
+pub mod partial;
 pub mod pricing;
 pub mod sim;
 pub mod syntax;

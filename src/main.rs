@@ -4,7 +4,7 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use pathfold::commands::{check, compare, price};
+use pathfold::commands::{check, compare, merge, price};
 use pathfold::output::CAUTION;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -23,6 +23,8 @@ enum Command {
     Compare(compare::CompareArgs),
     /// Price the validation set and compare each case with its closed form.
     Check(check::CheckArgs),
+    /// Combine the partial results of `price FILE --part K/N` into the full run's result.
+    Merge(merge::MergeArgs),
 }
 
 fn main() -> ExitCode {
@@ -30,5 +32,6 @@ fn main() -> ExitCode {
         Command::Price(args) => price::run(&args),
         Command::Compare(args) => compare::run(&args),
         Command::Check(args) => check::run(&args),
+        Command::Merge(args) => merge::run(&args),
     }
 }

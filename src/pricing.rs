@@ -5,7 +5,7 @@
 //! Every command prices through here; this module chains the stages ([`crate::syntax`] →
 //! [`crate::typing`] → [`crate::compile`] → [`crate::sim`]) and imports nothing above it.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use sha2::{Digest, Sha256};
 
@@ -16,6 +16,9 @@ use crate::market::Market;
 use crate::sim::{self, Estimate, Settings};
 use crate::syntax;
 use crate::typing::{self, Override};
+
+/// The caution every report and every file pathfold writes carries.
+pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
 
 /// The default cap on paths of an error-bounded run.
 pub const DEFAULT_MAX_PATHS: u64 = 20_000_000;
@@ -123,7 +126,7 @@ pub struct Failure {
 }
 
 impl Failure {
-    fn input(diagnostics: Vec<Diagnostic>, source: Option<String>) -> Self {
+    pub(crate) fn input(diagnostics: Vec<Diagnostic>, source: Option<String>) -> Self {
         Failure { diagnostics, source, internal: false }
     }
 
@@ -183,11 +186,51 @@ pub fn price_file_to(
     settings: &Settings,
     target: Option<(Target, u64)>,
 ) -> Result<Priced, Failure> {
+    let compiled = compile_file(file, market, overrides)?;
+    let program = &compiled.program;
+    let (estimate, target) = match target {
+        None => (sim::simulate(program, settings), None),
+        Some((t, max_paths)) => {
+            let se = t.amount(program.notional);
+            match sim::simulate_to_target(program, settings, se, max_paths) {
+                Ok((e, met)) => (Ok(e), Some(TargetOutcome { std_error: se, max_paths, met })),
+                Err(d) => (Err(d), None),
+            }
+        }
+    };
+    compiled.priced(estimate, settings, overrides, target)
+}
+
+/// A payoff file parsed, checked and compiled against its market, with what the report
+/// and the reproducibility record need of both files.
+pub struct Compiled {
+    pub file: PathBuf,
+    pub source: String,
+    pub product: typing::Product,
+    /// The market file used: `--market`, or the one the payoff names.
+    pub market_path: PathBuf,
+    pub market_bytes: Vec<u8>,
+    pub program: compile::Program,
+}
+
+/// Parses, checks and compiles one payoff file with its market data.
+pub fn compile_file(file: &Path, market: Option<&Path>, overrides: &[Override]) -> Result<Compiled, Failure> {
     let bytes = read_regular_bytes(file).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
     })?;
     let source =
         crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
+    compile_source(file, source, market, overrides)
+}
+
+/// [`compile_file`] for a payoff's text; `file` names it in messages, and a market file
+/// the payoff names is looked for beside `file`.
+pub fn compile_source(
+    file: &Path,
+    source: String,
+    market: Option<&Path>,
+    overrides: &[Override],
+) -> Result<Compiled, Failure> {
     let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
     // Parsing and checking recurse once per level of nesting: they get a stack of known size.
     let product = syntax::on_deep_stack(|| {
@@ -223,38 +266,43 @@ pub fn price_file_to(
     let market_bytes = read_regular_bytes(&market_path).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the market file: {e}")).in_file(&market_path)], None)
     })?;
-    let (estimate, target) = match target {
-        None => (sim::simulate(&program, settings), None),
-        Some((t, max_paths)) => {
-            let se = t.amount(program.notional);
-            match sim::simulate_to_target(&program, settings, se, max_paths) {
-                Ok((e, met)) => (Ok(e), Some(TargetOutcome { std_error: se, max_paths, met })),
-                Err(d) => (Err(d), None),
-            }
-        }
-    };
-    let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-    let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
-    let warnings = render_all(&in_file(found), Some(&source));
-    Ok(Priced {
-        warnings,
-        file: file.display().to_string(),
-        market_file: market_path.display().to_string(),
-        product: program.name.clone(),
-        currency: program.currency.clone(),
-        notional: program.notional,
-        params: product.params.clone(),
-        params_written: product.params_written.iter().map(|w| w.text(&source).to_string()).collect(),
-        estimate,
-        record: Record {
-            version: env!("CARGO_PKG_VERSION"),
-            payoff_sha256: sha256_hex(source.as_bytes()),
-            market_sha256: sha256_hex(&market_bytes),
-            control_variates: settings.control_variates,
-            overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
-            target,
-        },
-    })
+    Ok(Compiled { file: file.to_path_buf(), source, product, market_path, market_bytes, program })
+}
+
+impl Compiled {
+    /// The report of a simulation of this payoff (or the failure of the simulation).
+    pub fn priced(
+        &self,
+        estimate: Result<sim::Estimate, Diagnostic>,
+        settings: &Settings,
+        overrides: &[Override],
+        target: Option<TargetOutcome>,
+    ) -> Result<Priced, Failure> {
+        let (file, source, product, program) = (&self.file, &self.source, &self.product, &self.program);
+        let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
+        let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+        let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
+        let warnings = render_all(&in_file(found), Some(source));
+        Ok(Priced {
+            warnings,
+            file: file.display().to_string(),
+            market_file: self.market_path.display().to_string(),
+            product: program.name.clone(),
+            currency: program.currency.clone(),
+            notional: program.notional,
+            params: product.params.clone(),
+            params_written: product.params_written.iter().map(|w| w.text(source).to_string()).collect(),
+            estimate,
+            record: Record {
+                version: env!("CARGO_PKG_VERSION"),
+                payoff_sha256: sha256_hex(source.as_bytes()),
+                market_sha256: sha256_hex(&self.market_bytes),
+                control_variates: settings.control_variates,
+                overrides: overrides.iter().map(|o| format!("{}={}", o.name, o.value)).collect(),
+                target,
+            },
+        })
+    }
 }
 
 #[cfg(test)]

@@ -1173,7 +1173,7 @@ mod tests {
     #[test]
     fn slips_get_their_hint_only_where_they_stand() {
         let message = |src: &str| parse(src).unwrap_err().message;
-        assert!(message("param a = 7 % 2").contains("no remainder operator"));
+        assert!(message("param a = 7 % 2").contains("not a remainder operator"));
         // A percentage ending a line is not a remainder: the next line's slip is its own.
         assert!(!message("param a = 70%\nfoo bar").contains("remainder"));
         assert!(message("at 1y { if a then pay 1 }").contains("braces"));

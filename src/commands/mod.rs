@@ -5,6 +5,7 @@
 
 pub mod check;
 pub mod compare;
+pub mod merge;
 pub mod price;
 
 use std::fs;

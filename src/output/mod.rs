@@ -29,7 +29,7 @@ pub fn write_one(out: &mut dyn Write, p: &Priced, format: Format) -> io::Result<
 }
 
 /// The line every report ends with.
-pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
+pub use crate::pricing::CAUTION;
 
 /// Output formats.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]

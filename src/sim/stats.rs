@@ -60,6 +60,17 @@ impl Moments {
         m
     }
 
+    /// The count, the means and the co-moment matrix (row by row): everything the moments
+    /// are, for storing a partial run exactly.
+    pub fn parts(&self) -> (f64, &[f64], &[f64]) {
+        (self.n, &self.mean, &self.m2)
+    }
+
+    /// The moments [`Moments::parts`] gave; `None` unless `m2` is the square of `mean`.
+    pub fn from_parts(n: f64, mean: Vec<f64>, m2: Vec<f64>) -> Option<Moments> {
+        (m2.len() == mean.len() * mean.len()).then_some(Moments { n, mean, m2 })
+    }
+
     /// Adds another sample's moments (Chan, Golub and LeVeque's pairwise update).
     pub fn merge(&mut self, other: &Moments) {
         if other.n == 0.0 {
