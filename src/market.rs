@@ -132,6 +132,81 @@ impl Market {
         self.correlations.get(&pair_key(a, b)).map(|g| g.value)
     }
 
+    /// Every underlying's parameters, in file order.
+    pub fn underlyings(&self) -> impl Iterator<Item = (&str, &Underlying)> {
+        self.underlyings.iter().map(|(n, u)| (n.as_str(), u))
+    }
+
+    fn bumped_underlying(&self, name: &str, change: impl FnOnce(&mut Underlying)) -> Result<Market, String> {
+        let mut m = self.clone();
+        let u = m
+            .underlyings
+            .iter_mut()
+            .find(|(n, _)| n == name)
+            .map(|(_, u)| u)
+            .ok_or_else(|| format!("the market has no underlying `{name}`"))?;
+        change(u);
+        if !(u.spot.is_finite() && u.spot > 0.0) {
+            return Err(format!("the bumped spot of `{name}` is not positive"));
+        }
+        if !(u.volatility.is_finite() && u.volatility > 0.0 && u.volatility <= MAX_VOLATILITY) {
+            return Err(format!("the bumped volatility of `{name}` is outside (0, {MAX_VOLATILITY}]"));
+        }
+        Ok(m)
+    }
+
+    /// A copy with `name`'s spot multiplied by `factor` (1.01 for +1%).
+    pub fn with_spot_scaled(&self, name: &str, factor: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.spot *= factor)
+    }
+
+    /// A copy with `name`'s volatility moved by `shift` (0.01 for one volatility point).
+    pub fn with_volatility_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.volatility += shift)
+    }
+
+    /// A copy with `name`'s dividend yield moved by `shift` (0.0001 for one basis point).
+    pub fn with_dividend_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.dividend_yield += shift)
+    }
+
+    /// A copy with every rate moved by `shift` (0.0001 for one basis point).
+    pub fn with_rates_shifted(&self, shift: f64) -> Market {
+        let mut m = self.clone();
+        for r in m.rates.values_mut() {
+            *r += shift;
+        }
+        m
+    }
+
+    /// A copy with the correlation of `a` and `b` moved by `shift`; an error if the pair
+    /// is not given, leaves [-1, 1], or the matrix of `names` is no longer positive
+    /// definite.
+    pub fn with_correlation_shifted(&self, a: &str, b: &str, shift: f64, names: &[&str]) -> Result<Market, String> {
+        let mut m = self.clone();
+        let given = m
+            .correlations
+            .get_mut(&pair_key(a, b))
+            .ok_or_else(|| format!("the market gives no correlation between {a} and {b}"))?;
+        given.value += shift;
+        if !(-1.0..=1.0).contains(&given.value) {
+            return Err(format!("the correlation of {a} and {b} moved by {shift} leaves [-1, 1]"));
+        }
+        m.cholesky(names, Path::new("market"))
+            .map_err(|_| format!("the correlation matrix with {a}–{b} moved by {shift} is not positive definite"))?;
+        Ok(m)
+    }
+
+    /// A copy valued `days` calendar days later, everything else unchanged.
+    pub fn with_valuation_later(&self, days: i64) -> Result<Market, String> {
+        let mut m = self.clone();
+        m.valuation_date = self
+            .valuation_date
+            .add_days(days)
+            .ok_or_else(|| "the valuation date moved forward is past the supported years".to_string())?;
+        Ok(m)
+    }
+
     /// Lower-triangular Cholesky factor (row-major) of the correlation matrix of `names` in
     /// that order, so that `L·Lᵀ` is the matrix. `file` labels the error: the market file.
     ///
