@@ -31,6 +31,7 @@ pub mod files;
 pub mod market;
 pub mod output;
 pub mod pricing;
+pub mod risk;
 pub mod sim;
 pub mod syntax;
 pub mod typing;

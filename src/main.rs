@@ -4,7 +4,7 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use pathfold::commands::{check, compare, price};
+use pathfold::commands::{check, compare, price, risk};
 use pathfold::output::CAUTION;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -23,6 +23,8 @@ enum Command {
     Compare(compare::CompareArgs),
     /// Price the validation set and compare each case with its closed form.
     Check(check::CheckArgs),
+    /// Sensitivities (delta, gamma, vega, dividend, rho, correlation, theta) on common paths.
+    Risk(risk::RiskArgs),
 }
 
 fn main() -> ExitCode {
@@ -30,5 +32,6 @@ fn main() -> ExitCode {
         Command::Price(args) => price::run(&args),
         Command::Compare(args) => compare::run(&args),
         Command::Check(args) => check::run(&args),
+        Command::Risk(args) => risk::run(&args),
     }
 }

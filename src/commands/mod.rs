@@ -6,6 +6,7 @@
 pub mod check;
 pub mod compare;
 pub mod price;
+pub mod risk;
 
 use std::fs;
 use std::io::{self, IsTerminal, Write};

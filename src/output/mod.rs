@@ -8,6 +8,7 @@ pub mod atomic;
 pub mod checks;
 pub mod comparison;
 pub mod priced;
+pub mod risk;
 pub mod rows;
 
 use std::io::{self, Write};
