@@ -109,10 +109,12 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
         for r in results {
             match r {
                 Ok(m) => total.merge(&m),
-                Err(j) => return Err(Diagnostic::new(format!(
+                Err(j) => {
+                    return Err(Diagnostic::new(format!(
                     "scenario {} of {k} pays amounts that are not finite numbers; price the payoff alone to see where",
                     j + 1
-                ))),
+                )))
+                }
             }
         }
         next = end;
