@@ -33,6 +33,7 @@ pub mod output;
 pub mod pricing;
 pub mod risk;
 pub mod sim;
+pub mod solve;
 pub mod syntax;
 pub mod typing;
 pub mod validation;

@@ -4,7 +4,7 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use pathfold::commands::{check, compare, price, risk};
+use pathfold::commands::{check, compare, price, risk, solve};
 use pathfold::output::CAUTION;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -25,6 +25,8 @@ enum Command {
     Check(check::CheckArgs),
     /// Sensitivities (delta, gamma, vega, dividend, rho, correlation, theta) on common paths.
     Risk(risk::RiskArgs),
+    /// Solve for a parameter (a coupon) at which the price equals a target.
+    Solve(solve::SolveArgs),
 }
 
 fn main() -> ExitCode {
@@ -33,5 +35,6 @@ fn main() -> ExitCode {
         Command::Compare(args) => compare::run(&args),
         Command::Check(args) => check::run(&args),
         Command::Risk(args) => risk::run(&args),
+        Command::Solve(args) => solve::run(&args),
     }
 }

@@ -7,6 +7,7 @@ pub mod check;
 pub mod compare;
 pub mod price;
 pub mod risk;
+pub mod solve;
 
 use std::fs;
 use std::io::{self, IsTerminal, Write};

@@ -10,6 +10,7 @@ pub mod comparison;
 pub mod priced;
 pub mod risk;
 pub mod rows;
+pub mod solve;
 
 use std::io::{self, Write};
 
