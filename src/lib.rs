@@ -28,6 +28,7 @@ pub mod compile;
 pub mod date;
 pub mod diagnostic;
 pub mod files;
+pub mod ladder;
 pub mod market;
 pub mod output;
 pub mod pricing;

@@ -4,7 +4,7 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use pathfold::commands::{check, compare, price, risk, solve};
+use pathfold::commands::{check, compare, ladder, price, risk, solve};
 use pathfold::output::CAUTION;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -27,6 +27,8 @@ enum Command {
     Risk(risk::RiskArgs),
     /// Solve for a parameter (a coupon) at which the price equals a target.
     Solve(solve::SolveArgs),
+    /// Prices on a grid of spot, volatility or rate shifts, with an SVG chart.
+    Ladder(ladder::LadderArgs),
 }
 
 fn main() -> ExitCode {
@@ -36,5 +38,6 @@ fn main() -> ExitCode {
         Command::Check(args) => check::run(&args),
         Command::Risk(args) => risk::run(&args),
         Command::Solve(args) => solve::run(&args),
+        Command::Ladder(args) => ladder::run(&args),
     }
 }

@@ -5,6 +5,7 @@
 
 pub mod check;
 pub mod compare;
+pub mod ladder;
 pub mod price;
 pub mod risk;
 pub mod solve;

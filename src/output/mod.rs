@@ -7,6 +7,7 @@
 pub mod atomic;
 pub mod checks;
 pub mod comparison;
+pub mod ladder;
 pub mod priced;
 pub mod risk;
 pub mod rows;
