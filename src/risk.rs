@@ -188,7 +188,7 @@ pub fn risk_of(loaded: &Loaded, settings: &Settings, bumps: &Bumps) -> Result<Ri
             (Err(e), _) | (_, Err(e)) => Err(e.clone()),
         }
     };
-    let pct = |x: f64| format!("{}", trim(x * 100.0));
+    let pct = |x: f64| trim(x * 100.0);
     for (n, s) in names.iter().zip(&per_name) {
         let spot = base.underlying(n).map_or(f64::NAN, |u| u.spot);
         let h = bumps.spot;
