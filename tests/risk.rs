@@ -145,3 +145,14 @@ fn correlation_sensitivity_of_the_demo_is_reported_per_pair() {
         assert!(s.value > -4.0 * s.std_error, "{s:?}");
     }
 }
+
+#[test]
+fn same_seed_same_bits_on_one_thread_or_two() {
+    let args = |t: &'static str| {
+        ["risk", "payoffs/worst_of_autocall.payoff", "--paths", "3000", "--format", "json", "--threads", t]
+    };
+    let (one, err, code) = run(&args("1"));
+    assert_eq!(code, Some(0), "{err}");
+    let (two, _, _) = run(&args("2"));
+    assert_eq!(one, two);
+}
