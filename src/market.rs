@@ -1231,4 +1231,24 @@ VNTL = { OSMP = 0.50 }
         assert!(shown.starts_with("market.toml:16:14: underlyings.QMEN.volatility"), "{shown}");
         assert!(shown.contains("^^^^^"), "{shown}");
     }
+
+    #[test]
+    fn bumped_copies_move_one_thing_and_keep_the_matrix_positive_definite() {
+        let m = Market::from_toml(DEMO, file()).unwrap();
+        let up = m.with_spot_scaled("ZPHX", 1.01).unwrap();
+        assert_eq!(up.underlying("ZPHX").unwrap().spot, 4250.0 * 1.01);
+        assert_eq!(up.underlying("QMEN"), m.underlying("QMEN"));
+        assert!(m.with_spot_scaled("NONE", 1.01).is_err());
+        assert!(m.with_volatility_shifted("ZPHX", -0.18).is_err(), "a volatility of 0 is refused");
+        assert_eq!(m.with_rates_shifted(0.001).rate("USD"), Some(0.038 + 0.001));
+        let names = ["ZPHX", "QMEN", "OSMP", "VNTL"];
+        let c = m.with_correlation_shifted("QMEN", "ZPHX", 0.01, &names).unwrap();
+        assert_eq!(c.correlation("ZPHX", "QMEN"), Some(0.55 + 0.01));
+        // 0.55 + 0.5 leaves [-1, 1]; −0.9 against the others' positive correlations is not
+        // positive definite.
+        assert!(m.with_correlation_shifted("ZPHX", "QMEN", 0.5, &names).is_err());
+        let e = m.with_correlation_shifted("ZPHX", "QMEN", -1.45, &names).unwrap_err();
+        assert!(e.contains("not positive definite"), "{e}");
+        assert_eq!(m.with_valuation_later(1).unwrap().valuation_date, Date::parse("2026-12-02").unwrap());
+    }
 }

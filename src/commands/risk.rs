@@ -107,10 +107,18 @@ pub fn run(args: &RiskArgs) -> ExitCode {
         Err(code) => return code,
     };
     match result {
-        Ok(r) => match emit(a.output.as_deref(), |w| risk::write_risk(w, &r, a.format)) {
-            Ok(()) => ExitCode::SUCCESS,
-            Err(code) => code,
-        },
+        Ok(r) => {
+            // The table lists them; CSV has no place for them, JSON has `notes`.
+            if a.format != Format::Table {
+                for n in &r.notes {
+                    eprintln!("note: {n}");
+                }
+            }
+            match emit(a.output.as_deref(), |w| risk::write_risk(w, &r, a.format)) {
+                Ok(()) => ExitCode::SUCCESS,
+                Err(code) => code,
+            }
+        }
         Err(f) => {
             eprint!("{}", f.render());
             ExitCode::from(if f.internal { 1 } else { 2 })
