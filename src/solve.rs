@@ -34,6 +34,10 @@ pub struct Solved {
     pub evaluations: usize,
     /// Whether the price was found affine in the parameter (one step).
     pub affine: bool,
+    /// Whether the price at the value meets the target to the tolerance; false when the
+    /// price jumps across the target on these paths (a barrier level, say): the value is
+    /// then the trial nearest the jump.
+    pub reached: bool,
     pub bracket: (f64, f64),
     pub paths: u64,
     pub seed: u64,
@@ -166,6 +170,7 @@ pub fn solve_file(
         slope,
         evaluations,
         affine,
+        reached: f(at).abs() <= tol,
         bracket: (lo, hi),
         paths: settings.paths,
         seed: settings.seed,

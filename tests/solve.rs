@@ -25,6 +25,7 @@ fn a_fixed_coupon_note_solves_to_the_coupon_from_discount_factors() {
     let value = v["value"].as_f64().unwrap();
     assert!((value - exact).abs() < 1e-9, "{value} vs {exact}");
     assert_eq!(v["affine"], true);
+    assert_eq!(v["reached"], true);
     assert!(v["evaluations"].as_u64().unwrap() <= 6, "{v}");
     assert!((v["price"].as_f64().unwrap() - 980_000.0).abs() < 1e-3);
     for key in ["parameter", "value", "std_error", "price", "price_std_error", "target", "evaluations"] {
@@ -64,4 +65,15 @@ fn solve_refuses_unknown_names_flags_and_empty_brackets() {
     let (_, err, code) = run(&["solve", file, "--for", "coupon", "--target", "98%", "--between", "9%..5%"]);
     assert_eq!(code, Some(2));
     assert!(err.contains("LO must be below HI"), "{err}");
+}
+
+#[test]
+fn a_step_in_the_parameter_is_reported_not_hidden() {
+    // On fixed paths the price is a step function of a barrier level (`protection`): the
+    // search ends at the jump nearest the target, and says that the target is not met.
+    let v = solve(&["payoffs/worst_of_autocall.payoff", "--for", "protection", "--target", "97%", "--paths", "4000"]);
+    assert_eq!(v["affine"], false);
+    assert_eq!(v["reached"], false);
+    let value = v["value"].as_f64().unwrap();
+    assert!(value > 0.0 && value < 2.4, "{value}");
 }

@@ -26,6 +26,7 @@ pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Resu
                 "currency",
                 "evaluations",
                 "affine",
+                "reached",
                 "paths",
                 "seed",
                 "caution",
@@ -41,6 +42,7 @@ pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Resu
                 s.currency.clone(),
                 s.evaluations.to_string(),
                 s.affine.to_string(),
+                s.reached.to_string(),
                 s.paths.to_string(),
                 s.seed.to_string(),
                 CAUTION.to_string(),
@@ -79,6 +81,13 @@ pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Resu
                 if s.affine { "; the price is affine in the parameter: one step" } else { "; Brent's method" }
             )?;
             writeln!(out, "the error of the value is the price's over the slope ({} per unit)", group(s.slope, 2))?;
+            if !s.reached {
+                writeln!(
+                    out,
+                    "note: the price jumps across the target on these paths (it is a step function of `{}`): the value is where the jump is, and the price there misses the target",
+                    s.parameter
+                )?;
+            }
             writeln!(out)?;
             writeln!(out, "{CAUTION}")
         }
@@ -99,6 +108,7 @@ pub fn to_json(s: &Solved) -> serde_json::Value {
         "slope": s.slope,
         "evaluations": s.evaluations,
         "affine": s.affine,
+        "reached": s.reached,
         "between": [s.bracket.0, s.bracket.1],
         "paths": s.paths,
         "seed": s.seed,
