@@ -307,6 +307,12 @@ fn theta(loaded: &Loaded, settings: &Settings, days: i64) -> Result<(f64, f64), 
     let later = loaded.market.with_valuation_later(days)?;
     let aged = Struck { aged_days: days, ..struck };
     let next = loaded.compile(&later, &aged).map_err(|f| pricing::one_line(&f))?;
+    if next.grid.len() != base.grid.len() {
+        return Err(format!(
+            "a fixing falls on {}, the valuation date {days} day(s) later, so the aged trade has another number of simulation dates and cannot be priced on the same paths; price it with a market file valued then for an aged value without common paths",
+            later.valuation_date
+        ));
+    }
     let joint: Joint = simulate_joint(&[base, next], settings).map_err(|d: Diagnostic| d.message)?;
     Ok(joint.combination(&[(1, 1.0), (0, -1.0)]))
 }

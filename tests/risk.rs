@@ -156,3 +156,13 @@ fn same_seed_same_bits_on_one_thread_or_two() {
     let (two, _, _) = run(&args("2"));
     assert_eq!(one, two);
 }
+
+#[test]
+fn theta_that_cannot_share_the_paths_is_left_out_with_a_note() {
+    // Daily fixings from tomorrow: one day later the first fixing is today, the grid has
+    // one date fewer, so theta is named as left out and the rest is still reported.
+    let r = risk("payoffs/up_and_out_call.payoff", 2_000, 1);
+    assert!(r.sensitivities.iter().all(|s| s.measure != "theta"));
+    assert!(r.notes.iter().any(|n| n.starts_with("theta: a fixing falls on 2026-12-02")), "{:?}", r.notes);
+    assert!(r.sensitivities.iter().any(|s| s.measure == "delta"));
+}
