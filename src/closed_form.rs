@@ -37,7 +37,7 @@ pub use barrier::{
 pub use lookback::{fixed_lookback, floating_lookback};
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
 pub use two_asset::{margrabe, two_asset_extreme};
-pub use vanilla::{asset_or_nothing, black_scholes, cash_or_nothing, forward_start};
+pub use vanilla::{asset_or_nothing, black_scholes, black_scholes_greeks, cash_or_nothing, forward_start, Greeks};
 
 /// Call or put.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

@@ -167,8 +167,32 @@ pub struct Program {
     pub averages: Vec<(usize, Vec<usize>)>,
 }
 
+/// How a trade that is already struck is compiled, for sensitivities: what stays fixed
+/// when the market moves. The default (nothing fixed) is an ordinary pricing.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Struck {
+    /// The initial levels, by underlying in the product's order, used when the start is
+    /// the valuation date: the trade counts as struck at these levels, so a bumped spot
+    /// moves today's level and not the level `perf` divides by. `None`: today's spots.
+    pub initial_levels: Option<Vec<f64>>,
+    /// Days the trade has aged: year offsets (`1y`) count from the date it was written,
+    /// this many days before the market's valuation date, so they shrink by as much (an
+    /// offset that would fall before the valuation date is read on it). For theta.
+    pub aged_days: i64,
+}
+
 /// Compiles a checked product against a market.
 pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path) -> Result<Program, Vec<Diagnostic>> {
+    compile_struck(product, market, market_file, &Struck::default())
+}
+
+/// [`compile`], with what a struck trade keeps fixed ([`Struck`]).
+pub fn compile_struck(
+    product: &Product,
+    market: &Market,
+    market_file: &std::path::Path,
+    struck: &Struck,
+) -> Result<Program, Vec<Diagnostic>> {
     let mut errors = Vec::new();
     let valuation = market.valuation_date;
     // Underlyings from the market.
@@ -223,7 +247,10 @@ pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path
     let rate = rate.unwrap_or(0.0);
     let names: Vec<&str> = assets.iter().map(|a| a.name.as_str()).collect();
     let cholesky = market.cholesky(&names, market_file).map_err(|e| vec![e])?;
+    let initial_levels = struck.initial_levels.clone().filter(|l| l.len() == assets.len());
     let mut c = Compiler::new(product, valuation, rate, assets);
+    c.aged = struck.aged_days as f64 / 365.0;
+    c.initial_levels = initial_levels.clone();
     c.resolve_schedules();
     c.resolve_start();
     if !c.errors.is_empty() {
@@ -236,6 +263,13 @@ pub fn compile(product: &Product, market: &Market, market_file: &std::path::Path
     }
     let mut program = c.finish();
     program.cholesky = cholesky;
+    // A barrier relative to an initial level fixed today is a fixed level.
+    if let (Some(levels), 0) = (&initial_levels, program.start) {
+        for m in program.monitors.iter_mut().filter(|m| m.relative) {
+            m.level *= levels[m.asset];
+            m.relative = false;
+        }
+    }
     Ok(program)
 }
 
@@ -288,6 +322,10 @@ struct Compiler<'p> {
     /// Running accumulators of aggregates that read only levels, by (site, schedule):
     /// the register and how many fixings it already holds.
     running: std::collections::HashMap<(usize, usize, usize), (u32, usize)>,
+    /// Years the trade has aged ([`Struck::aged_days`]).
+    aged: f64,
+    /// Initial levels fixed for a start on the valuation date ([`Struck::initial_levels`]).
+    initial_levels: Option<Vec<f64>>,
 }
 
 /// The date context an expression is compiled in.
@@ -331,6 +369,8 @@ impl<'p> Compiler<'p> {
             pay_sites: Vec::new(),
             averages: Vec::new(),
             running: std::collections::HashMap::new(),
+            aged: 0.0,
+            initial_levels: None,
         }
     }
 
@@ -352,7 +392,7 @@ impl<'p> Compiler<'p> {
                 }
                 Some((self.valuation.years_until(d), Some(d)))
             }
-            DateTerm::Years(y) => Some((y, None)),
+            DateTerm::Years(y) => Some(((y - self.aged).max(0.0), None)),
             DateTerm::Start => Some(self.start),
         }
     }
@@ -819,7 +859,10 @@ impl<'p> Compiler<'p> {
             return None;
         }
         let idx = self.grid_index(self.start.0);
-        Some(self.level(asset, idx))
+        match (&self.initial_levels, idx) {
+            (Some(levels), 0) => Some(V::konst(levels[asset])),
+            _ => Some(self.level(asset, idx)),
+        }
     }
 
     /// The date an expression is read on: the block's date, or inside an aggregate the

@@ -4,7 +4,7 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use pathfold::commands::{check, compare, merge, price};
+use pathfold::commands::{check, compare, ladder, merge, price, risk, solve};
 use pathfold::output::CAUTION;
 
 /// Prices exotic equity payoffs written in pathfold's payoff language, by Monte Carlo.
@@ -25,6 +25,12 @@ enum Command {
     Check(check::CheckArgs),
     /// Combine the partial results of `price FILE --part K/N` into the full run's result.
     Merge(merge::MergeArgs),
+    /// Sensitivities (delta, gamma, vega, dividend, rho, correlation, theta) on common paths.
+    Risk(risk::RiskArgs),
+    /// Solve for a parameter (a coupon) at which the price equals a target.
+    Solve(solve::SolveArgs),
+    /// Prices on a grid of spot, volatility or rate shifts, with an SVG chart.
+    Ladder(ladder::LadderArgs),
 }
 
 fn main() -> ExitCode {
@@ -33,5 +39,8 @@ fn main() -> ExitCode {
         Command::Compare(args) => compare::run(&args),
         Command::Check(args) => check::run(&args),
         Command::Merge(args) => merge::run(&args),
+        Command::Risk(args) => risk::run(&args),
+        Command::Solve(args) => solve::run(&args),
+        Command::Ladder(args) => ladder::run(&args),
     }
 }

@@ -132,6 +132,81 @@ impl Market {
         self.correlations.get(&pair_key(a, b)).map(|g| g.value)
     }
 
+    /// Every underlying's parameters, in file order.
+    pub fn underlyings(&self) -> impl Iterator<Item = (&str, &Underlying)> {
+        self.underlyings.iter().map(|(n, u)| (n.as_str(), u))
+    }
+
+    fn bumped_underlying(&self, name: &str, change: impl FnOnce(&mut Underlying)) -> Result<Market, String> {
+        let mut m = self.clone();
+        let u = m
+            .underlyings
+            .iter_mut()
+            .find(|(n, _)| n == name)
+            .map(|(_, u)| u)
+            .ok_or_else(|| format!("the market has no underlying `{name}`"))?;
+        change(u);
+        if !(u.spot.is_finite() && u.spot > 0.0) {
+            return Err(format!("the bumped spot of `{name}` is not positive"));
+        }
+        if !(u.volatility.is_finite() && u.volatility > 0.0 && u.volatility <= MAX_VOLATILITY) {
+            return Err(format!("the bumped volatility of `{name}` is outside (0, {MAX_VOLATILITY}]"));
+        }
+        Ok(m)
+    }
+
+    /// A copy with `name`'s spot multiplied by `factor` (1.01 for +1%).
+    pub fn with_spot_scaled(&self, name: &str, factor: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.spot *= factor)
+    }
+
+    /// A copy with `name`'s volatility moved by `shift` (0.01 for one volatility point).
+    pub fn with_volatility_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.volatility += shift)
+    }
+
+    /// A copy with `name`'s dividend yield moved by `shift` (0.0001 for one basis point).
+    pub fn with_dividend_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
+        self.bumped_underlying(name, |u| u.dividend_yield += shift)
+    }
+
+    /// A copy with every rate moved by `shift` (0.0001 for one basis point).
+    pub fn with_rates_shifted(&self, shift: f64) -> Market {
+        let mut m = self.clone();
+        for r in m.rates.values_mut() {
+            *r += shift;
+        }
+        m
+    }
+
+    /// A copy with the correlation of `a` and `b` moved by `shift`; an error if the pair
+    /// is not given, leaves [-1, 1], or the matrix of `names` is no longer positive
+    /// definite.
+    pub fn with_correlation_shifted(&self, a: &str, b: &str, shift: f64, names: &[&str]) -> Result<Market, String> {
+        let mut m = self.clone();
+        let given = m
+            .correlations
+            .get_mut(&pair_key(a, b))
+            .ok_or_else(|| format!("the market gives no correlation between {a} and {b}"))?;
+        given.value += shift;
+        if !(-1.0..=1.0).contains(&given.value) {
+            return Err(format!("the correlation of {a} and {b} moved by {shift} leaves [-1, 1]"));
+        }
+        m.cholesky(names, Path::new("market"))
+            .map_err(|_| format!("the correlation matrix with {a}–{b} moved by {shift} is not positive definite"))?;
+        Ok(m)
+    }
+
+    /// A copy valued `days` calendar days later, everything else unchanged.
+    pub fn with_valuation_later(&self, days: i64) -> Result<Market, String> {
+        let mut m = self.clone();
+        m.valuation_date = self
+            .valuation_date
+            .add_days(days)
+            .ok_or_else(|| "the valuation date moved forward is past the supported years".to_string())?;
+        Ok(m)
+    }
+
     /// Lower-triangular Cholesky factor (row-major) of the correlation matrix of `names` in
     /// that order, so that `L·Lᵀ` is the matrix. `file` labels the error: the market file.
     ///
@@ -1155,5 +1230,25 @@ VNTL = { OSMP = 0.50 }
         let shown = d.render(Some(&text));
         assert!(shown.starts_with("market.toml:16:14: underlyings.QMEN.volatility"), "{shown}");
         assert!(shown.contains("^^^^^"), "{shown}");
+    }
+
+    #[test]
+    fn bumped_copies_move_one_thing_and_keep_the_matrix_positive_definite() {
+        let m = Market::from_toml(DEMO, file()).unwrap();
+        let up = m.with_spot_scaled("ZPHX", 1.01).unwrap();
+        assert_eq!(up.underlying("ZPHX").unwrap().spot, 4250.0 * 1.01);
+        assert_eq!(up.underlying("QMEN"), m.underlying("QMEN"));
+        assert!(m.with_spot_scaled("NONE", 1.01).is_err());
+        assert!(m.with_volatility_shifted("ZPHX", -0.18).is_err(), "a volatility of 0 is refused");
+        assert_eq!(m.with_rates_shifted(0.001).rate("USD"), Some(0.038 + 0.001));
+        let names = ["ZPHX", "QMEN", "OSMP", "VNTL"];
+        let c = m.with_correlation_shifted("QMEN", "ZPHX", 0.01, &names).unwrap();
+        assert_eq!(c.correlation("ZPHX", "QMEN"), Some(0.55 + 0.01));
+        // 0.55 + 0.5 leaves [-1, 1]; −0.9 against the others' positive correlations is not
+        // positive definite.
+        assert!(m.with_correlation_shifted("ZPHX", "QMEN", 0.5, &names).is_err());
+        let e = m.with_correlation_shifted("ZPHX", "QMEN", -1.45, &names).unwrap_err();
+        assert!(e.contains("not positive definite"), "{e}");
+        assert_eq!(m.with_valuation_later(1).unwrap().valuation_date, Date::parse("2026-12-02").unwrap());
     }
 }

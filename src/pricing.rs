@@ -215,12 +215,7 @@ pub struct Compiled {
 
 /// Parses, checks and compiles one payoff file with its market data.
 pub fn compile_file(file: &Path, market: Option<&Path>, overrides: &[Override]) -> Result<Compiled, Failure> {
-    let bytes = read_regular_bytes(file).map_err(|e| {
-        Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
-    })?;
-    let source =
-        crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
-    compile_source(file, source, market, overrides)
+    compile_loaded(load(file, market, overrides)?)
 }
 
 /// [`compile_file`] for a payoff's text; `file` names it in messages, and a market file
@@ -231,42 +226,17 @@ pub fn compile_source(
     market: Option<&Path>,
     overrides: &[Override],
 ) -> Result<Compiled, Failure> {
-    let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
-    // Parsing and checking recurse once per level of nesting: they get a stack of known size.
-    let product = syntax::on_deep_stack(|| {
-        let tree = syntax::parse(&source).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
-        typing::check(&tree, overrides).map_err(|ds| Failure::input(in_file(ds), Some(source.clone())))
-    })?;
-    let market_path = match (market, &product.market) {
-        (Some(m), _) => m.to_path_buf(),
-        (None, Some((name, _))) => file.parent().unwrap_or(Path::new(".")).join(name),
-        (None, None) => {
-            let d = Diagnostic::new("no market data: the payoff names no market file and none was given")
-                .with_fix("pass `--market FILE`, or add a line `market \"market.toml\"` to the payoff");
-            return Err(Failure::input(in_file(vec![d]), Some(source)));
-        }
-    };
-    let market_data = match Market::load(&market_path) {
-        Ok(m) => m,
-        Err(ds) => {
-            let text = read_regular_file(&market_path).ok();
-            let ds = ds.into_iter().map(|d| d.in_file(&market_path)).collect();
-            return Err(Failure::input(ds, text));
-        }
-    };
-    let program = syntax::on_deep_stack(|| compile::compile(&product, &market_data, &market_path)).map_err(|ds| {
-        // Errors in the market (a correlation pair) name the market file; the rest point into the payoff.
-        let market_side = ds.iter().any(|d| d.file.as_deref() == Some(market_path.as_path()));
-        if market_side {
-            Failure::input(ds, read_regular_file(&market_path).ok())
-        } else {
-            Failure::input(in_file(ds), Some(source.clone()))
-        }
-    })?;
+    compile_loaded(load_source(file, source, market, overrides)?)
+}
+
+/// Compiles a loaded payoff against its own market, as struck today.
+fn compile_loaded(loaded: Loaded) -> Result<Compiled, Failure> {
+    let program = loaded.compile(&loaded.market, &compile::Struck::default())?;
+    let Loaded { file, source, product, market_path, .. } = loaded;
     let market_bytes = read_regular_bytes(&market_path).map_err(|e| {
         Failure::input(vec![Diagnostic::new(format!("cannot read the market file: {e}")).in_file(&market_path)], None)
     })?;
-    Ok(Compiled { file: file.to_path_buf(), source, product, market_path, market_bytes, program })
+    Ok(Compiled { file, source, product, market_path, market_bytes, program })
 }
 
 impl Compiled {
@@ -302,6 +272,83 @@ impl Compiled {
                 target,
             },
         })
+    }
+}
+
+/// A payoff file read, checked and paired with its market: what every pricing of it
+/// starts from. Compile it against the market, or a bumped copy, with [`Loaded::compile`].
+#[derive(Clone, Debug)]
+pub struct Loaded {
+    pub file: std::path::PathBuf,
+    pub source: String,
+    pub product: typing::Product,
+    pub market: Market,
+    pub market_path: std::path::PathBuf,
+}
+
+/// Reads and checks a payoff file and its market (`--market`, or the file the payoff names).
+pub fn load(file: &Path, market: Option<&Path>, overrides: &[Override]) -> Result<Loaded, Failure> {
+    let bytes = read_regular_bytes(file).map_err(|e| {
+        Failure::input(vec![Diagnostic::new(format!("cannot read the payoff file: {e}")).in_file(file)], None)
+    })?;
+    let source =
+        crate::diagnostic::decode_source(bytes).map_err(|e| Failure::input(vec![e.0.in_file(file)], Some(e.1)))?;
+    load_source(file, source, market, overrides)
+}
+
+/// [`load`] for a payoff's text; `file` names it in messages, and a market file the payoff
+/// names is looked for beside `file`.
+pub fn load_source(
+    file: &Path,
+    source: String,
+    market: Option<&Path>,
+    overrides: &[Override],
+) -> Result<Loaded, Failure> {
+    let in_file = |ds: Vec<Diagnostic>| ds.into_iter().map(|d| d.in_file(file)).collect::<Vec<_>>();
+    // Parsing and checking recurse once per level of nesting: they get a stack of known size.
+    let product = syntax::on_deep_stack(|| {
+        let tree = syntax::parse(&source).map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
+        typing::check(&tree, overrides).map_err(|ds| Failure::input(in_file(ds), Some(source.clone())))
+    })?;
+    let market_path = match (market, &product.market) {
+        (Some(m), _) => m.to_path_buf(),
+        (None, Some((name, _))) => file.parent().unwrap_or(Path::new(".")).join(name),
+        (None, None) => {
+            let d = Diagnostic::new("no market data: the payoff names no market file and none was given")
+                .with_fix("pass `--market FILE`, or add a line `market \"market.toml\"` to the payoff");
+            return Err(Failure::input(in_file(vec![d]), Some(source)));
+        }
+    };
+    let market_data = match Market::load(&market_path) {
+        Ok(m) => m,
+        Err(ds) => {
+            let text = read_regular_file(&market_path).ok();
+            let ds = ds.into_iter().map(|d| d.in_file(&market_path)).collect();
+            return Err(Failure::input(ds, text));
+        }
+    };
+    Ok(Loaded { file: file.to_path_buf(), source, product, market: market_data, market_path })
+}
+
+impl Loaded {
+    /// Compiles the product against `market` (this file's market or a bumped copy of it),
+    /// keeping fixed what `struck` says.
+    pub fn compile(&self, market: &Market, struck: &compile::Struck) -> Result<compile::Program, Failure> {
+        let (file, market_path) = (&self.file, &self.market_path);
+        syntax::on_deep_stack(|| compile::compile_struck(&self.product, market, market_path, struck)).map_err(|ds| {
+            // Errors in the market (a correlation pair) name the market file; the rest point into the payoff.
+            let market_side = ds.iter().any(|d| d.file.as_deref() == Some(market_path.as_path()));
+            if market_side {
+                Failure::input(ds, read_regular_file(market_path).ok())
+            } else {
+                Failure::input(ds.into_iter().map(|d| d.in_file(file)).collect(), Some(self.source.clone()))
+            }
+        })
+    }
+
+    /// The failure of a simulation of this file, pointing into it.
+    pub fn failure(&self, d: Diagnostic) -> Failure {
+        Failure::input(vec![d.in_file(&self.file)], Some(self.source.clone()))
     }
 }
 

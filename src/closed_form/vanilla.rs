@@ -29,6 +29,41 @@ pub fn black_scholes(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, s
     phi * (s * carry * norm_cdf(phi * d1) - k * disc * norm_cdf(phi * d2))
 }
 
+/// Black–Scholes–Merton sensitivities of a European call or put, per unit of each input:
+/// delta ∂V/∂S, gamma ∂²V/∂S², vega ∂V/∂σ, theta ∂V/∂t (calendar time passing, per
+/// year), rho ∂V/∂r with the carry `b` moving with `r` (a dividend yield held fixed).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Greeks {
+    pub delta: f64,
+    pub gamma: f64,
+    pub vega: f64,
+    pub theta: f64,
+    pub rho: f64,
+}
+
+/// The [`Greeks`] of [`black_scholes`] (Haug, *The Complete Guide to Option Pricing
+/// Formulas*, chapter 2, written out). Preconditions as for [`black_scholes`], with
+/// `t > 0` and `sigma > 0`.
+#[allow(clippy::too_many_arguments)]
+pub fn black_scholes_greeks(kind: OptionKind, s: f64, k: f64, t: f64, r: f64, b: f64, sigma: f64) -> Greeks {
+    let phi = kind.sign();
+    let carry = ((b - r) * t).exp();
+    let disc = (-r * t).exp();
+    let v = sigma * t.sqrt();
+    let d1 = ((s / k).ln() + (b + 0.5 * sigma * sigma) * t) / v;
+    let d2 = d1 - v;
+    let pdf = super::norm_pdf(d1);
+    let delta = phi * carry * norm_cdf(phi * d1);
+    let gamma = carry * pdf / (s * v);
+    let vega = s * carry * pdf * t.sqrt();
+    let theta = -s * carry * pdf * sigma / (2.0 * t.sqrt())
+        - phi * (b - r) * s * carry * norm_cdf(phi * d1)
+        - phi * r * k * disc * norm_cdf(phi * d2);
+    // ∂/∂r with b = r − q: the strike term and the carry's drift.
+    let rho = phi * k * t * disc * norm_cdf(phi * d2);
+    Greeks { delta, gamma, vega, theta, rho }
+}
+
 /// Cash-or-nothing digital (Reiner–Rubinstein 1991): pays `cash` at `t` if
 /// the spot finishes above `k` (call) or below `k` (put).
 ///
@@ -115,6 +150,36 @@ mod tests {
         let p = black_scholes(Put, 42.0, 40.0, 0.5, 0.1, 0.1, 0.2);
         assert!(printed(c, 4.76, 2), "call {c}");
         assert!(printed(p, 0.81, 2), "put {p}");
+    }
+
+    #[test]
+    fn hull_greeks_example() {
+        // Hull, Options, Futures and Other Derivatives, the worked examples of the Greeks
+        // chapter (from memory): S = 49, K = 50, r = 5%, σ = 20%, T = 20 weeks (0.3846
+        // years), no dividends: call 2.40, delta 0.522, gamma 0.066, vega 12.1 per unit
+        // of volatility, theta −4.31 per year, rho 8.91 per unit of rate.
+        let (s, k, r, sigma, t) = (49.0, 50.0, 0.05, 0.2, 0.3846);
+        let g = black_scholes_greeks(OptionKind::Call, s, k, t, r, r, sigma);
+        assert!(printed(black_scholes(OptionKind::Call, s, k, t, r, r, sigma), 2.40, 2));
+        assert!(printed(g.delta, 0.522, 3), "delta {}", g.delta);
+        assert!(printed(g.gamma, 0.066, 3), "gamma {}", g.gamma);
+        assert!(printed(g.vega, 12.1, 1), "vega {}", g.vega);
+        assert!(printed(g.theta, -4.31, 2), "theta {}", g.theta);
+        assert!(printed(g.rho, 8.91, 2), "rho {}", g.rho);
+        // And each against a central difference of the price itself, for the put too.
+        for kind in [OptionKind::Call, OptionKind::Put] {
+            let g = black_scholes_greeks(kind, s, k, t, r, r - 0.02, sigma);
+            let p = |s: f64, t: f64, r: f64, sigma: f64| black_scholes(kind, s, k, t, r, r - 0.02, sigma);
+            let h = 1e-4;
+            assert!((g.delta - (p(s + h, t, r, sigma) - p(s - h, t, r, sigma)) / (2.0 * h)).abs() < 1e-6);
+            assert!(
+                (g.gamma - (p(s + h, t, r, sigma) - 2.0 * p(s, t, r, sigma) + p(s - h, t, r, sigma)) / (h * h)).abs()
+                    < 1e-3
+            );
+            assert!((g.vega - (p(s, t, r, sigma + h) - p(s, t, r, sigma - h)) / (2.0 * h)).abs() < 1e-5);
+            assert!((g.theta + (p(s, t + h, r, sigma) - p(s, t - h, r, sigma)) / (2.0 * h)).abs() < 1e-5);
+            assert!((g.rho - (p(s, t, r + h, sigma) - p(s, t, r - h, sigma)) / (2.0 * h)).abs() < 1e-5);
+        }
     }
 
     #[test]

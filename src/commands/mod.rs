@@ -5,8 +5,11 @@
 
 pub mod check;
 pub mod compare;
+pub mod ladder;
 pub mod merge;
 pub mod price;
+pub mod risk;
+pub mod solve;
 
 use std::fs;
 use std::io::{self, IsTerminal, Write};

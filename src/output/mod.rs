@@ -7,8 +7,11 @@
 pub mod atomic;
 pub mod checks;
 pub mod comparison;
+pub mod ladder;
 pub mod priced;
+pub mod risk;
 pub mod rows;
+pub mod solve;
 
 use std::io::{self, Write};
 

@@ -43,6 +43,11 @@ impl Workspace {
         }
     }
 
+    /// The discounted payoff of each lane of the last block run, in lane order.
+    pub fn payoffs(&self) -> &[f64] {
+        &self.pv
+    }
+
     /// Simulates block `index` (of `lanes` paths) and returns its statistics.
     pub fn run_block(
         &mut self,

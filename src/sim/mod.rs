@@ -9,6 +9,7 @@
 //! blocks in flight, not by the path count.
 
 pub mod exec;
+pub mod joint;
 pub mod partial;
 pub mod paths;
 pub mod regress;

@@ -1,0 +1,127 @@
+//! `pathfold risk FILE`: sensitivities by central finite differences on common random
+//! numbers. Exit status: 0 done, 2 bad input or option, 1 an internal failure.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::Args;
+
+use super::{checked_output, emit, with_threads};
+use crate::diagnostic::Diagnostic;
+use crate::output::{risk, Format};
+use crate::risk::{risk_file, Bumps};
+use crate::sim::{self, Settings};
+use crate::typing::Override;
+
+/// The options of `risk`, `solve` and `ladder`: one file priced on common paths.
+#[derive(Debug, Args)]
+pub struct ScenarioArgs {
+    /// The payoff file.
+    #[arg(value_name = "FILE")]
+    pub file: PathBuf,
+    /// Market data (TOML); default: the file the payoff names with `market "..."`.
+    #[arg(long, value_name = "FILE")]
+    pub market: Option<PathBuf>,
+    /// Number of paths (every scenario runs on these same paths).
+    #[arg(long, default_value_t = 100_000)]
+    pub paths: u64,
+    /// Random seed.
+    #[arg(long, default_value_t = sim::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Override a parameter: `--set coupon=2.5%` (repeatable).
+    #[arg(long = "set", value_name = "NAME=VALUE")]
+    pub set: Vec<String>,
+    /// Do not pair each path with its antithetic mirror.
+    #[arg(long)]
+    pub no_antithetic: bool,
+    /// Worker threads, 1 to 1024 (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+    /// Write the result to this file (replaced whole, never left half-written).
+    #[arg(long, value_name = "FILE")]
+    pub output: Option<PathBuf>,
+}
+
+impl ScenarioArgs {
+    /// The overrides and settings, or the message for a bad option.
+    pub fn checked(&self) -> Result<(Vec<Override>, Settings), String> {
+        let overrides: Vec<Override> = self
+            .set
+            .iter()
+            .map(|s| Override::parse(s))
+            .collect::<Result<_, Diagnostic>>()
+            .map_err(|d| d.render(None))?;
+        let settings =
+            Settings { paths: self.paths, seed: self.seed, antithetic: !self.no_antithetic, control_variates: false };
+        settings.validate().map_err(|e| e + "\n")?;
+        Ok((overrides, settings))
+    }
+
+    /// Checks the options and `--output`; the exit code on failure.
+    pub fn prepare(&self) -> Result<(Vec<Override>, Settings), ExitCode> {
+        let checked = self.checked().map_err(|e| {
+            eprint!("{e}");
+            ExitCode::from(2)
+        })?;
+        checked_output(self.output.as_deref(), &[Ok(self.file.clone())], &[self.market.as_deref()])?;
+        Ok(checked)
+    }
+
+    /// Runs `f` on the thread pool asked for.
+    pub fn on_threads<T: Send>(&self, f: impl FnOnce() -> T + Send) -> Result<T, ExitCode> {
+        with_threads(self.threads, f).map_err(|e| {
+            eprintln!("{e}");
+            ExitCode::from(2)
+        })
+    }
+}
+
+#[derive(Debug, Args)]
+pub struct RiskArgs {
+    #[command(flatten)]
+    pub scenario: ScenarioArgs,
+    /// A bump size: `spot=1%`, `vol=1` (points), `dividend=10` (bp), `rate=10` (bp),
+    /// `correlation=1` (points), `theta=1` (days). Repeatable.
+    #[arg(long = "bump", value_name = "NAME=SIZE")]
+    pub bump: Vec<String>,
+}
+
+pub fn run(args: &RiskArgs) -> ExitCode {
+    let a = &args.scenario;
+    let mut bumps = Bumps::default();
+    for b in &args.bump {
+        if let Err(e) = bumps.set(b) {
+            eprintln!("{e}");
+            return ExitCode::from(2);
+        }
+    }
+    let (overrides, settings) = match a.prepare() {
+        Ok(x) => x,
+        Err(code) => return code,
+    };
+    let result = match a.on_threads(|| risk_file(&a.file, a.market.as_deref(), &overrides, &settings, &bumps)) {
+        Ok(r) => r,
+        Err(code) => return code,
+    };
+    match result {
+        Ok(r) => {
+            // The table lists them; CSV has no place for them, JSON has `notes`.
+            if a.format != Format::Table {
+                for n in &r.notes {
+                    eprintln!("note: {n}");
+                }
+            }
+            match emit(a.output.as_deref(), |w| risk::write_risk(w, &r, a.format)) {
+                Ok(()) => ExitCode::SUCCESS,
+                Err(code) => code,
+            }
+        }
+        Err(f) => {
+            eprint!("{}", f.render());
+            ExitCode::from(if f.internal { 1 } else { 2 })
+        }
+    }
+}

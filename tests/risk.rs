@@ -1,0 +1,168 @@
+//! `pathfold risk` against the Black–Scholes Greeks of our closed form (itself checked in
+//! src/closed_form/vanilla.rs against Hull's Greeks example, from memory), and the facts
+//! of common random numbers. Fixed seeds throughout.
+
+mod common;
+
+use std::path::Path;
+
+use common::*;
+use pathfold::closed_form::{black_scholes, black_scholes_greeks, OptionKind};
+use pathfold::risk::{risk_file, Bumps, Risk, Subject};
+use pathfold::sim::Settings;
+
+const S: f64 = 49.0;
+const K: f64 = 50.0;
+const R: f64 = 0.05;
+const SIGMA: f64 = 0.2;
+const T: f64 = 0.3846;
+
+fn bs(s: f64, t: f64, r: f64, q: f64, sigma: f64) -> f64 {
+    black_scholes(OptionKind::Call, s, K, t, r, r - q, sigma)
+}
+
+fn risk(file: &str, paths: u64, seed: u64) -> Risk {
+    let settings = Settings { paths, seed, antithetic: true, control_variates: false };
+    risk_file(Path::new(file), None, &[], &settings, &Bumps::default()).expect("risk runs")
+}
+
+fn get(r: &Risk, measure: &str) -> (f64, f64) {
+    let s = r.sensitivities.iter().find(|s| s.measure == measure).unwrap_or_else(|| panic!("no {measure}"));
+    (s.value, s.std_error)
+}
+
+/// `mc` (with its SE) against the analytic Greek: within 4 SE plus the finite-difference
+/// error, which is the closed form's own finite difference minus the analytic value, and
+/// must itself be small (under 2% of the Greek).
+fn check(what: &str, mc: (f64, f64), analytic: f64, closed_form_difference: f64) {
+    let fd_error = (closed_form_difference - analytic).abs();
+    assert!(fd_error <= 0.02 * analytic.abs(), "{what}: finite-difference error {fd_error} vs {analytic}");
+    let (v, se) = mc;
+    assert!(se > 0.0, "{what}: no standard error");
+    assert!((v - analytic).abs() <= 4.0 * se + fd_error, "{what}: {v} ± {se} vs {analytic} (fd error {fd_error})");
+}
+
+#[test]
+fn greeks_of_hulls_call_agree_with_black_scholes() {
+    // Reference: black_scholes_greeks (Hull's example S=49, K=50, r=5%, σ=20%, T=20 weeks:
+    // delta 0.522, gamma 0.066, vega 12.1, theta −4.31/yr, rho 8.91; from memory).
+    let r = risk("tests/risk/hull_call.payoff", 200_000, 3);
+    let g = black_scholes_greeks(OptionKind::Call, S, K, T, R, R, SIGMA);
+    let b = Bumps::default();
+    assert_within("price", r.price, r.price_std_error, bs(S, T, R, 0.0, SIGMA), 4.0);
+
+    let (d, dse) = get(&r, "delta_units");
+    let cf = (bs(S * (1.0 + b.spot), T, R, 0.0, SIGMA) - bs(S * (1.0 - b.spot), T, R, 0.0, SIGMA)) / (2.0 * b.spot * S);
+    check("delta", (d, dse), g.delta, cf);
+
+    // Gamma per 1% move → per unit: divide by (1% of S)².
+    let (gm, gse) = get(&r, "gamma");
+    let unit = (0.01 * S).powi(2);
+    let cf = (bs(S * (1.0 + b.spot), T, R, 0.0, SIGMA) - 2.0 * bs(S, T, R, 0.0, SIGMA)
+        + bs(S * (1.0 - b.spot), T, R, 0.0, SIGMA))
+        / (b.spot * S).powi(2);
+    check("gamma", (gm / unit, gse / unit), g.gamma, cf);
+
+    // Vega per volatility point → per unit of volatility.
+    let (v, vse) = get(&r, "vega");
+    let cf = (bs(S, T, R, 0.0, SIGMA + b.vol) - bs(S, T, R, 0.0, SIGMA - b.vol)) / (2.0 * b.vol);
+    check("vega", (v / 0.01, vse / 0.01), g.vega, cf);
+
+    // Rho per basis point → per unit of rate (the dividend yield held, so the carry moves).
+    let (rho, rse) = get(&r, "rho");
+    let cf = (bs(S, T, R + b.rate, 0.0, SIGMA) - bs(S, T, R - b.rate, 0.0, SIGMA)) / (2.0 * b.rate);
+    check("rho", (rho / 1e-4, rse / 1e-4), g.rho, cf);
+
+    // Dividend sensitivity per basis point: ∂V/∂q = −S·T·e^{−qT}·N(d1) (the carry term
+    // of black_scholes_greeks' rho formula, written out).
+    let (dv, dvse) = get(&r, "dividend");
+    let analytic = -S * T * g.delta;
+    let cf = (bs(S, T, R, b.dividend, SIGMA) - bs(S, T, R, -b.dividend, SIGMA)) / (2.0 * b.dividend);
+    check("dividend", (dv / 1e-4, dvse / 1e-4), analytic, cf);
+
+    // Theta over one calendar day → per year (the year offset shortens by 1/365).
+    let (th, tse) = get(&r, "theta");
+    let day = 1.0 / 365.0;
+    let cf = (bs(S, T - day, R, 0.0, SIGMA) - bs(S, T, R, 0.0, SIGMA)) / day;
+    check("theta", (th / day, tse / day), g.theta, cf);
+}
+
+#[test]
+fn a_perf_call_struck_today_has_the_delta_of_the_level_call() {
+    // Fact of the trade (common practice): a call on performance struck today at 49 is
+    // 49 calls on the level; bumping today's spot must not move the strike level.
+    let level = risk("tests/risk/hull_call.payoff", 20_000, 5);
+    let perf = risk("tests/risk/perf_call.payoff", 20_000, 5);
+    for m in ["delta", "delta_units", "gamma", "vega", "rho", "theta"] {
+        let (a, b) = (get(&level, m).0, get(&perf, m).0);
+        assert!(a.abs() > 0.0, "{m} is zero");
+        assert!((a - b).abs() <= 1e-9 * a.abs().max(1e-6), "{m}: level {a} vs perf {b}");
+    }
+}
+
+#[test]
+fn common_random_numbers_make_the_delta_precise() {
+    // The delta's SE from paired differences, against the SE of the same difference of
+    // two prices on independent seeds: common practice says far smaller; we ask for 10×.
+    let r = risk("tests/risk/hull_call.payoff", 20_000, 7);
+    let (_, paired) = get(&r, "delta");
+    let h = Bumps::default().spot;
+    // Each price's SE is about the base price's; independent seeds add the variances.
+    let independent = (2.0 * r.price_std_error.powi(2)).sqrt() * 0.01 / (2.0 * h);
+    assert!(paired * 10.0 < independent, "paired {paired} vs independent {independent}");
+}
+
+#[test]
+fn risk_writes_json_with_the_sensitivities_and_the_caution() {
+    let (out, err, code) =
+        run(&["risk", "tests/risk/hull_call.payoff", "--paths", "2000", "--format", "json", "--bump", "vol=0.5"]);
+    assert_eq!(code, Some(0), "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let list = v["sensitivities"].as_array().expect("a list");
+    let measures: Vec<&str> = list.iter().map(|s| s["measure"].as_str().unwrap()).collect();
+    for m in ["delta", "gamma", "vega", "dividend", "rho", "theta"] {
+        assert!(measures.contains(&m), "{m} missing from {measures:?}");
+    }
+    let vega = list.iter().find(|s| s["measure"] == "vega").unwrap();
+    assert_eq!(vega["underlying"], "ZPHX");
+    assert!(vega["bump"].as_str().unwrap().contains("0.5"));
+    assert!(vega["std_error"].as_f64().unwrap() > 0.0);
+    assert!(v["caution"].as_str().unwrap().starts_with("Caution"));
+    let (_, err, code) = run(&["risk", "tests/risk/hull_call.payoff", "--bump", "vega=1"]);
+    assert_eq!(code, Some(2));
+    assert!(err.contains("unknown bump"), "{err}");
+}
+
+#[test]
+fn correlation_sensitivity_of_the_demo_is_reported_per_pair() {
+    let r = risk("payoffs/worst_of_autocall.payoff", 4_000, 1);
+    let pairs: Vec<&Subject> =
+        r.sensitivities.iter().filter(|s| s.measure == "correlation").map(|s| &s.subject).collect();
+    assert_eq!(pairs.len(), 3, "{pairs:?}");
+    // A worst-of pays more when the names move together (common practice): the
+    // correlation sensitivity of each pair is not negative beyond noise.
+    for s in r.sensitivities.iter().filter(|s| s.measure == "correlation") {
+        assert!(s.value > -4.0 * s.std_error, "{s:?}");
+    }
+}
+
+#[test]
+fn same_seed_same_bits_on_one_thread_or_two() {
+    let args = |t: &'static str| {
+        ["risk", "payoffs/worst_of_autocall.payoff", "--paths", "3000", "--format", "json", "--threads", t]
+    };
+    let (one, err, code) = run(&args("1"));
+    assert_eq!(code, Some(0), "{err}");
+    let (two, _, _) = run(&args("2"));
+    assert_eq!(one, two);
+}
+
+#[test]
+fn theta_that_cannot_share_the_paths_is_left_out_with_a_note() {
+    // Daily fixings from tomorrow: one day later the first fixing is today, the grid has
+    // one date fewer, so theta is named as left out and the rest is still reported.
+    let r = risk("payoffs/up_and_out_call.payoff", 2_000, 1);
+    assert!(r.sensitivities.iter().all(|s| s.measure != "theta"));
+    assert!(r.notes.iter().any(|n| n.starts_with("theta: a fixing falls on 2026-12-02")), "{:?}", r.notes);
+    assert!(r.sensitivities.iter().any(|s| s.measure == "delta"));
+}
