@@ -114,6 +114,25 @@ fn esc(s: &str) -> String {
     s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
 }
 
+/// A round step near `raw`: 1, 2 or 5 times a power of ten.
+fn nice_step(raw: f64) -> f64 {
+    if !(raw.is_finite() && raw > 0.0) {
+        return 1.0;
+    }
+    let power = 10f64.powf(raw.log10().floor());
+    let m = raw / power;
+    let nice = if m <= 1.0 {
+        1.0
+    } else if m <= 2.0 {
+        2.0
+    } else if m <= 5.0 {
+        5.0
+    } else {
+        10.0
+    };
+    nice * power
+}
+
 /// The chart as an SVG document.
 pub fn chart_svg(l: &Ladder) -> String {
     let (w, h) = (820.0, 520.0);
@@ -157,17 +176,20 @@ pub fn chart_svg(l: &Ladder) -> String {
             x
         );
     }
-    let d = decimals((hi - lo) / 50.0).min(4);
-    for i in 0..=5 {
-        let y = lo + (hi - lo) * f64::from(i) / 5.0;
+    // Ticks at round numbers: a step of 1, 2 or 5 times a power of ten, about five of them.
+    let step = nice_step((hi - lo) / 5.0);
+    let d = if step >= 1.0 { 0 } else { (-step.log10().floor()) as usize };
+    let mut tick = (lo / step).ceil() * step;
+    while tick <= hi {
         let _ = writeln!(
             s,
             r##"<line x1="{left}" y1="{0}" x2="{by}" y2="{0}" stroke="#dddddd"/><text x="{1}" y="{2}" text-anchor="end">{3}</text>"##,
-            py(y),
+            py(tick),
             left - 6.0,
-            py(y) + 4.0,
-            group(y, d)
+            py(tick) + 4.0,
+            group(tick, d)
         );
+        tick += step;
     }
     let _ = writeln!(
         s,
@@ -218,7 +240,23 @@ pub fn chart_svg(l: &Ladder) -> String {
             );
         }
     }
-    let _ = writeln!(s, r#"<text x="10" y="{}" font-size="10">{}</text>"#, h - 12.0, esc(CAUTION));
+    // The caution, wrapped to the chart's width.
+    let mut lines: Vec<String> = vec![String::new()];
+    for word in CAUTION.split(' ') {
+        let last = lines.last_mut().expect("one line at least");
+        if !last.is_empty() && last.len() + 1 + word.len() > 130 {
+            lines.push(word.to_string());
+        } else {
+            if !last.is_empty() {
+                last.push(' ');
+            }
+            last.push_str(word);
+        }
+    }
+    for (i, line) in lines.iter().enumerate() {
+        let y = h - 12.0 - 13.0 * (lines.len() - 1 - i) as f64;
+        let _ = writeln!(s, r#"<text x="10" y="{y}" font-size="10">{}</text>"#, esc(line));
+    }
     s.push_str("</svg>\n");
     s
 }
