@@ -74,6 +74,9 @@ pub enum Acc {
 pub enum Op {
     /// `dst = a op b`; `dst` is never one of the sources.
     Bin { op: Bin, dst: u32, a: Src, b: Src },
+    /// A comparison `dst = a op b` that also counts the paths where an operand is not a
+    /// number, against [`Program::condition_sites`]`[site]`: such a condition has no answer.
+    Cmp { op: Bin, dst: u32, a: Src, b: Src, site: u32 },
     /// `dst = op(a)`; `dst` is not `a`.
     Un { op: Un, dst: u32, a: Src },
     /// `dst = if cond then a else b` (the value of an `if` expression).
@@ -163,6 +166,9 @@ pub struct Program {
     pub payments: Vec<Slot>,
     /// Source spans of the `pay` statements, for reporting a non-finite amount.
     pub pay_sites: Vec<Span>,
+    /// Source spans of the comparisons, for reporting one asked of a value that is not a
+    /// number. Their tallies follow the `pay` sites' in [`crate::sim`]'s bad-path counts.
+    pub condition_sites: Vec<Span>,
     /// Averaging schedules: (asset, grid indices of the fixings), offered to the engine as geometric-average control variates.
     pub averages: Vec<(usize, Vec<usize>)>,
 }
@@ -318,6 +324,7 @@ struct Compiler<'p> {
     events: Vec<Slot>,
     payments: Vec<Slot>,
     pay_sites: Vec<Span>,
+    condition_sites: Vec<Span>,
     averages: Vec<(usize, Vec<usize>)>,
     /// Running accumulators of aggregates that read only levels, by (site, schedule):
     /// the register and how many fixings it already holds.
@@ -367,6 +374,7 @@ impl<'p> Compiler<'p> {
             events: Vec::new(),
             payments: Vec::new(),
             pay_sites: Vec::new(),
+            condition_sites: Vec::new(),
             averages: Vec::new(),
             running: std::collections::HashMap::new(),
             aged: 0.0,
@@ -674,7 +682,9 @@ impl<'p> Compiler<'p> {
         slot_of(&mut self.events, w)
     }
 
-    fn finish(self) -> Program {
+    fn finish(mut self) -> Program {
+        let states: Vec<f64> = self.product.states.iter().map(|s| s.init).collect();
+        drop_needless_checks(&mut self.ops, self.registers as usize, &states);
         Program {
             name: self.product.name.clone(),
             currency: self.product.currency.clone(),
@@ -687,11 +697,12 @@ impl<'p> Compiler<'p> {
             grid: self.grid,
             ops: self.ops,
             registers: self.registers as usize,
-            states: self.product.states.iter().map(|s| s.init).collect(),
+            states,
             monitors: self.monitors,
             events: self.events,
             payments: self.payments,
             pay_sites: self.pay_sites,
+            condition_sites: self.condition_sites,
             averages: self.averages,
         }
     }
@@ -827,6 +838,26 @@ impl<'p> Compiler<'p> {
         V { src: Src::Reg(dst), temp: true }
     }
 
+    /// A comparison: folded when both sides are known, else counted for operands that
+    /// are not numbers (a condition on such a value has no answer, and must not quietly
+    /// take the `else` side).
+    fn push_cmp(&mut self, op: Bin, a: V, b: V, span: Span) -> Option<V> {
+        if let (Src::Const(x), Src::Const(y)) = (a.src, b.src) {
+            if x.is_nan() || y.is_nan() {
+                self.error(span, "this condition compares a value that is not a number", typing::NOT_A_NUMBER_FIX);
+                return None;
+            }
+            return Some(V::konst(eval_bin(op, x, y)));
+        }
+        let site = self.condition_sites.len() as u32;
+        self.condition_sites.push(span);
+        let dst = self.alloc();
+        self.ops.push(Op::Cmp { op, dst, a: a.src, b: b.src, site });
+        self.release(a);
+        self.release(b);
+        Some(V { src: Src::Reg(dst), temp: true })
+    }
+
     fn push_un(&mut self, op: Un, a: V) -> V {
         if let Src::Const(x) = a.src {
             return V::konst(eval_un(op, x));
@@ -934,6 +965,9 @@ impl<'p> Compiler<'p> {
                     BinaryOp::And => Bin::And,
                     BinaryOp::Or => Bin::Or,
                 };
+                if is_comparison(op) {
+                    return self.push_cmp(op, x, y, e.span);
+                }
                 self.push_bin(op, x, y)
             }
             TKind::If(c, a, b) => {
@@ -1205,6 +1239,70 @@ fn collect_expr(e: &TExpr, times: &mut Vec<f64>, c: &mut Compiler<'_>) {
     }
 }
 
+/// Turns back into plain comparisons the checked ones whose operands are always numbers,
+/// so that the common conditions (a performance against a level) cost no extra pass.
+///
+/// The program is straight-line code, so one walk in order knows, for each register,
+/// whether it can hold a value that is not a number. Levels are positive (at worst +inf
+/// on an overflow) and constants are numbers; what keeps a number a number is listed in
+/// `always_a_number`; anything else (a sum of two values, which may be inf - inf, a
+/// quotient, a log, a square root...) may not be one.
+fn drop_needless_checks(ops: &mut [Op], registers: usize, states: &[f64]) {
+    let mut number = vec![false; registers];
+    for (s, init) in states.iter().enumerate() {
+        number[1 + s] = !init.is_nan();
+    }
+    number[ALIVE as usize] = true;
+    let is_number = |number: &[bool], src: Src| match src {
+        Src::Reg(r) => number[r as usize],
+        Src::Const(x) => !x.is_nan(),
+        Src::Level(_) | Src::Monitor(_) => true,
+    };
+    for op in ops.iter_mut() {
+        let (dst, keeps) = match *op {
+            Op::Cmp { op: cmp, dst, a, b, .. } => {
+                if is_number(&number, a) && is_number(&number, b) {
+                    *op = Op::Bin { op: cmp, dst, a, b };
+                }
+                (dst, true)
+            }
+            Op::Bin { op, dst, a, b } => (dst, always_a_number(op, a, b, |s| is_number(&number, s))),
+            Op::Un { op, dst, a } => {
+                (dst, matches!(op, Un::Neg | Un::Not | Un::Abs | Un::Exp | Un::Floor) && is_number(&number, a))
+            }
+            Op::Select { dst, a, b, .. } => (dst, is_number(&number, a) && is_number(&number, b)),
+            Op::Acc { op, dst, src } => {
+                (dst, matches!(op, Acc::Min | Acc::Max) && number[dst as usize] && is_number(&number, src))
+            }
+            Op::Copy { dst, src } => (dst, is_number(&number, src)),
+            Op::Assign { dst, src, .. } => (dst, number[dst as usize] && is_number(&number, src)),
+            Op::Pay { .. } | Op::End { .. } => continue,
+        };
+        number[dst as usize] = keeps;
+    }
+}
+
+/// Whether `a op b` is a number whenever `a` and `b` are (levels may be +inf, so a sum or
+/// product of two values is not: inf - inf and 0 * inf are not numbers).
+fn always_a_number(op: Bin, a: Src, b: Src, is_number: impl Fn(Src) -> bool) -> bool {
+    let finite = |s: Src| matches!(s, Src::Const(x) if x.is_finite());
+    let nonzero = |s: Src| matches!(s, Src::Const(x) if x.is_finite() && x != 0.0);
+    let both = is_number(a) && is_number(b);
+    match op {
+        Bin::Min | Bin::Max | Bin::And | Bin::Or | Bin::AndNot => both,
+        Bin::Lt | Bin::Le | Bin::Gt | Bin::Ge | Bin::Eq | Bin::Ne => true,
+        Bin::Add | Bin::Sub => both && (finite(a) || finite(b)),
+        Bin::Mul => both && (nonzero(a) || nonzero(b)),
+        Bin::Div => both && nonzero(b),
+        Bin::Rem => false,
+    }
+}
+
+/// Whether the operation compares two numbers (its answer is a flag).
+pub fn is_comparison(op: Bin) -> bool {
+    matches!(op, Bin::Lt | Bin::Le | Bin::Gt | Bin::Ge | Bin::Eq | Bin::Ne)
+}
+
 /// Applies a two-argument operation to one pair of values; flags are 1 and 0.
 #[inline(always)]
 pub fn eval_bin(op: Bin, x: f64, y: f64) -> f64 {
@@ -1214,8 +1312,8 @@ pub fn eval_bin(op: Bin, x: f64, y: f64) -> f64 {
         Bin::Sub => x - y,
         Bin::Mul => x * y,
         Bin::Div => x / y,
-        Bin::Min => x.min(y),
-        Bin::Max => x.max(y),
+        Bin::Min => typing::min_or_nan(x, y),
+        Bin::Max => typing::max_or_nan(x, y),
         Bin::Rem => typing::remainder(x, y),
         Bin::Lt => flag(x < y),
         Bin::Le => flag(x <= y),

@@ -112,11 +112,21 @@ pub struct PartShape {
     pub events: usize,
     pub payments: usize,
     pub pay_sites: usize,
+    /// Comparisons whose operands may not be numbers (absent in files written before
+    /// they were counted: read as none).
+    #[serde(default)]
+    pub condition_sites: usize,
 }
 
 impl From<Shape> for PartShape {
     fn from(s: Shape) -> Self {
-        PartShape { dims: s.dims, events: s.events, payments: s.payments, pay_sites: s.sites }
+        PartShape {
+            dims: s.dims,
+            events: s.events,
+            payments: s.payments,
+            pay_sites: s.sites,
+            condition_sites: s.conditions,
+        }
     }
 }
 

@@ -1000,6 +1000,11 @@ impl Checker {
             }
         }
         if let (TKind::Const(x), TKind::Const(y)) = (&a.kind, &b.kind) {
+            let compares = !matches!(op, BinaryOp::Add | BinaryOp::Sub | BinaryOp::Mul | BinaryOp::Div);
+            if compares && (x.is_nan() || y.is_nan()) {
+                self.error(span, "this condition compares a value that is not a number", NOT_A_NUMBER_FIX);
+                return None;
+            }
             let v = fold(op, *x, *y);
             return Some(TExpr { kind: TKind::Const(v), ty: out, span });
         }
@@ -1038,9 +1043,9 @@ impl Checker {
                 if out.iter().all(|e| matches!(e.kind, TKind::Const(_))) {
                     let vals = out.iter().map(|e| if let TKind::Const(v) = e.kind { v } else { 0.0 });
                     let v = if func == Func::Min {
-                        vals.fold(f64::INFINITY, f64::min)
+                        vals.fold(f64::INFINITY, min_or_nan)
                     } else {
-                        vals.fold(f64::NEG_INFINITY, f64::max)
+                        vals.fold(f64::NEG_INFINITY, max_or_nan)
                     };
                     return number(TKind::Const(v));
                 }
@@ -1235,6 +1240,32 @@ fn count_words(lo: usize, hi: usize) -> String {
         word(lo)
     } else {
         format!("{lo} or {hi} arguments")
+    }
+}
+
+/// The fix offered for a value that is not a number, in a payment or a condition.
+pub const NOT_A_NUMBER_FIX: &str = "look for a division by zero, the log or square root of a negative number, or an `exp` of more than 709 (numbers go up to about 1.8e308)";
+
+/// The smaller of two numbers, or not a number when either is not one (`f64::min` would
+/// quietly return the other, hiding the fault from the checks on payments).
+#[inline(always)]
+pub fn min_or_nan(x: f64, y: f64) -> f64 {
+    let m = if x < y { x } else { y };
+    if x.is_nan() {
+        x
+    } else {
+        m
+    }
+}
+
+/// The larger of two numbers, or not a number when either is not one.
+#[inline(always)]
+pub fn max_or_nan(x: f64, y: f64) -> f64 {
+    let m = if x > y { x } else { y };
+    if x.is_nan() {
+        x
+    } else {
+        m
     }
 }
 

@@ -265,15 +265,19 @@ fn run_in_repo(args: &[&str]) -> (String, String, Option<i32>) {
 
 #[test]
 fn a_run_that_fails_fails_the_same_way_when_merged() {
-    // A payment that is not a finite number on some paths: the merge reports what the
-    // single run reports.
-    let file = "tests/bad/engine_division_by_zero.payoff";
-    let dir = Scratch::dir("parts-bad");
-    let parts = run_parts(&dir, file, 2, &["--paths", "2048"]);
-    let single = run_in_repo(&["price", file, "--paths", "2048"]);
-    let mut args = vec!["merge"];
-    args.extend(parts.iter().map(|p| p.to_str().unwrap()));
-    let (merged, code) = fails(&args);
-    assert_eq!(code, single.2);
-    assert_eq!(merged, single.1, "reference: the single run's error");
+    // A payment that is not a finite number on some paths, and a condition on a value
+    // that is not a number: the merge reports what the single run reports.
+    for (tag, file) in [
+        ("parts-bad", "tests/bad/engine_division_by_zero.payoff"),
+        ("parts-bad-condition", "tests/bad/engine_condition_ends_paths.payoff"),
+    ] {
+        let dir = Scratch::dir(tag);
+        let parts = run_parts(&dir, file, 2, &["--paths", "2048"]);
+        let single = run_in_repo(&["price", file, "--paths", "2048"]);
+        let mut args = vec!["merge"];
+        args.extend(parts.iter().map(|p| p.to_str().unwrap()));
+        let (merged, code) = fails(&args);
+        assert_eq!(code, single.2, "{file}");
+        assert_eq!(merged, single.1, "{file}: reference: the single run's error");
+    }
 }

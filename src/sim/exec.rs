@@ -11,6 +11,7 @@ use super::paths::{Controls, Model, PathBuffers};
 use super::stats::{sum, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
+use crate::typing::{max_or_nan, min_or_nan};
 
 /// One worker's buffers, reused block after block.
 pub struct Workspace {
@@ -120,6 +121,22 @@ impl Workspace {
                     binary(op, &mut out[..lanes], a, b);
                     self.regs[dst as usize] = out;
                 }
+                Op::Cmp { op, dst, a, b, site } => {
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let (a, b) = (self.arg(a, lanes), self.arg(b, lanes));
+                    binary(op, &mut out[..lanes], a, b);
+                    // A comparison with a value that is not a number has no answer; count
+                    // the paths so the run is refused instead of taking the `else` side.
+                    let bad = not_a_number(a, lanes) | not_a_number(b, lanes);
+                    if bad {
+                        let count = (0..lanes).filter(|&i| at(a, i).is_nan() || at(b, i).is_nan()).count() as u64;
+                        if result.bad_paths.is_empty() {
+                            result.bad_paths = vec![0; p.pay_sites.len() + p.condition_sites.len()];
+                        }
+                        result.bad_paths[p.pay_sites.len() + site as usize] += count;
+                    }
+                    self.regs[dst as usize] = out;
+                }
                 Op::Un { op, dst, a } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
                     unary(op, &mut out[..lanes], self.arg(a, lanes));
@@ -140,8 +157,8 @@ impl Workspace {
                     let out_l = &mut out[..lanes];
                     match op {
                         Acc::Add => apply2(out_l, s, |x, y| x + y),
-                        Acc::Min => apply2(out_l, s, f64::min),
-                        Acc::Max => apply2(out_l, s, f64::max),
+                        Acc::Min => apply2(out_l, s, min_or_nan),
+                        Acc::Max => apply2(out_l, s, max_or_nan),
                     }
                     self.regs[dst as usize] = out;
                 }
@@ -193,7 +210,7 @@ impl Workspace {
                         let bad = paid[..lanes].iter().filter(|v| !v.is_finite()).count() as u64;
                         if bad > 0 {
                             if result.bad_paths.is_empty() {
-                                result.bad_paths = vec![0; p.pay_sites.len()];
+                                result.bad_paths = vec![0; p.pay_sites.len() + p.condition_sites.len()];
                             }
                             result.bad_paths[site as usize] += bad;
                         }
@@ -352,6 +369,16 @@ fn kernel(out: &mut [f64], a: Arg<'_>, b: Arg<'_>, f: impl Fn(f64, f64) -> f64) 
     }
 }
 
+/// Whether any lane of the operand is not a number: one pass with no early exit, so it
+/// vectorises (a constant operand is checked once).
+#[inline]
+fn not_a_number(a: Arg<'_>, lanes: usize) -> bool {
+    match a {
+        Arg::Lanes(s) => s[..lanes].iter().fold(false, |bad, x| bad | x.is_nan()),
+        Arg::Same(x) => x.is_nan(),
+    }
+}
+
 fn flag(b: bool) -> f64 {
     if b {
         1.0
@@ -366,8 +393,8 @@ fn binary(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
         Bin::Sub => kernel(out, a, b, |x, y| x - y),
         Bin::Mul => kernel(out, a, b, |x, y| x * y),
         Bin::Div => kernel(out, a, b, |x, y| x / y),
-        Bin::Min => kernel(out, a, b, f64::min),
-        Bin::Max => kernel(out, a, b, f64::max),
+        Bin::Min => kernel(out, a, b, min_or_nan),
+        Bin::Max => kernel(out, a, b, max_or_nan),
         Bin::Rem => kernel(out, a, b, crate::typing::remainder),
         Bin::Lt => kernel(out, a, b, |x, y| flag(x < y)),
         Bin::Le => kernel(out, a, b, |x, y| flag(x <= y)),

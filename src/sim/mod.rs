@@ -20,7 +20,7 @@ use std::time::{Duration, Instant};
 use rayon::prelude::*;
 
 use crate::compile::Program;
-use crate::diagnostic::Diagnostic;
+use crate::diagnostic::{Diagnostic, Span};
 use exec::Workspace;
 use paths::Controls;
 use stats::BlockResult;
@@ -289,13 +289,40 @@ impl<'a> Run<'a> {
     }
 }
 
+/// How many source places other than `first` have a site with a bad path.
+fn other_places(sites: &[Span], counts: &[u64], first: Span) -> usize {
+    let mut places: Vec<Span> =
+        sites.iter().zip(counts).filter(|&(&s, &c)| c > 0 && s != first).map(|(&s, _)| s).collect();
+    places.sort_by_key(|s| (s.start, s.end));
+    places.dedup();
+    places.len()
+}
+
 /// The error for a run whose payments are not all finite numbers, or whose statistics
 /// overflow: it names the `pay` and, for amounts that are not numbers, how many paths.
 fn not_finite(program: &Program, total: &BlockResult, paths: u64) -> Diagnostic {
     let place = |site: usize| program.pay_sites.get(site).copied().unwrap_or_default();
-    if let Some(site) = total.bad_paths.iter().position(|&c| c > 0) {
-        let count = total.bad_paths[site];
-        let others = total.bad_paths.iter().filter(|&&c| c > 0).count() - 1;
+    let conditions = total.bad_paths.get(program.pay_sites.len()..).unwrap_or_default();
+    if let Some(site) = conditions.iter().position(|&c| c > 0) {
+        let count = conditions[site];
+        let place = program.condition_sites.get(site).copied().unwrap_or_default();
+        // A condition in a loop is one site per date: count other places, not dates.
+        let others = other_places(&program.condition_sites, conditions, place);
+        let also = match others {
+            0 => String::new(),
+            1 => " (1 other condition is not a number either)".to_string(),
+            k => format!(" ({k} other conditions are not numbers either)"),
+        };
+        return Diagnostic::at(
+            place,
+            format!("this condition compares a value that is not a number on {count} of {paths} paths{also}"),
+        )
+        .with_fix(crate::typing::NOT_A_NUMBER_FIX);
+    }
+    let payments = &total.bad_paths[..total.bad_paths.len().min(program.pay_sites.len())];
+    if let Some(site) = payments.iter().position(|&c| c > 0) {
+        let count = payments[site];
+        let others = other_places(&program.pay_sites, payments, place(site));
         let also = match others {
             0 => String::new(),
             1 => " (1 other payment is not finite either)".to_string(),

@@ -49,6 +49,8 @@ pub struct Shape {
     pub events: usize,
     pub payments: usize,
     pub sites: usize,
+    /// Comparisons counted for operands that are not numbers ([`Program::condition_sites`]).
+    pub conditions: usize,
 }
 
 impl Shape {
@@ -59,6 +61,7 @@ impl Shape {
             events: program.events.len(),
             payments: program.payments.len(),
             sites: program.pay_sites.len(),
+            conditions: program.condition_sites.len(),
         }
     }
 
@@ -153,11 +156,12 @@ pub fn to_words(b: &BlockResult) -> Vec<u64> {
 /// does not fit.
 pub fn from_words(words: &[u64], shape: &Shape) -> Result<BlockResult, String> {
     let fixed = shape.words();
-    if words.len() != fixed && words.len() != fixed + shape.sites {
+    let counted = shape.sites + shape.conditions;
+    if words.len() != fixed && words.len() != fixed + counted {
         return Err(format!(
             "a block holds {} numbers where this payoff's blocks hold {fixed} (or {})",
             words.len(),
-            fixed + shape.sites
+            fixed + counted
         ));
     }
     let mut at = 0;
@@ -229,7 +233,7 @@ mod tests {
 
     #[test]
     fn words_round_trip_bit_for_bit() {
-        let shape = Shape { dims: 2, events: 2, payments: 1, sites: 3 };
+        let shape = Shape { dims: 2, events: 2, payments: 1, sites: 3, conditions: 0 };
         let odd = [f64::NAN, -0.0, f64::INFINITY, 1e-310, 0.1 + 0.2];
         let mut b = BlockResult::new(2, 2, 1);
         b.moments = Moments::from_parts(128.0, vec![odd[0], odd[1]], vec![odd[2], odd[3], odd[4], 1.0]).unwrap();
