@@ -984,15 +984,24 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
             "write `if c { pay x }`; `then` belongs to the value form `if c then a else b`, which needs its `else`",
         );
     }
-    // Inside an unclosed `touched(`: the window is missing or misspelt.
-    if let Some(open) = source[..at].rfind("touched(") {
-        let inside = &source[open + "touched(".len()..at];
+    // Inside an unclosed `touched(` or `first touch(`: the window is missing or misspelt.
+    let opened = |word: &'static str| source[..at].rfind(word).map(|i| (i, word));
+    if let Some((open, word)) = opened("touched(").max(opened("first touch(")) {
+        let inside = &source[open + word.len()..at];
         let depth = inside.chars().fold(1i32, |d, c| match c {
             '(' => d + 1,
             ')' => d - 1,
             _ => d,
         });
         if depth > 0 && (!inside.contains(" from ") || rest.starts_with(')')) {
+            if word == "first touch(" {
+                return hint(
+                    open,
+                    "first touch".len(),
+                    "`first touch(...)` needs its window: the condition, then `from DATE to DATE`",
+                    "write for example `pay notional * 5% on first touch(perf(ZPHX) >= 130% from start to 1y)`",
+                );
+            }
             return hint(
                 open,
                 "touched".len(),
