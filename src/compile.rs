@@ -126,9 +126,10 @@ pub enum PathValue {
     /// τ is drawn from the first-passage law of the Brownian bridge over the step where the
     /// crossing happens, the crossing decided exactly as for the monitor's flag.
     HitDiscount { monitor: usize },
-    /// `highest(perf(X) from a to b)` / `lowest(...)`: the running extreme over grid
-    /// indices `from..=to`, each step's bridge extreme drawn from its law given both ends.
-    Extreme { asset: usize, up: bool, relative: bool, from: usize, to: usize },
+    /// `highest(level(X) from a to b)` / `lowest(...)`: the running extreme of the level
+    /// over grid indices `from..=to`, each step's bridge extreme drawn from its law given
+    /// both ends (a performance is this divided by the initial level).
+    Extreme { asset: usize, up: bool, from: usize, to: usize },
 }
 
 /// A date of the per-date profile.
@@ -662,7 +663,9 @@ impl<'p> Compiler<'p> {
 
     fn compile_blocks(&mut self) {
         // Unroll each block over its dates, then order all runs by date (file order on ties).
-        let mut runs: Vec<(f64, usize, When_, Option<usize>, Option<When_>)> = Vec::new();
+        // (time, block, date, position in the loop, the loop's previous date)
+        type Run = (f64, usize, When_, Option<usize>, Option<When_>);
+        let mut runs: Vec<Run> = Vec::new();
         for (b, block) in self.product.blocks.iter().enumerate() {
             match &block.when {
                 When::Each(s) => {
@@ -1081,12 +1084,22 @@ impl<'p> Compiler<'p> {
             }
             TKind::Extreme { asset, up, relative, from, to } => {
                 let (a, b) = self.extreme_window(*up, *relative, *from, *to, e.span, &now)?;
-                let make = |from, to| PathValue::Extreme { asset: *asset, up: *up, relative: *relative, from, to };
+                let make = |from, to| PathValue::Extreme { asset: *asset, up: *up, from, to };
                 let combine = Combine::Bin(if *up { Bin::Max } else { Bin::Min });
-                if let Some(v) = self.running_window(e, *to, a, b, combine, |f, t| Source::Path(make(f, t))) {
-                    return Some(v);
+                let level = match self.running_window(e, *to, a, b, combine, |f, t| Source::Path(make(f, t))) {
+                    Some(v) => v,
+                    None => V { src: Src::Path(self.path_value(make(a, b)) as u32), temp: false },
+                };
+                if !*relative {
+                    return Some(level);
                 }
-                V { src: Src::Path(self.path_value(make(a, b)) as u32), temp: false }
+                // A performance, divided by the initial level as `perf(X)` is (so a struck
+                // trade's fixed initial level applies to it too).
+                let init = self.initial(*asset, e.span, &now)?;
+                match init.src {
+                    Src::Const(x) => self.push_bin(Bin::Mul, level, V::konst(1.0 / x)),
+                    _ => self.push_bin(Bin::Div, level, init),
+                }
             }
         })
     }
@@ -1105,13 +1118,11 @@ impl<'p> Compiler<'p> {
         span: Span,
         now: &Now,
     ) -> Option<Monitor> {
-        let now = *now;
-        let e_span = span;
-        let a = self.resolve(from, e_span, Some(&now))?;
-        let b = self.resolve(to, e_span, Some(&now))?;
+        let a = self.resolve(from, span, Some(now))?;
+        let b = self.resolve(to, span, Some(now))?;
         if b.0 < a.0 {
             self.error(
-                e_span,
+                span,
                 format!("the monitoring window ends ({}) before it starts ({})", label(b), label(a)),
                 "write the earlier date after `from`",
             );
@@ -1119,7 +1130,7 @@ impl<'p> Compiler<'p> {
         }
         if b.0 > now.event.0 + TIME_EPS {
             self.error(
-                e_span,
+                span,
                 format!("whether the barrier was touched up to {} is not known yet on {}", label(b), label(now.event)),
                 "end the monitoring window on or before the date of the block",
             );
@@ -1127,7 +1138,7 @@ impl<'p> Compiler<'p> {
         }
         if relative && a.0 + TIME_EPS < self.start.0 {
             self.error(
-                e_span,
+                span,
                 "a barrier relative to the initial level cannot be watched before the start date",
                 "begin the window at `start` or later",
             );

@@ -110,7 +110,7 @@ pub enum Stmt {
     End(Span),
     /// `pay amount on first touch(perf(X) >= 130% from start to t)`: paid at the moment
     /// the barrier is first touched in the window, discounted from that moment.
-    PayAtHit { amount: Expr, condition: Expr, from: Expr, to: Expr, span: Span },
+    PayAtHit { amount: Expr, condition: Box<Expr>, from: Box<Expr>, to: Box<Expr>, span: Span },
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -639,9 +639,9 @@ impl Lowering {
             Rule::end_stmt => Stmt::End(span),
             Rule::pay_hit_stmt => {
                 let amount = self.expr(inner.next().unwrap());
-                let condition = self.expr(inner.next().unwrap());
-                let from = self.expr(inner.next().unwrap());
-                let to = self.expr(inner.next().unwrap());
+                let condition = Box::new(self.expr(inner.next().unwrap()));
+                let from = Box::new(self.expr(inner.next().unwrap()));
+                let to = Box::new(self.expr(inner.next().unwrap()));
                 Stmt::PayAtHit { amount, condition, from, to, span }
             }
             other => unreachable!("grammar yields no statement {other:?}"),

@@ -253,3 +253,16 @@ fn a_rebate_paid_at_the_touch_is_worth_the_reiner_rubinstein_rebate_term() {
         assert!(mc - late > 4.0 * se.hypot(late_se), "{name}: at the touch {mc} vs at expiry {late}");
     }
 }
+
+#[test]
+fn the_new_constructs_give_the_same_bits_on_any_thread_count() {
+    let file = "payoffs/knock_out_note.payoff";
+    let one = common::price(file, &["--paths", "20000", "--seed", "9", "--threads", "1"]);
+    let three = common::price(file, &["--paths", "20000", "--seed", "9", "--threads", "3"]);
+    assert_eq!(bits(&one), bits(&three));
+    let extremes =
+        "at 1y {\n    pay notional * (highest(perf(VNTL) from start to 1y) - lowest(perf(ZPHX) from 0.5y to 1y))\n}\n";
+    let a = demo("extremes_threads_1.payoff", extremes, &["--paths", "20000", "--threads", "1"]);
+    let b = demo("extremes_threads_2.payoff", extremes, &["--paths", "20000", "--threads", "2"]);
+    assert_eq!(bits(&a), bits(&b));
+}

@@ -388,10 +388,9 @@ impl PathBuffers {
                         out[lane] = time.map_or(0.0, |t| (-p.rate * t).exp());
                     }
                 }
-                PathValue::Extreme { asset: a, up, relative, from, to } => {
+                PathValue::Extreme { asset: a, up, from, to } => {
                     let slot = model.watched.iter().position(|&w| w == a).expect("assets with extremes are watched");
                     let var = p.assets[a].volatility * p.assets[a].volatility;
-                    let start = (p.start * na + a) * block;
                     for (lane, o) in out[..lanes].iter_mut().enumerate() {
                         let at = |k: usize| self.logs[(k * na + a) * block + lane];
                         let mut extreme = at(from);
@@ -402,7 +401,7 @@ impl PathBuffers {
                             let step = bridge_extreme(x0, x1, var * dt, u, up);
                             extreme = if up { extreme.max(step) } else { extreme.min(step) };
                         }
-                        *o = if relative { extreme.exp() / self.levels[start + lane] } else { extreme.exp() };
+                        *o = extreme.exp();
                     }
                 }
             }
@@ -651,6 +650,71 @@ mod tests {
         let mut scalar = vec![0.0; xs.len()];
         exp_into_generic(&mut scalar, &xs);
         assert!(out.iter().zip(&scalar).all(|(a, b)| a.to_bits() == b.to_bits()), "vector and scalar builds differ");
+    }
+
+    /// The inverse Gaussian CDF with mean `m` and shape `l` (Chhikara and Folks, 1989).
+    fn inverse_gaussian_cdf(x: f64, m: f64, l: f64) -> f64 {
+        use crate::closed_form::norm_cdf;
+        let r = (l / x).sqrt();
+        norm_cdf(r * (x / m - 1.0)) + (2.0 * l / m).exp() * norm_cdf(-r * (x / m + 1.0))
+    }
+
+    #[test]
+    fn first_passage_fractions_follow_the_inverse_gaussian_law_they_map() {
+        // For each case, the fraction s of the step is at most f exactly when the
+        // inverse-Gaussian time u = s / (1 − s) is at most f / (1 − f): the empirical
+        // distribution of 40,000 draws against that CDF (Kolmogorov distance; its 99.9%
+        // quantile for 40,000 draws is about 1.95 / √40,000 ≈ 0.0098).
+        let mut rng = Pcg64::new(0xcafe, 0xf00d);
+        for (gap, moved) in [(0.3, -0.5), (1.2, 0.4), (0.5, 0.9), (0.8, 0.8)] {
+            let n = 40_000;
+            let mut fractions: Vec<f64> = (0..n)
+                .map(|_| {
+                    let z: f64 = rng.sample(StandardNormal);
+                    let u: f64 = rng.sample(Open01);
+                    bridge_first_passage(gap, moved, z, u)
+                })
+                .collect();
+            fractions.sort_by(f64::total_cmp);
+            let (drift, shape) = (f64::abs(gap - moved), gap * gap);
+            let mut worst: f64 = 0.0;
+            for (i, f) in fractions.iter().enumerate().step_by(97) {
+                assert!((0.0..=1.0).contains(f), "a fraction of the step: {f}");
+                let x = f / (1.0 - f);
+                let cdf = if drift == 0.0 {
+                    // Lévy: P(shape / Z² ≤ x) = 2(1 − Φ(√(shape / x))).
+                    2.0 * (1.0 - crate::closed_form::norm_cdf((shape / x).sqrt()))
+                } else {
+                    inverse_gaussian_cdf(x, gap / drift, shape)
+                };
+                worst = worst.max((cdf - (i as f64 + 0.5) / f64::from(n)).abs());
+            }
+            assert!(worst < 0.0098, "gap {gap}, moved {moved}: Kolmogorov distance {worst}");
+        }
+    }
+
+    #[test]
+    fn the_bridge_crossing_probability_is_the_chance_the_drifted_motion_reaches_its_line() {
+        // The first-passage law above rests on writing the bridge as a Brownian motion
+        // reaching a line; that motion reaches it with probability exp(2·drift·gap), which
+        // must be the bridge crossing probability exp(−2·gap·(gap − moved)) used by
+        // `monitors` (in units of σ√Δ).
+        for (gap, moved) in [(0.3_f64, -0.5_f64), (1.2, 0.4), (2.0, 1.9)] {
+            let drift = moved - gap;
+            let motion = (2.0 * drift * gap).exp();
+            let (x0, x1, h): (f64, f64, f64) = (0.0, moved, gap);
+            let bridge = (-2.0 * (x0 - h) * (x1 - h)).exp();
+            assert!((motion - bridge).abs() < 1e-14, "{motion} vs {bridge}");
+        }
+        // And the step's maximum is at or above a level exactly when that crossing happens
+        // for the same uniform.
+        for u in [0.01_f64, 0.3, 0.7, 0.99] {
+            let m = bridge_extreme(0.0, 0.2, 1.0, u, true);
+            let crossing = (-2.0 * (0.0 - m) * (0.2 - m)).exp();
+            assert!((crossing - u).abs() < 1e-12, "u {u}: maximum {m} is crossed with probability {crossing}");
+            let low = bridge_extreme(0.0, 0.2, 1.0, u, false);
+            assert!((-2.0 * (0.0 - low) * (0.2 - low)).exp() - u < 1e-12);
+        }
     }
 
     #[test]
