@@ -335,6 +335,10 @@ struct Compiler<'p> {
     lets: Vec<Option<LetVal>>,
     monitors: Vec<Monitor>,
     path_values: Vec<PathValue>,
+    /// Where each monitor and path value is in its list, so that finding one costs the
+    /// same however many there are (a loop over many dates makes one per date).
+    monitor_index: std::collections::HashMap<MonitorKey, usize>,
+    path_value_index: std::collections::HashMap<PathValueKey, usize>,
     /// Windows ending on the loop date (`touched(... from start to t)`, `highest(perf(X)
     /// from start to t)`) kept running between the loop's dates, by the expression's
     /// span: the register holding the value so far (or the first run's own source), the
@@ -393,6 +397,8 @@ impl<'p> Compiler<'p> {
             lets: vec![None; product.lets],
             monitors: Vec::new(),
             path_values: Vec::new(),
+            monitor_index: std::collections::HashMap::new(),
+            path_value_index: std::collections::HashMap::new(),
             running_windows: std::collections::HashMap::new(),
             events: Vec::new(),
             payments: Vec::new(),
@@ -1149,24 +1155,23 @@ impl<'p> Compiler<'p> {
 
     /// The index of monitor `m`, the same barrier and window sharing one.
     fn monitor_id(&mut self, m: Monitor) -> usize {
-        match self.monitors.iter().position(|x| *x == m) {
-            Some(i) => i,
-            None => {
-                self.monitors.push(m);
-                self.monitors.len() - 1
-            }
-        }
+        let key = (m.asset, m.direction == Direction::Up, m.level.to_bits(), m.relative, m.from, m.to);
+        *self.monitor_index.entry(key).or_insert_with(|| {
+            self.monitors.push(m);
+            self.monitors.len() - 1
+        })
     }
 
     /// The index of path value `v`, equal values sharing one.
     fn path_value(&mut self, v: PathValue) -> usize {
-        match self.path_values.iter().position(|x| *x == v) {
-            Some(i) => i,
-            None => {
-                self.path_values.push(v);
-                self.path_values.len() - 1
-            }
-        }
+        let key = match v {
+            PathValue::HitDiscount { monitor } => (0, monitor, false, 0, 0),
+            PathValue::Extreme { asset, up, from, to } => (1, asset, up, from, to),
+        };
+        *self.path_value_index.entry(key).or_insert_with(|| {
+            self.path_values.push(v);
+            self.path_values.len() - 1
+        })
     }
 
     /// The grid indices of the window of a continuous `highest`/`lowest`, with the same
@@ -1362,6 +1367,11 @@ fn reads_only_levels(e: &TExpr) -> bool {
         | TKind::Extreme { .. } => false,
     }
 }
+
+/// A monitor as a key: asset, up, the level's bits, relative, from, to.
+type MonitorKey = (usize, bool, u64, bool, usize, usize);
+/// A path value as a key: kind, asset or monitor, up, from, to.
+type PathValueKey = (u8, usize, bool, usize, usize);
 
 /// What a window watches, for [`Compiler::running_window`].
 enum Source {
