@@ -24,6 +24,8 @@ pub enum Src {
     Const(f64),
     /// The 1/0 outcome of a continuously monitored barrier.
     Monitor(u32),
+    /// A value read off the path between grid dates ([`PathValue`]).
+    Path(u32),
 }
 
 /// A two-argument operation.
@@ -118,6 +120,21 @@ pub struct Monitor {
     pub to: usize,
 }
 
+/// A value the engine reads off each path between grid dates, from the Brownian bridge
+/// (exact in law given the simulated levels).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum PathValue {
+    /// `pay ... on first touch(...)`: the discount factor `exp(−r·τ)` from the first time τ
+    /// the barrier of monitor `monitor` is touched in its window, 0 on paths where it is not.
+    /// τ is drawn from the first-passage law of the Brownian bridge over the step where the
+    /// crossing happens, the crossing decided exactly as for the monitor's flag.
+    HitDiscount { monitor: usize },
+    /// `highest(level(X) from a to b)` / `lowest(...)`: the running extreme of the level
+    /// over grid indices `from..=to`, each step's bridge extreme drawn from its law given
+    /// both ends (a performance is this divided by the initial level).
+    Extreme { asset: usize, up: bool, from: usize, to: usize },
+}
+
 /// A date of the per-date profile.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Slot {
@@ -160,6 +177,8 @@ pub struct Program {
     /// Initial values of the state registers `1..=states.len()`.
     pub states: Vec<f64>,
     pub monitors: Vec<Monitor>,
+    /// Values read off the paths between grid dates: hit times, running extremes.
+    pub path_values: Vec<PathValue>,
     /// Dates on which blocks run; `End` refers to them by index.
     pub events: Vec<Slot>,
     /// Dates on which payments are made; `Pay` refers to them by index.
@@ -321,6 +340,17 @@ struct Compiler<'p> {
     registers: u32,
     lets: Vec<Option<LetVal>>,
     monitors: Vec<Monitor>,
+    path_values: Vec<PathValue>,
+    /// Where each monitor and path value is in its list, so that finding one costs the
+    /// same however many there are (a loop over many dates makes one per date).
+    monitor_index: std::collections::HashMap<MonitorKey, usize>,
+    path_value_index: std::collections::HashMap<PathValueKey, usize>,
+    /// Windows ending on the loop date (`touched(... from start to t)`, `highest(perf(X)
+    /// from start to t)`) kept running between the loop's dates, by the expression's
+    /// span: the register holding the value so far (or the first run's own source), the
+    /// grid index the window starts at and the one it has reached. Each run then watches
+    /// only the new steps, so a loop over n dates costs n steps, not n².
+    running_windows: std::collections::HashMap<(usize, usize, bool), (Src, usize, usize)>,
     events: Vec<Slot>,
     payments: Vec<Slot>,
     pay_sites: Vec<Span>,
@@ -344,6 +374,8 @@ struct Now {
     loop_date: Option<(When_, usize)>,
     /// The date the block runs on (differs from `idx` inside an aggregate).
     event: When_,
+    /// Inside `for each`: the loop's previous date (the start date on its first date).
+    previous: Option<When_>,
 }
 
 const TIME_EPS: f64 = 1e-9;
@@ -371,6 +403,10 @@ impl<'p> Compiler<'p> {
             registers: 1 + states,
             lets: vec![None; product.lets],
             monitors: Vec::new(),
+            path_values: Vec::new(),
+            monitor_index: std::collections::HashMap::new(),
+            path_value_index: std::collections::HashMap::new(),
+            running_windows: std::collections::HashMap::new(),
             events: Vec::new(),
             payments: Vec::new(),
             pay_sites: Vec::new(),
@@ -412,7 +448,7 @@ impl<'p> Compiler<'p> {
                 DateRef::First(s) => self.schedules.get(s).and_then(|v| v.first().copied()),
                 DateRef::Last(s) => self.schedules.get(s).and_then(|v| v.last().copied()),
                 DateRef::Only(s) => self.only(s, span),
-                DateRef::Loop | DateRef::Let(_) => None,
+                DateRef::Loop | DateRef::Let(_) | DateRef::Previous => None,
             };
             if let Some(w) = resolved {
                 self.start = w;
@@ -641,17 +677,21 @@ impl<'p> Compiler<'p> {
 
     fn compile_blocks(&mut self) {
         // Unroll each block over its dates, then order all runs by date (file order on ties).
-        let mut runs: Vec<(f64, usize, When_, Option<usize>)> = Vec::new();
+        // (time, block, date, position in the loop, the loop's previous date)
+        type Run = (f64, usize, When_, Option<usize>, Option<When_>);
+        let mut runs: Vec<Run> = Vec::new();
         for (b, block) in self.product.blocks.iter().enumerate() {
             match &block.when {
                 When::Each(s) => {
+                    let mut previous = self.start;
                     for (i, w) in self.schedules[*s].iter().enumerate() {
-                        runs.push((w.0, b, *w, Some(i + 1)));
+                        runs.push((w.0, b, *w, Some(i + 1), Some(previous)));
+                        previous = *w;
                     }
                 }
                 When::At(d, span) => {
                     if let Some(w) = self.resolve(*d, *span, None) {
-                        runs.push((w.0, b, w, None));
+                        runs.push((w.0, b, w, None, None));
                     }
                 }
             }
@@ -663,11 +703,11 @@ impl<'p> Compiler<'p> {
                     .with_fix("give the `for each` loop a schedule with dates"),
             );
         }
-        for (_, b, w, position) in runs {
+        for (_, b, w, position, previous) in runs {
             let block = &self.product.blocks[b];
             // Every run date is a row of the profile, whether or not the product ends there.
             self.event_slot(w);
-            let now = Now { idx: self.grid_index(w.0), loop_date: position.map(|p| (w, p)), event: w };
+            let now = Now { idx: self.grid_index(w.0), loop_date: position.map(|p| (w, p)), event: w, previous };
             self.stmts(&block.body, now, ALIVE);
             // Lets live for one run of a block.
             for slot in 0..self.lets.len() {
@@ -699,6 +739,7 @@ impl<'p> Compiler<'p> {
             registers: self.registers as usize,
             states,
             monitors: self.monitors,
+            path_values: self.path_values,
             events: self.events,
             payments: self.payments,
             pay_sites: self.pay_sites,
@@ -718,6 +759,7 @@ impl<'p> Compiler<'p> {
                 Some(LetVal::Date(t, d)) => Some((t, d)),
                 _ => None,
             },
+            DateRef::Previous => now.and_then(|n| n.previous),
         }
     }
 
@@ -823,6 +865,42 @@ impl<'p> Compiler<'p> {
                 let slot = slot_of(&mut self.events, now.event);
                 self.ops.push(Op::End { mask, slot });
                 true
+            }
+            TStmt::PayAtHit { amount, barrier, span } => {
+                let TKind::Touched { asset, direction, level, relative, from, to } = barrier.kind else {
+                    return false;
+                };
+                let Some(m) = self.monitor(asset, direction, level, relative, from, to, barrier.span, &now) else {
+                    return false;
+                };
+                let Some(a) = self.expr(amount, now) else { return false };
+                // In a loop, a window ending on the loop date runs on from the last date,
+                // as for `touched`: its flag and its discount factor (the first touch's).
+                let flag = self.running_window(barrier, to, m.from, m.to, Combine::Bin(Bin::Or), |from, to| {
+                    Source::Monitor(Monitor { from, to, ..m })
+                });
+                let flag = flag.map_or_else(|| Src::Monitor(self.monitor_id(m) as u32), |v| v.src);
+                let discount = self.running_window(barrier, to, m.from, m.to, Combine::First, |from, to| {
+                    Source::Hit(Monitor { from, to, ..m })
+                });
+                let discount = discount.map_or_else(
+                    || {
+                        let monitor = self.monitor_id(m);
+                        Src::Path(self.path_value(PathValue::HitDiscount { monitor }) as u32)
+                    },
+                    |v| v.src,
+                );
+                let hit = self.alloc();
+                self.ops.push(Op::Bin { op: Bin::And, dst: hit, a: Src::Reg(mask), b: flag });
+                let value = self.push_bin(Bin::Mul, a, V { src: discount, temp: false });
+                // Shown in the profile on the date of the block; its present value is exact.
+                let slot = slot_of(&mut self.payments, now.event);
+                let site = self.pay_sites.len() as u32;
+                self.pay_sites.push(*span);
+                self.ops.push(Op::Pay { mask: hit, amount: value.src, slot, discount: 1.0, site });
+                self.release(value);
+                self.free.push(hit);
+                false
             }
         }
     }
@@ -1036,54 +1114,204 @@ impl<'p> Compiler<'p> {
             }
             TKind::Aggregate(agg, body, s) => self.aggregate(*agg, body, *s, e.span, now)?,
             TKind::Touched { asset, direction, level, relative, from, to } => {
-                let a = self.resolve(*from, e.span, Some(&now))?;
-                let b = self.resolve(*to, e.span, Some(&now))?;
-                if b.0 < a.0 {
-                    self.error(
-                        e.span,
-                        format!("the monitoring window ends ({}) before it starts ({})", label(b), label(a)),
-                        "write the earlier date after `from`",
-                    );
-                    return None;
+                let m = self.monitor(*asset, *direction, *level, *relative, *from, *to, e.span, &now)?;
+                if let Some(v) = self.running_window(e, *to, m.from, m.to, Combine::Bin(Bin::Or), |from, to| {
+                    Source::Monitor(Monitor { from, to, ..m })
+                }) {
+                    return Some(v);
                 }
-                if b.0 > now.event.0 + TIME_EPS {
-                    self.error(
-                        e.span,
-                        format!(
-                            "whether the barrier was touched up to {} is not known yet on {}",
-                            label(b),
-                            label(now.event)
-                        ),
-                        "end the monitoring window on or before the date of the block",
-                    );
-                    return None;
-                }
-                if *relative && a.0 + TIME_EPS < self.start.0 {
-                    self.error(
-                        e.span,
-                        "a barrier relative to the initial level cannot be watched before the start date",
-                        "begin the window at `start` or later",
-                    );
-                    return None;
-                }
-                let m = Monitor {
-                    asset: *asset,
-                    direction: *direction,
-                    level: *level,
-                    relative: *relative,
-                    from: self.grid_index(a.0),
-                    to: self.grid_index(b.0),
+                V { src: Src::Monitor(self.monitor_id(m) as u32), temp: false }
+            }
+            TKind::Extreme { asset, up, relative, from, to } => {
+                let (a, b) = self.extreme_window(*up, *relative, *from, *to, e.span, &now)?;
+                let make = |from, to| PathValue::Extreme { asset: *asset, up: *up, from, to };
+                let combine = Combine::Bin(if *up { Bin::Max } else { Bin::Min });
+                let level = match self.running_window(e, *to, a, b, combine, |f, t| Source::Path(make(f, t))) {
+                    Some(v) => v,
+                    None => V { src: Src::Path(self.path_value(make(a, b)) as u32), temp: false },
                 };
-                let id = match self.monitors.iter().position(|x| *x == m) {
-                    Some(i) => i,
-                    None => {
-                        self.monitors.push(m);
-                        self.monitors.len() - 1
-                    }
-                };
-                V { src: Src::Monitor(id as u32), temp: false }
+                if !*relative {
+                    return Some(level);
+                }
+                // A performance, divided by the initial level as `perf(X)` is (so a struck
+                // trade's fixed initial level applies to it too).
+                let init = self.initial(*asset, e.span, &now)?;
+                match init.src {
+                    Src::Const(x) => self.push_bin(Bin::Mul, level, V::konst(1.0 / x)),
+                    _ => self.push_bin(Bin::Div, level, init),
+                }
             }
         })
+    }
+
+    /// The monitor of `touched(...)` over the window `from`..`to`, refusing windows that
+    /// run backwards, end after the block's date, or watch a relative barrier before the start.
+    #[allow(clippy::too_many_arguments)]
+    fn monitor(
+        &mut self,
+        asset: usize,
+        direction: Direction,
+        level: f64,
+        relative: bool,
+        from: DateRef,
+        to: DateRef,
+        span: Span,
+        now: &Now,
+    ) -> Option<Monitor> {
+        let a = self.resolve(from, span, Some(now))?;
+        let b = self.resolve(to, span, Some(now))?;
+        if b.0 < a.0 {
+            self.error(
+                span,
+                format!("the monitoring window ends ({}) before it starts ({})", label(b), label(a)),
+                "write the earlier date after `from`",
+            );
+            return None;
+        }
+        if b.0 > now.event.0 + TIME_EPS {
+            self.error(
+                span,
+                format!("whether the barrier was touched up to {} is not known yet on {}", label(b), label(now.event)),
+                "end the monitoring window on or before the date of the block",
+            );
+            return None;
+        }
+        if relative && a.0 + TIME_EPS < self.start.0 {
+            self.error(
+                span,
+                "a barrier relative to the initial level cannot be watched before the start date",
+                "begin the window at `start` or later",
+            );
+            return None;
+        }
+        Some(Monitor { asset, direction, level, relative, from: self.grid_index(a.0), to: self.grid_index(b.0) })
+    }
+
+    /// The index of monitor `m`, the same barrier and window sharing one.
+    fn monitor_id(&mut self, m: Monitor) -> usize {
+        let key = (m.asset, m.direction == Direction::Up, m.level.to_bits(), m.relative, m.from, m.to);
+        *self.monitor_index.entry(key).or_insert_with(|| {
+            self.monitors.push(m);
+            self.monitors.len() - 1
+        })
+    }
+
+    /// The index of path value `v`, equal values sharing one.
+    fn path_value(&mut self, v: PathValue) -> usize {
+        let key = match v {
+            PathValue::HitDiscount { monitor } => (0, monitor, false, 0, 0),
+            PathValue::Extreme { asset, up, from, to } => (1, asset, up, from, to),
+        };
+        *self.path_value_index.entry(key).or_insert_with(|| {
+            self.path_values.push(v);
+            self.path_values.len() - 1
+        })
+    }
+
+    /// The grid indices of the window of a continuous `highest`/`lowest`, with the same
+    /// refusals as `touched`.
+    fn extreme_window(
+        &mut self,
+        up: bool,
+        relative: bool,
+        from: DateRef,
+        to: DateRef,
+        span: Span,
+        now: &Now,
+    ) -> Option<(usize, usize)> {
+        let name = if up { "highest" } else { "lowest" };
+        let a = self.resolve(from, span, Some(now))?;
+        let b = self.resolve(to, span, Some(now))?;
+        if b.0 < a.0 {
+            self.error(
+                span,
+                format!("the window of `{name}` ends ({}) before it starts ({})", label(b), label(a)),
+                "write the earlier date after `from`",
+            );
+            return None;
+        }
+        if b.0 > now.event.0 + TIME_EPS {
+            self.error(
+                span,
+                format!("the {name} level up to {} is not known yet on {}", label(b), label(now.event)),
+                "end the window on or before the date of the block",
+            );
+            return None;
+        }
+        if relative && a.0 + TIME_EPS < self.start.0 {
+            self.error(
+                span,
+                format!("`{name}` of a performance cannot be watched before the start date, which it is relative to"),
+                "begin the window at `start` or later, or watch `level(X)`",
+            );
+            return None;
+        }
+        Some((self.grid_index(a.0), self.grid_index(b.0)))
+    }
+
+    /// A window ending on the loop date, kept running between the loop's dates: on the
+    /// first run the window's own value; on later runs (same start) the value so far
+    /// combined with the value over the new steps only (`or`, `max`, `min`, or the first
+    /// touch's discount factor when there is one). The result is the same number as
+    /// watching the whole window again: the steps and their bridge draws are the same,
+    /// and the combination is exact. `None` when the window does not end on the loop date.
+    fn running_window(
+        &mut self,
+        e: &TExpr,
+        to: DateRef,
+        from_idx: usize,
+        to_idx: usize,
+        combine: Combine,
+        make: impl Fn(usize, usize) -> Source,
+    ) -> Option<V> {
+        if to != DateRef::Loop {
+            return None;
+        }
+        let key = (e.span.start, e.span.end, combine == Combine::First);
+        let src = |c: &mut Compiler<'_>, source: Source| match source {
+            Source::Monitor(m) => Src::Monitor(c.monitor_id(m) as u32),
+            Source::Path(v) => Src::Path(c.path_value(v) as u32),
+            Source::Hit(m) => {
+                let monitor = c.monitor_id(m);
+                Src::Path(c.path_value(PathValue::HitDiscount { monitor }) as u32)
+            }
+        };
+        let value = match self.running_windows.get(&key).copied() {
+            Some((so_far, from, reached)) if from == from_idx && reached <= to_idx => {
+                if reached == to_idx {
+                    so_far
+                } else {
+                    let new = src(self, make(reached, to_idx));
+                    match (so_far, combine) {
+                        (Src::Reg(r), Combine::Bin(op)) => {
+                            let op = if op == Bin::Min { Acc::Min } else { Acc::Max };
+                            self.ops.push(Op::Acc { op, dst: r, src: new });
+                            so_far
+                        }
+                        (Src::Reg(r), Combine::First) => {
+                            // A discount factor is positive exactly where the barrier was touched.
+                            let t = self.alloc();
+                            self.ops.push(Op::Select { dst: t, cond: so_far, a: so_far, b: new });
+                            self.ops.push(Op::Copy { dst: r, src: Src::Reg(t) });
+                            self.free.push(t);
+                            so_far
+                        }
+                        (_, combine) => {
+                            // The register lives on for the loop's later dates; never freed.
+                            let r = self.alloc();
+                            self.ops.push(match combine {
+                                Combine::Bin(op) => Op::Bin { op, dst: r, a: so_far, b: new },
+                                Combine::First => Op::Select { dst: r, cond: so_far, a: so_far, b: new },
+                            });
+                            Src::Reg(r)
+                        }
+                    }
+                }
+            }
+            _ => src(self, make(from_idx, to_idx)),
+        };
+        self.running_windows.insert(key, (value, from_idx, to_idx));
+        Some(V { src: value, temp: false })
     }
 
     fn aggregate(&mut self, agg: Aggregate, body: &TExpr, s: usize, span: Span, now: Now) -> Option<V> {
@@ -1099,7 +1327,7 @@ impl<'p> Compiler<'p> {
             );
             return None;
         }
-        if agg == Aggregate::Average {
+        if matches!(agg, Aggregate::Average | Aggregate::GeometricAverage) {
             if let TKind::Perf { asset, at: None } | TKind::Level { asset, at: None } = body.kind {
                 let idx: Vec<usize> = dates.iter().map(|w| self.grid_index(w.0)).collect();
                 if !self.averages.iter().any(|(a, i)| *a == asset && *i == idx) {
@@ -1108,7 +1336,7 @@ impl<'p> Compiler<'p> {
             }
         }
         let acc_op = match agg {
-            Aggregate::Average | Aggregate::Sum | Aggregate::Count => Acc::Add,
+            Aggregate::Average | Aggregate::GeometricAverage | Aggregate::Sum | Aggregate::Count => Acc::Add,
             Aggregate::Highest | Aggregate::Any => Acc::Max,
             Aggregate::Lowest | Aggregate::All => Acc::Min,
         };
@@ -1124,6 +1352,8 @@ impl<'p> Compiler<'p> {
         for (i, w) in dates.iter().enumerate().skip(done) {
             let inner = Now { idx: self.grid_index(w.0), ..now };
             let v = self.expr(body, inner)?;
+            // The same operations as `exp(average(log(x) over s))`, so the same bits.
+            let v = if agg == Aggregate::GeometricAverage { self.push_un(Un::Log, v) } else { v };
             if i == 0 {
                 self.ops.push(Op::Copy { dst: acc, src: v.src });
             } else {
@@ -1138,10 +1368,13 @@ impl<'p> Compiler<'p> {
         } else {
             V { src: Src::Reg(acc), temp: true }
         };
-        Some(if agg == Aggregate::Average {
-            self.push_bin(Bin::Mul, result, V::konst(1.0 / dates.len() as f64))
-        } else {
-            result
+        Some(match agg {
+            Aggregate::Average => self.push_bin(Bin::Mul, result, V::konst(1.0 / dates.len() as f64)),
+            Aggregate::GeometricAverage => {
+                let mean = self.push_bin(Bin::Mul, result, V::konst(1.0 / dates.len() as f64));
+                self.push_un(Un::Exp, mean)
+            }
+            _ => result,
         })
     }
 }
@@ -1164,8 +1397,31 @@ fn reads_only_levels(e: &TExpr) -> bool {
         | TKind::Let(_)
         | TKind::Position
         | TKind::Years(_)
-        | TKind::Touched { .. } => false,
+        | TKind::Touched { .. }
+        | TKind::Extreme { .. } => false,
     }
+}
+
+/// A monitor as a key: asset, up, the level's bits, relative, from, to.
+type MonitorKey = (usize, bool, u64, bool, usize, usize);
+/// A path value as a key: kind, asset or monitor, up, from, to.
+type PathValueKey = (u8, usize, bool, usize, usize);
+
+/// What a window watches, for [`Compiler::running_window`].
+enum Source {
+    Monitor(Monitor),
+    Path(PathValue),
+    /// The discount factor of the first touch of the monitor's barrier.
+    Hit(Monitor),
+}
+
+/// How a running window's value so far takes in the new steps.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Combine {
+    /// `or` of flags, `max` or `min` of extremes.
+    Bin(Bin),
+    /// The value so far where it is not 0 (the first touch's discount factor), else the new one.
+    First,
 }
 
 /// Times compare as whole days when they come from calendar dates; rounding to 1e-9 years
@@ -1207,6 +1463,7 @@ fn collect_stmt(s: &TStmt, times: &mut Vec<f64>, c: &mut Compiler<'_>) {
             }
         }
         TStmt::Pay { amount, .. } => collect_expr(amount, times, c),
+        TStmt::PayAtHit { barrier, .. } => collect_expr(barrier, times, c),
         TStmt::End(_) => {}
     }
 }
@@ -1231,7 +1488,7 @@ fn collect_expr(e: &TExpr, times: &mut Vec<f64>, c: &mut Compiler<'_>) {
             }
         }
         TKind::Aggregate(_, body, _) => collect_expr(body, times, c),
-        TKind::Touched { from, to, .. } => {
+        TKind::Touched { from, to, .. } | TKind::Extreme { from, to, .. } => {
             collect_ref(*from, times, c);
             collect_ref(*to, times, c);
         }

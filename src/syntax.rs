@@ -108,6 +108,9 @@ pub enum Stmt {
     Pay { amount: Expr, on: Option<Expr>, span: Span },
     /// `end`: the product ends on this path; nothing later happens.
     End(Span),
+    /// `pay amount on first touch(perf(X) >= 130% from start to t)`: paid at the moment
+    /// the barrier is first touched in the window, discounted from that moment.
+    PayAtHit { amount: Expr, condition: Box<Expr>, from: Box<Expr>, to: Box<Expr>, span: Span },
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -138,6 +141,9 @@ pub enum ExprKind {
     Aggregate(Aggregate, Box<Expr>, Name),
     /// `touched(perf(OSMP) <= 65% from start to 1y)`
     Touched { condition: Box<Expr>, from: Box<Expr>, to: Box<Expr> },
+    /// `highest(perf(VNTL) from start to 1y)`, `lowest(level(VNTL) from a to b)`: the
+    /// continuously monitored extreme over a window (`highest` when `up`).
+    Extreme { up: bool, observed: Box<Expr>, from: Box<Expr>, to: Box<Expr> },
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -185,6 +191,8 @@ impl BinaryOp {
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Aggregate {
     Average,
+    /// `geometric_average(perf(X) over s)`: the exponential of the average logarithm.
+    GeometricAverage,
     Sum,
     Highest,
     Lowest,
@@ -197,6 +205,7 @@ impl Aggregate {
     pub fn name(self) -> &'static str {
         match self {
             Aggregate::Average => "average",
+            Aggregate::GeometricAverage => "geometric_average",
             Aggregate::Sum => "sum",
             Aggregate::Highest => "highest",
             Aggregate::Lowest => "lowest",
@@ -628,6 +637,13 @@ impl Lowering {
                 Stmt::Pay { amount, on, span }
             }
             Rule::end_stmt => Stmt::End(span),
+            Rule::pay_hit_stmt => {
+                let amount = self.expr(inner.next().unwrap());
+                let condition = Box::new(self.expr(inner.next().unwrap()));
+                let from = Box::new(self.expr(inner.next().unwrap()));
+                let to = Box::new(self.expr(inner.next().unwrap()));
+                Stmt::PayAtHit { amount, condition, from, to, span }
+            }
             other => unreachable!("grammar yields no statement {other:?}"),
         }
     }
@@ -723,10 +739,20 @@ impl Lowering {
                 depth = dc.max(df).max(dt);
                 ExprKind::Touched { condition: Box::new(condition), from: Box::new(from), to: Box::new(to) }
             }
+            Rule::extreme => {
+                let mut inner = children(pair);
+                let up = inner.next().unwrap().as_str() == "highest";
+                let (observed, dc) = self.expr_depth(inner.next().unwrap());
+                let (from, df) = self.expr_depth(inner.next().unwrap());
+                let (to, dt) = self.expr_depth(inner.next().unwrap());
+                depth = dc.max(df).max(dt);
+                ExprKind::Extreme { up, observed: Box::new(observed), from: Box::new(from), to: Box::new(to) }
+            }
             Rule::aggregate => {
                 let mut inner = children(pair);
                 let agg = match inner.next().unwrap().as_str() {
                     "average" => Aggregate::Average,
+                    "geometric_average" => Aggregate::GeometricAverage,
                     "sum" => Aggregate::Sum,
                     "highest" => Aggregate::Highest,
                     "lowest" => Aggregate::Lowest,
@@ -754,7 +780,11 @@ impl Lowering {
         };
         // Leaves are depth 0; a node holding others is one more than its deepest.
         let depth = match kind {
-            ExprKind::If(..) | ExprKind::Touched { .. } | ExprKind::Aggregate(..) | ExprKind::Call(..) => depth + 1,
+            ExprKind::If(..)
+            | ExprKind::Touched { .. }
+            | ExprKind::Extreme { .. }
+            | ExprKind::Aggregate(..)
+            | ExprKind::Call(..) => depth + 1,
             _ => 0,
         };
         let too_deep = std::cell::Cell::new(None);
@@ -817,6 +847,8 @@ fn is_keyword(rule: Rule) -> bool {
             | Rule::kw_days
             | Rule::kw_over
             | Rule::kw_touched
+            | Rule::kw_first
+            | Rule::kw_touch
     )
 }
 
@@ -952,15 +984,24 @@ fn slip(source: &str, at: usize) -> Option<Diagnostic> {
             "write `if c { pay x }`; `then` belongs to the value form `if c then a else b`, which needs its `else`",
         );
     }
-    // Inside an unclosed `touched(`: the window is missing or misspelt.
-    if let Some(open) = source[..at].rfind("touched(") {
-        let inside = &source[open + "touched(".len()..at];
+    // Inside an unclosed `touched(` or `first touch(`: the window is missing or misspelt.
+    let opened = |word: &'static str| source[..at].rfind(word).map(|i| (i, word));
+    if let Some((open, word)) = opened("touched(").max(opened("first touch(")) {
+        let inside = &source[open + word.len()..at];
         let depth = inside.chars().fold(1i32, |d, c| match c {
             '(' => d + 1,
             ')' => d - 1,
             _ => d,
         });
         if depth > 0 && (!inside.contains(" from ") || rest.starts_with(')')) {
+            if word == "first touch(" {
+                return hint(
+                    open,
+                    "first touch".len(),
+                    "`first touch(...)` needs its window: the condition, then `from DATE to DATE`",
+                    "write for example `pay notional * 5% on first touch(perf(ZPHX) >= 130% from start to 1y)`",
+                );
+            }
             return hint(
                 open,
                 "touched".len(),
@@ -1010,8 +1051,33 @@ const TOP_LEVEL: &[&str] =
 
 /// The grammar's reserved words (rule `keyword`).
 const RESERVED: &[&str] = &[
-    "start", "param", "dates", "state", "for", "at", "let", "if", "then", "else", "pay", "on", "end", "and", "or",
-    "not", "touched", "true", "false", "average", "sum", "highest", "lowest", "count", "any", "all",
+    "start",
+    "param",
+    "dates",
+    "state",
+    "for",
+    "at",
+    "let",
+    "if",
+    "then",
+    "else",
+    "pay",
+    "on",
+    "end",
+    "and",
+    "or",
+    "not",
+    "touched",
+    "true",
+    "false",
+    "geometric_average",
+    "average",
+    "sum",
+    "highest",
+    "lowest",
+    "count",
+    "any",
+    "all",
 ];
 
 fn join_or(items: &[String]) -> String {
@@ -1046,7 +1112,7 @@ fn describe(rule: Rule) -> Option<String> {
         Rule::period => "a period such as 3m, 1w, 1d or 1y",
         Rule::integer => "a whole number",
         Rule::block => "`{`",
-        Rule::let_stmt | Rule::if_stmt | Rule::pay_stmt | Rule::end_stmt | Rule::assign_stmt => {
+        Rule::let_stmt | Rule::if_stmt | Rule::pay_stmt | Rule::pay_hit_stmt | Rule::end_stmt | Rule::assign_stmt => {
             "a statement (let, if, pay, end, or `name = value`)"
         }
         Rule::or | Rule::and | Rule::le | Rule::ge | Rule::ne | Rule::eq | Rule::lt | Rule::gt
@@ -1079,6 +1145,10 @@ mod tests {
             ExprKind::Touched { condition, from, to } => {
                 format!("(touched {} {} {})", show(condition), show(from), show(to))
             }
+            ExprKind::Extreme { up, observed, from, to } => {
+                let name = if *up { "highest" } else { "lowest" };
+                format!("({name}-continuous {} {} {})", show(observed), show(from), show(to))
+            }
         }
     }
 
@@ -1100,6 +1170,16 @@ mod tests {
         assert_eq!(expr_of("max(a, b, c) - 1"), "(- (max a b c) 1)");
         assert_eq!(expr_of("average(perf(ZPHX) over fixings)"), "(average (perf ZPHX) fixings)");
         assert_eq!(expr_of("level(ZPHX, 0.5y)"), "(level ZPHX Years(0.5))");
+        assert_eq!(expr_of("geometric_average(perf(ZPHX) over m)"), "(geometric_average (perf ZPHX) m)");
+        assert_eq!(expr_of("highest(perf(VNTL) over days)"), "(highest (perf VNTL) days)");
+        assert_eq!(
+            expr_of("highest(perf(VNTL) from start to 1y)"),
+            "(highest-continuous (perf VNTL) Start Years(1.0))"
+        );
+        assert_eq!(
+            expr_of("lowest(level(VNTL) from previous(t) to t)"),
+            "(lowest-continuous (level VNTL) (previous t) t)"
+        );
         assert_eq!(
             expr_of("touched(perf(OSMP) <= 65% from start to 2027-12-01)"),
             "(touched (<= (perf OSMP) 0.65) Start Iso(Date(21153)))"
@@ -1113,6 +1193,19 @@ mod tests {
         assert_eq!(body.len(), 3);
         assert!(matches!(body[1], Stmt::Assign(..)));
         assert!(matches!(body[2], Stmt::End(_)));
+    }
+
+    #[test]
+    fn a_payment_at_the_touch_is_its_own_statement() {
+        let file =
+            parse("at 1y {\n pay 5 on first touch(perf(Z) >= 130% from start to 1y)\n pay 1 on first(s)\n}").unwrap();
+        let Item::At { body, .. } = &file.items[0] else { panic!() };
+        let Stmt::PayAtHit { amount, condition, from, to, .. } = &body[0] else { panic!("{:?}", body[0]) };
+        assert_eq!(
+            (show(amount), show(condition), show(from), show(to)),
+            ("5".into(), "(>= (perf Z) 1.3)".into(), "Start".into(), "Years(1.0)".into())
+        );
+        assert!(matches!(&body[1], Stmt::Pay { on: Some(_), .. }));
     }
 
     #[test]

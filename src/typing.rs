@@ -44,6 +44,8 @@ pub enum DateRef {
     Only(usize),
     /// A `let` holding a date.
     Let(usize),
+    /// `previous(t)`: the loop's date before the current one (the start date on the first).
+    Previous,
 }
 
 /// A function of numbers.
@@ -118,6 +120,15 @@ pub enum TKind {
         from: DateRef,
         to: DateRef,
     },
+    /// `highest(perf(X) from a to b)` (`up`) or `lowest(...)`: the continuously monitored
+    /// extreme of the level (a performance if `relative`) between a and b.
+    Extreme {
+        asset: usize,
+        up: bool,
+        relative: bool,
+        from: DateRef,
+        to: DateRef,
+    },
 }
 
 /// A checked statement.
@@ -125,9 +136,24 @@ pub enum TKind {
 pub enum TStmt {
     Let(usize, TExpr),
     Assign(usize, TExpr),
-    If { cond: TExpr, then: Vec<TStmt>, otherwise: Vec<TStmt> },
-    Pay { amount: TExpr, on: Option<(DateRef, Span)>, span: Span },
+    If {
+        cond: TExpr,
+        then: Vec<TStmt>,
+        otherwise: Vec<TStmt>,
+    },
+    Pay {
+        amount: TExpr,
+        on: Option<(DateRef, Span)>,
+        span: Span,
+    },
     End(Span),
+    /// `pay amount on first touch(...)`: `amount` is known before simulation and
+    /// `barrier` is a [`TKind::Touched`].
+    PayAtHit {
+        amount: TExpr,
+        barrier: TExpr,
+        span: Span,
+    },
 }
 
 /// When a block runs.
@@ -346,6 +372,7 @@ const FUNCTIONS: &[&str] = &[
     "years",
     "first",
     "last",
+    "previous",
 ];
 
 impl Checker {
@@ -542,6 +569,7 @@ impl Checker {
                         Stmt::Let(..) => "`let`",
                         Stmt::If { .. } => "`if`",
                         Stmt::Assign(..) => "an assignment",
+                        Stmt::PayAtHit { .. } => "`pay ... on first touch(...)`",
                     };
                     self.error(
                         *span,
@@ -788,6 +816,20 @@ impl Checker {
                 Some(TStmt::Pay { amount: a, on, span: *span })
             }
             Stmt::End(span) => Some(TStmt::End(*span)),
+            Stmt::PayAtHit { amount, condition, from, to, span } => {
+                let a = self.expr(amount);
+                let barrier = self.touched(condition, from, to, condition.span.join(to.span));
+                let a = self.expect(a?, Ty::Number, "the amount of `pay`")?;
+                if !matches!(a.kind, TKind::Const(_)) {
+                    self.error(
+                        a.span,
+                        "an amount paid at the moment of the touch must be known before simulation",
+                        "pay a fixed amount, such as `notional * 5%`; the levels and states of the block's date are not known yet at the touch",
+                    );
+                    return None;
+                }
+                Some(TStmt::PayAtHit { amount: a, barrier: barrier?, span: *span })
+            }
         }
     }
 
@@ -899,6 +941,7 @@ impl Checker {
                 let body = body?;
                 let want = match agg {
                     Aggregate::Count | Aggregate::Any | Aggregate::All => Ty::Flag,
+                    Aggregate::GeometricAverage => Ty::Number,
                     _ => Ty::Number,
                 };
                 let body = self.expect(body, want, &format!("the inside of `{}`", agg.name()))?;
@@ -906,6 +949,7 @@ impl Checker {
                 Some(TExpr { kind: TKind::Aggregate(*agg, Box::new(body), s), ty, span })
             }
             ExprKind::Touched { condition, from, to } => self.touched(condition, from, to, span),
+            ExprKind::Extreme { up, observed, from, to } => self.extreme(*up, observed, from, to, span),
         }
     }
 
@@ -952,9 +996,12 @@ impl Checker {
     fn is_performance(&self, e: &TExpr) -> bool {
         match &e.kind {
             TKind::Perf { .. } => true,
-            TKind::Aggregate(Aggregate::Average | Aggregate::Highest | Aggregate::Lowest, body, _) => {
-                self.is_performance(body)
-            }
+            TKind::Aggregate(
+                Aggregate::Average | Aggregate::GeometricAverage | Aggregate::Highest | Aggregate::Lowest,
+                body,
+                _,
+            ) => self.is_performance(body),
+            TKind::Extreme { relative, .. } => *relative,
             TKind::Func(Func::Min | Func::Max, args) => {
                 args.iter().any(|a| self.is_performance(a))
                     && args.iter().all(|a| self.is_performance(a) || matches!(a.kind, TKind::Const(_)))
@@ -1127,6 +1174,22 @@ impl Checker {
                 }
                 number(TKind::Position)
             }
+            "previous" => {
+                if !arity(self, 1, 1, "previous(t)") {
+                    return None;
+                }
+                let ok =
+                    matches!(&args[0].kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
+                if !ok {
+                    self.error(
+                        args[0].span,
+                        "`previous` takes the date of the enclosing `for each` loop",
+                        "write `previous(t)` inside `for each t in SCHEDULE { ... }`: the loop's date before t (the start date on its first date)",
+                    );
+                    return None;
+                }
+                Some(TExpr { kind: TKind::Date(DateRef::Previous), ty: Ty::Date, span })
+            }
             "years" => {
                 if !arity(self, 1, 1, "years(t)") {
                     return None;
@@ -1215,6 +1278,49 @@ impl Checker {
     }
 }
 
+impl Checker {
+    /// `highest(perf(X) from a to b)` / `lowest(level(X) from a to b)`.
+    fn extreme(
+        &mut self,
+        up: bool,
+        observed: &syntax::Expr,
+        from: &syntax::Expr,
+        to: &syntax::Expr,
+        span: Span,
+    ) -> Option<TExpr> {
+        let name = if up { "highest" } else { "lowest" };
+        let usage = format!(
+            "write `{name}(perf(X) from start to t)` for the continuous extreme, or `{name}(perf(X) over SCHEDULE)` for the extreme of fixings"
+        );
+        let relative = match &observed.kind {
+            ExprKind::Call(f, args) if f.text == "perf" || f.text == "level" => {
+                if args.len() != 1 {
+                    self.error(
+                        observed.span,
+                        format!("inside `{name}(... from .. to ..)` the level is watched over the whole window, so give no date"),
+                        usage,
+                    );
+                    return None;
+                }
+                f.text == "perf"
+            }
+            _ => {
+                self.error(
+                    observed.span,
+                    format!("`{name}` over a window watches `perf(X)` or `level(X)` of one underlying"),
+                    usage,
+                );
+                return None;
+            }
+        };
+        let ExprKind::Call(f, args) = &observed.kind else { unreachable!("matched a call above") };
+        let asset = self.asset_arg(&args[0], &f.text);
+        let (from, to) = (self.date(from), self.date(to));
+        let (asset, from, to) = (asset?, from?, to?);
+        Some(TExpr { kind: TKind::Extreme { asset, up, relative, from, to }, ty: Ty::Number, span })
+    }
+}
+
 /// Whether a schedule surely holds a single date (a one-date list or one step).
 fn holds_one_date(s: &syntax::Schedule) -> bool {
     match &s.kind {
@@ -1228,7 +1334,7 @@ fn holds_one_date(s: &syntax::Schedule) -> bool {
 fn stmt_span(stmt: &Stmt) -> Span {
     match stmt {
         Stmt::Let(n, e) | Stmt::Assign(n, e) => n.span.join(e.span),
-        Stmt::If { span, .. } | Stmt::Pay { span, .. } | Stmt::End(span) => *span,
+        Stmt::If { span, .. } | Stmt::Pay { span, .. } | Stmt::PayAtHit { span, .. } | Stmt::End(span) => *span,
     }
 }
 

@@ -90,8 +90,9 @@ pub enum Reference {
         carry: f64,
         volatility: f64,
     },
-    /// Reiner–Rubinstein, rebate paid at expiry; with `fixings`, monitored on that many
-    /// equally spaced dates and priced at the BGK-shifted barrier.
+    /// Reiner–Rubinstein, rebate paid at expiry (with `rebate_at_hit`, a knock-out's
+    /// rebate is paid at the moment of the touch, Haug's convention); with `fixings`,
+    /// monitored on that many equally spaced dates and priced at the BGK-shifted barrier.
     Barrier {
         kind: Kind,
         barrier: Barrier,
@@ -99,6 +100,8 @@ pub enum Reference {
         strike: f64,
         level: f64,
         rebate: f64,
+        #[serde(default)]
+        rebate_at_hit: bool,
         years: f64,
         rate: f64,
         carry: f64,
@@ -184,6 +187,7 @@ impl Reference {
             Reference::BlackScholes { .. } => "Black–Scholes",
             Reference::CashOrNothing { .. } => "cash-or-nothing",
             Reference::AssetOrNothing { .. } => "asset-or-nothing",
+            Reference::Barrier { fixings: None, rebate_at_hit: true, .. } => "Reiner–Rubinstein, rebate at the touch",
             Reference::Barrier { fixings: None, .. } => "Reiner–Rubinstein",
             Reference::Barrier { .. } => "Reiner–Rubinstein + BGK",
             Reference::GeometricAsian { .. } => "discrete geometric Asian",
@@ -216,6 +220,7 @@ impl Reference {
                 strike,
                 level,
                 rebate,
+                rebate_at_hit,
                 years,
                 rate,
                 carry,
@@ -240,7 +245,7 @@ impl Reference {
                     strike,
                     level,
                     rebate,
-                    RebateTiming::AtExpiry,
+                    if rebate_at_hit { RebateTiming::AtHit } else { RebateTiming::AtExpiry },
                     years,
                     rate,
                     carry,

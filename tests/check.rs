@@ -33,6 +33,8 @@ fn every_validation_case_is_within_four_standard_errors() {
         "discrete geometric Asian",
         "Goldman–Sosin–Gatto + BGK",
         "Conze–Viswanathan + BGK",
+        "Goldman–Sosin–Gatto",
+        "Conze–Viswanathan",
         "Margrabe",
         "Stulz",
         "Rubinstein forward start",
@@ -40,6 +42,14 @@ fn every_validation_case_is_within_four_standard_errors() {
         assert!(names.contains(&needed), "no {needed} case");
     }
     assert_eq!(names.iter().filter(|n| **n == "Reiner–Rubinstein").count(), 8, "all eight barrier types");
+    // Again with Haug's rebate convention: a knock-out's rebate paid at the moment of the
+    // touch (`pay ... on first touch(...)`), a knock-in's at expiry.
+    let at_touch = names.iter().filter(|n| **n == "Reiner–Rubinstein, rebate at the touch").count();
+    assert_eq!(at_touch, 8, "all eight barrier types with the rebate at the touch");
+    // Continuous lookbacks written with `highest`/`lowest` over a window: floating and
+    // fixed strike, call and put.
+    assert_eq!(names.iter().filter(|n| **n == "Goldman–Sosin–Gatto").count(), 2);
+    assert_eq!(names.iter().filter(|n| **n == "Conze–Viswanathan").count(), 2);
 }
 
 #[test]

@@ -127,6 +127,27 @@ fn catalogue_products_with_closed_forms_agree_with_them() {
     assert_within("barrier reverse convertible", p, se, reference, 3.5);
 }
 
+/// The knock-out note with its rebate paid at the touch, against Reiner–Rubinstein
+/// (Haug, The Complete Guide to Option Pricing Formulas, ch. 4): the quarterly windows
+/// `from previous(t) to t` cover the whole life, so the note is continuously monitored:
+/// 120% of an up-and-out call struck at 100% (barrier 140%, no rebate), plus 106% paid at
+/// the touch (the rebate term of an up-and-out call struck above its barrier), plus 100% at
+/// maturity if never touched (the rebate term of an up-and-in struck above its barrier).
+#[test]
+fn the_knock_out_note_is_worth_its_reiner_rubinstein_parts() {
+    let t = years("2028-06-01");
+    let b = RATE - QMEN.q;
+    let barrier =
+        |kind, k: f64, rebate: f64| standard_barrier(OptionKind::Call, kind, 1.0, k, 1.4, rebate, t, RATE, b, QMEN.vol);
+    let reference = NOTIONAL
+        * (1.2 * barrier(BarrierKind::UpAndOut, 1.0, 0.0)
+            + barrier(BarrierKind::UpAndOut, 1e6, 1.06)
+            + barrier(BarrierKind::UpAndIn, 1e6, 1.0));
+    let v = price("payoffs/knock_out_note.payoff", &["--paths", "200000", "--seed", "3"]);
+    let (p, se) = price_se(&v);
+    assert_within("knock-out note with the rebate at the touch", p, se, reference, 4.0);
+}
+
 /// Every catalogue file parses, checks and prices; each price lies in a band that follows
 /// from the term sheet alone.
 #[test]
@@ -173,6 +194,12 @@ fn every_catalogue_file_prices_inside_its_sanity_band() {
             0.0,
             NOTIONAL,
             "max(x − 1, 0) ≤ x = final / reset level, whose discounted expectation is below 1",
+        ),
+        (
+            "knock_out_note",
+            NOTIONAL * df(years("2028-06-01")),
+            NOTIONAL * 1.06 + 1.2 * call(years("2028-06-01"), &QMEN),
+            "at least 100% by maturity; at most 106% now or 100% plus 120% of the call",
         ),
         (
             "lookback",

@@ -2,7 +2,9 @@
 //!
 //! A generator writes random payoff files from the whole language (header, parameters,
 //! schedules, state, `for each` / `at` blocks, `let`, `if`, `pay ... on`, `end`, `if`
-//! expressions, functions, aggregates, `perf`/`level`/`initial`, `touched` windows), with
+//! expressions, functions, aggregates (`geometric_average` too), `perf`/`level`/`initial`
+//! (also at `previous(t)`), `touched` windows and continuous `highest`/`lowest` from
+//! `start` or `previous(t)`), with
 //! small schedules so that a case prices in milliseconds on a few hundred paths. The
 //! properties:
 //!
@@ -533,6 +535,7 @@ impl Gen<'_, '_> {
                 let mut names = vec!["sum", "highest", "lowest", "count"];
                 if self.opt.averages {
                     names.push("average");
+                    names.push("geometric_average");
                 }
                 let name = names[self.tape.pick(names.len())];
                 self.aggregate(scope, name, d)
@@ -592,8 +595,17 @@ impl Gen<'_, '_> {
             5 => raw(format!("level({x})")),
             6 => raw(format!("initial({x})")),
             7 if dated => raw(format!("perf({x}, {})", scope.date)),
+            8 if dated && scope.each.is_some() && !self.in_aggregate && self.tape.chance(30) => {
+                raw(format!("perf({x}, previous(t))"))
+            }
             8 if dated => raw(format!("perf({x}, start)")),
             9 if dated && scope.each.is_some() => raw("position(t)"),
+            10 if dated && self.tape.chance(40) => {
+                let extreme = self.tape.one(&["highest", "lowest"]);
+                let from = if scope.each.is_some() && self.tape.chance(50) { "previous(t)" } else { "start" };
+                let watched = self.tape.one(&["perf", "level"]);
+                raw(format!("{extreme}({watched}({x}) from {from} to {})", scope.date))
+            }
             10 if dated => raw(format!("years({})", scope.date)),
             11 => raw("notional"),
             _ => raw(self.tape.one(NUM_LITERALS)),
@@ -658,7 +670,11 @@ impl Gen<'_, '_> {
             5 if dated => {
                 let op = self.tape.one(&["<=", ">=", "<", ">"]);
                 let level = self.tape.one(&["80%", "120%", "95%"]);
-                let from = self.tape.one(&["start", "2026-12-15"]);
+                let from = match self.tape.one(&["start", "2026-12-15", "previous"]) {
+                    "previous" if scope.each.is_some() => "previous(t)",
+                    "previous" => "start",
+                    from => from,
+                };
                 raw(format!("touched(perf({x}) {op} {level} from {from} to {})", scope.date))
             }
             6 if dated => {

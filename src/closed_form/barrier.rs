@@ -283,6 +283,40 @@ mod tests {
     }
 
     #[test]
+    fn the_rebate_paid_at_the_touch_alone_matches_haugs_cells_where_nothing_else_is_left() {
+        // In Haug's table (from memory, as above) an up-and-out call struck above its
+        // barrier and a down-and-out put struck below it are worth their rebate only, paid
+        // at the touch: the Reiner–Rubinstein term F. `pay ... on first touch(...)` is
+        // checked against these in `pathfold check`.
+        for (kind, barrier, k, h, sigma, expected) in [
+            (Call, UpAndOut, 110.0, 105.0, 0.25, 2.3453),
+            (Call, UpAndOut, 110.0, 105.0, 0.30, 2.4315),
+            (Put, DownAndOut, 90.0, 95.0, 0.25, 2.2798),
+            (Put, DownAndOut, 90.0, 95.0, 0.30, 2.4170),
+        ] {
+            let with_rebate = standard_barrier(kind, barrier, 100.0, k, h, 3.0, 0.5, 0.08, 0.04, sigma);
+            let without = standard_barrier(kind, barrier, 100.0, k, h, 0.0, 0.5, 0.08, 0.04, sigma);
+            assert!((with_rebate - expected).abs() <= 0.5e-4, "{kind:?} {barrier:?} sigma={sigma}: {with_rebate}");
+            assert!(without.abs() < 1e-12, "nothing but the rebate is left: {without}");
+            // Paid at expiry instead it is worth less: the touch comes before expiry.
+            let late = standard_barrier_with_rebate(
+                kind,
+                barrier,
+                100.0,
+                k,
+                h,
+                3.0,
+                RebateTiming::AtExpiry,
+                0.5,
+                0.08,
+                0.04,
+                sigma,
+            );
+            assert!(late < with_rebate, "{late} vs {with_rebate}");
+        }
+    }
+
+    #[test]
     fn haug_table_rows_with_spot_on_the_barrier() {
         // Same table, rows with H = S = 100 (from memory): the down-and-in
         // options are already knocked in, so they are the vanillas, and the

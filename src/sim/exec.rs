@@ -18,6 +18,7 @@ pub struct Workspace {
     paths: PathBuffers,
     regs: Vec<Vec<f64>>,
     monitors: Vec<Vec<f64>>,
+    path_values: Vec<Vec<f64>>,
     pv: Vec<f64>,
     /// Scratch lanes: one payment's amounts, or the lanes one `end` closes.
     paid: Vec<f64>,
@@ -33,11 +34,12 @@ enum Arg<'a> {
 
 impl Workspace {
     pub fn new(p: &Program, model: &Model, controls: &Controls) -> Self {
-        let keep_logs = !p.monitors.is_empty() || controls.needs_logs();
+        let keep_logs = !p.monitors.is_empty() || !p.path_values.is_empty() || controls.needs_logs();
         Workspace {
             paths: PathBuffers::new(p, model, keep_logs, BLOCK),
             regs: vec![vec![0.0; BLOCK]; p.registers],
             monitors: vec![vec![0.0; BLOCK]; p.monitors.len()],
+            path_values: vec![vec![0.0; BLOCK]; p.path_values.len()],
             pv: vec![0.0; BLOCK],
             paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
@@ -62,6 +64,10 @@ impl Workspace {
         let mut rng = block_rng(settings.seed, index);
         self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
         self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
+        if !p.path_values.is_empty() {
+            let antithetic = settings.antithetic;
+            self.paths.path_values(p, model, &mut rng, lanes, antithetic, BLOCK, &mut self.path_values);
+        }
         // Only the per-date tallies are allocated here; the moments are built below
         // (moments of no dimension allocate nothing).
         let mut result = BlockResult {
@@ -249,6 +255,7 @@ impl Workspace {
             }
             Src::Const(x) => Arg::Same(x),
             Src::Monitor(m) => Arg::Lanes(&self.monitors[m as usize][..lanes]),
+            Src::Path(v) => Arg::Lanes(&self.path_values[v as usize][..lanes]),
         }
     }
 }

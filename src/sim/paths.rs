@@ -7,7 +7,7 @@ use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
 use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
-use crate::compile::Program;
+use crate::compile::{PathValue, Program};
 use crate::typing::Direction;
 
 /// Per-step constants of the risk-neutral dynamics
@@ -41,6 +41,13 @@ impl Model {
             }
         }
         let mut watched: Vec<usize> = p.monitors.iter().map(|m| m.asset).collect();
+        // A running extreme reads the same bridge uniforms as a barrier on its asset, so
+        // `highest(perf(X) from a to b) >= H` and `touched(perf(X) >= H from a to b)` agree
+        // path by path.
+        watched.extend(p.path_values.iter().filter_map(|v| match v {
+            PathValue::Extreme { asset, .. } => Some(*asset),
+            PathValue::HitDiscount { .. } => None,
+        }));
         watched.sort_unstable();
         watched.dedup();
         let cholesky = if p.cholesky.is_empty() { identity(p.assets.len()) } else { p.cholesky.clone() };
@@ -163,6 +170,8 @@ pub struct PathBuffers {
     z: Vec<f64>,
     /// One lane-row of the correlation product.
     w: Vec<f64>,
+    /// The draws of one first-passage time per lane: a normal, then a uniform.
+    hit_draws: Vec<f64>,
     /// Current log levels `[asset · BLOCK + lane]`.
     x: Vec<f64>,
     keep_logs: bool,
@@ -177,6 +186,7 @@ impl PathBuffers {
             uniforms: vec![0.0; model.watched.len() * p.grid.len() * block],
             z: vec![0.0; p.assets.len() * block],
             w: vec![0.0; block],
+            hit_draws: if p.path_values.is_empty() { Vec::new() } else { vec![0.0; 2 * block] },
             x: vec![0.0; p.assets.len() * block],
             keep_logs,
         }
@@ -308,6 +318,143 @@ impl PathBuffers {
             }
         }
     }
+}
+
+impl PathBuffers {
+    /// Computes the values read off the paths between grid dates ([`PathValue`]) into
+    /// `out`, one buffer per value. Called after [`PathBuffers::generate`] with the same
+    /// RNG. If there are hit times, one normal and one uniform are drawn per drawn lane
+    /// (mirror lanes reuse their partner's), after every draw of the paths, so a program
+    /// without them draws exactly what it drew before they existed. All hit times of a
+    /// path use that pair in the step where their barrier is first crossed: a window cut
+    /// into pieces (`from previous(t) to t`) then finds the same time as the whole
+    /// window, and each time has its exact law (two barriers crossed within the same step
+    /// get times drawn from the same pair, so their joint law within that step is not the
+    /// bridge's).
+    #[allow(clippy::too_many_arguments)]
+    pub fn path_values(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        out: &mut [Vec<f64>],
+    ) {
+        let na = p.assets.len();
+        let steps = p.grid.len();
+        let drawn = if antithetic { lanes / 2 } else { lanes };
+        if p.path_values.iter().any(|v| matches!(v, PathValue::HitDiscount { .. })) {
+            for lane in 0..drawn {
+                self.hit_draws[2 * lane] = rng.sample(StandardNormal);
+                self.hit_draws[2 * lane + 1] = rng.sample(Open01);
+            }
+        }
+        for (value, out) in p.path_values.iter().zip(out.iter_mut()) {
+            match *value {
+                PathValue::HitDiscount { monitor } => {
+                    let m = &p.monitors[monitor];
+                    let a = m.asset;
+                    let slot = model.watched.iter().position(|&w| w == a).expect("monitored assets are watched");
+                    let vol = p.assets[a].volatility;
+                    let var = vol * vol;
+                    let start = (p.start * na + a) * block;
+                    let down = m.direction == Direction::Down;
+                    for lane in 0..lanes {
+                        let partner = if lane >= drawn { lane - drawn } else { lane };
+                        let (normal, uniform) = (self.hit_draws[2 * partner], self.hit_draws[2 * partner + 1]);
+                        // The same decisions as `monitors`, step by step, up to the first crossing.
+                        let h = if m.relative { (m.level * self.levels[start + lane]).ln() } else { m.level.ln() };
+                        let beyond = |x: f64| if down { x <= h } else { x >= h };
+                        let at = |k: usize| self.logs[(k * na + a) * block + lane];
+                        let mut time = if beyond(at(m.from)) { Some(p.grid[m.from]) } else { None };
+                        let mut k = m.from + 1;
+                        while time.is_none() && k <= m.to {
+                            let (x0, x1) = (at(k - 1), at(k));
+                            let dt = p.grid[k] - p.grid[k - 1];
+                            let hit = beyond(x1) || {
+                                let crossing = (-2.0 * (x0 - h) * (x1 - h) / (var * dt)).exp();
+                                self.uniforms[(slot * steps + k) * block + lane] < crossing
+                            };
+                            if hit {
+                                let scale = vol * dt.sqrt();
+                                let (gap, moved) = if down { (x0 - h, x0 - x1) } else { (h - x0, x1 - x0) };
+                                let fraction = bridge_first_passage(gap / scale, moved / scale, normal, uniform);
+                                time = Some(p.grid[k - 1] + dt * fraction);
+                            }
+                            k += 1;
+                        }
+                        out[lane] = time.map_or(0.0, |t| (-p.rate * t).exp());
+                    }
+                }
+                PathValue::Extreme { asset: a, up, from, to } => {
+                    let slot = model.watched.iter().position(|&w| w == a).expect("assets with extremes are watched");
+                    let var = p.assets[a].volatility * p.assets[a].volatility;
+                    for (lane, o) in out[..lanes].iter_mut().enumerate() {
+                        let at = |k: usize| self.logs[(k * na + a) * block + lane];
+                        let mut extreme = at(from);
+                        for k in from + 1..=to {
+                            let (x0, x1) = (at(k - 1), at(k));
+                            let dt = p.grid[k] - p.grid[k - 1];
+                            let u = self.uniforms[(slot * steps + k) * block + lane];
+                            let step = bridge_extreme(x0, x1, var * dt, u, up);
+                            extreme = if up { extreme.max(step) } else { extreme.min(step) };
+                        }
+                        *o = extreme.exp();
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The maximum (`up`) or minimum of a Brownian bridge from `x0` to `x1` with variance
+/// `variance` over the step, drawn by inversion from the uniform `u` in (0, 1): the bridge
+/// exceeds `m ≥ max(x0, x1)` with probability `exp(−2(m − x0)(m − x1) / variance)`, so
+/// `m = (x0 + x1 + √((x1 − x0)² − 2·variance·ln u)) / 2` (reflected for the minimum).
+/// With the same `u`, `m ≥ h` exactly when a barrier at `h` is crossed in `monitors`.
+pub fn bridge_extreme(x0: f64, x1: f64, variance: f64, u: f64, up: bool) -> f64 {
+    let d = x1 - x0;
+    let spread = (d * d - 2.0 * variance * u.ln()).sqrt();
+    if up {
+        0.5 * (x0 + x1 + spread)
+    } else {
+        0.5 * (x0 + x1 - spread)
+    }
+}
+
+/// The time of the first passage at a barrier of a Brownian bridge over a step, as a
+/// fraction of the step, given that it crosses. In units of the step's standard deviation
+/// (σ√Δ): the barrier lies `gap > 0` away from the start and the bridge ends `moved`
+/// towards it. Writing the bridge as `X(s) = s·y + (1 − s)·W(s / (1 − s))` on [0, 1], it
+/// reaches the barrier when the Brownian motion W reaches the line `gap + (gap − y)·u` at
+/// `u = s / (1 − s)`: the first passage of a Brownian motion with drift `y − gap` at `gap`,
+/// which (conditioned on happening, for a negative drift) is inverse Gaussian with mean
+/// `gap / |gap − y|` and shape `gap²`. It is drawn from one normal and one uniform by
+/// Michael, Schucany and Haas (1976), and mapped back by `s = u / (1 + u)`.
+pub fn bridge_first_passage(gap: f64, moved: f64, normal: f64, uniform: f64) -> f64 {
+    if gap <= 0.0 {
+        return 0.0;
+    }
+    let drift = (gap - moved).abs();
+    let shape = gap * gap;
+    let w = normal * normal;
+    let u = if drift == 0.0 {
+        // No drift: the Lévy law, the limit of the inverse Gaussian as its mean grows.
+        shape / w
+    } else {
+        let mean = gap / drift;
+        let c = mean * w / (2.0 * shape);
+        // The smaller root of Michael–Schucany–Haas, in a form without cancellation.
+        let x = mean / (1.0 + c + (c * c + 2.0 * c).sqrt());
+        if uniform <= mean / (mean + x) {
+            x
+        } else {
+            mean * mean / x
+        }
+    };
+    1.0 / (1.0 + 1.0 / u)
 }
 
 /// What a control variate reads off a path.
@@ -503,6 +650,71 @@ mod tests {
         let mut scalar = vec![0.0; xs.len()];
         exp_into_generic(&mut scalar, &xs);
         assert!(out.iter().zip(&scalar).all(|(a, b)| a.to_bits() == b.to_bits()), "vector and scalar builds differ");
+    }
+
+    /// The inverse Gaussian CDF with mean `m` and shape `l` (Chhikara and Folks, 1989).
+    fn inverse_gaussian_cdf(x: f64, m: f64, l: f64) -> f64 {
+        use crate::closed_form::norm_cdf;
+        let r = (l / x).sqrt();
+        norm_cdf(r * (x / m - 1.0)) + (2.0 * l / m).exp() * norm_cdf(-r * (x / m + 1.0))
+    }
+
+    #[test]
+    fn first_passage_fractions_follow_the_inverse_gaussian_law_they_map() {
+        // For each case, the fraction s of the step is at most f exactly when the
+        // inverse-Gaussian time u = s / (1 − s) is at most f / (1 − f): the empirical
+        // distribution of 40,000 draws against that CDF (Kolmogorov distance; its 99.9%
+        // quantile for 40,000 draws is about 1.95 / √40,000 ≈ 0.0098).
+        let mut rng = Pcg64::new(0xcafe, 0xf00d);
+        for (gap, moved) in [(0.3, -0.5), (1.2, 0.4), (0.5, 0.9), (0.8, 0.8)] {
+            let n = 40_000;
+            let mut fractions: Vec<f64> = (0..n)
+                .map(|_| {
+                    let z: f64 = rng.sample(StandardNormal);
+                    let u: f64 = rng.sample(Open01);
+                    bridge_first_passage(gap, moved, z, u)
+                })
+                .collect();
+            fractions.sort_by(f64::total_cmp);
+            let (drift, shape) = (f64::abs(gap - moved), gap * gap);
+            let mut worst: f64 = 0.0;
+            for (i, f) in fractions.iter().enumerate().step_by(97) {
+                assert!((0.0..=1.0).contains(f), "a fraction of the step: {f}");
+                let x = f / (1.0 - f);
+                let cdf = if drift == 0.0 {
+                    // Lévy: P(shape / Z² ≤ x) = 2(1 − Φ(√(shape / x))).
+                    2.0 * (1.0 - crate::closed_form::norm_cdf((shape / x).sqrt()))
+                } else {
+                    inverse_gaussian_cdf(x, gap / drift, shape)
+                };
+                worst = worst.max((cdf - (i as f64 + 0.5) / f64::from(n)).abs());
+            }
+            assert!(worst < 0.0098, "gap {gap}, moved {moved}: Kolmogorov distance {worst}");
+        }
+    }
+
+    #[test]
+    fn the_bridge_crossing_probability_is_the_chance_the_drifted_motion_reaches_its_line() {
+        // The first-passage law above rests on writing the bridge as a Brownian motion
+        // reaching a line; that motion reaches it with probability exp(2·drift·gap), which
+        // must be the bridge crossing probability exp(−2·gap·(gap − moved)) used by
+        // `monitors` (in units of σ√Δ).
+        for (gap, moved) in [(0.3_f64, -0.5_f64), (1.2, 0.4), (2.0, 1.9)] {
+            let drift = moved - gap;
+            let motion = (2.0 * drift * gap).exp();
+            let (x0, x1, h): (f64, f64, f64) = (0.0, moved, gap);
+            let bridge = (-2.0 * (x0 - h) * (x1 - h)).exp();
+            assert!((motion - bridge).abs() < 1e-14, "{motion} vs {bridge}");
+        }
+        // And the step's maximum is at or above a level exactly when that crossing happens
+        // for the same uniform.
+        for u in [0.01_f64, 0.3, 0.7, 0.99] {
+            let m = bridge_extreme(0.0, 0.2, 1.0, u, true);
+            let crossing = (-2.0 * (0.0 - m) * (0.2 - m)).exp();
+            assert!((crossing - u).abs() < 1e-12, "u {u}: maximum {m} is crossed with probability {crossing}");
+            let low = bridge_extreme(0.0, 0.2, 1.0, u, false);
+            assert!((-2.0 * (0.0 - low) * (0.2 - low)).exp() - u < 1e-12);
+        }
     }
 
     #[test]
