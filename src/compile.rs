@@ -1514,6 +1514,8 @@ fn drop_needless_checks(ops: &mut [Op], registers: usize, states: &[f64]) {
         Src::Reg(r) => number[r as usize],
         Src::Const(x) => !x.is_nan(),
         Src::Level(_) | Src::Monitor(_) => true,
+        // Drawn between grid dates from formulas with logs and square roots: checked.
+        Src::Path(_) => false,
     };
     for op in ops.iter_mut() {
         let (dst, keeps) = match *op {
