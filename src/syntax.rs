@@ -108,6 +108,30 @@ pub enum Stmt {
     Pay { amount: Expr, on: Option<Expr>, span: Span },
     /// `end`: the product ends on this path; nothing later happens.
     End(Span),
+    /// `holder may end for amount` / `issuer may end for amount using x, y`: on this date
+    /// the party may end the product against `amount`, paid on the date; priced by
+    /// least-squares regression on `using` (default: every underlying's `perf` and every
+    /// state).
+    Choice { party: Party, amount: Expr, using: Vec<Expr>, span: Span },
+}
+
+/// Who holds an early-exercise right.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Party {
+    /// `holder may end ...`: the holder ends the product when that is worth more to them.
+    Holder,
+    /// `issuer may end ...`: the issuer ends the product when that costs them less.
+    Issuer,
+}
+
+impl Party {
+    /// The word the payoff file uses.
+    pub fn word(self) -> &'static str {
+        match self {
+            Party::Holder => "holder",
+            Party::Issuer => "issuer",
+        }
+    }
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -628,6 +652,13 @@ impl Lowering {
                 Stmt::Pay { amount, on, span }
             }
             Rule::end_stmt => Stmt::End(span),
+            Rule::choice_stmt => {
+                let mut inner = inner.filter(|p| !matches!(p.as_rule(), Rule::kw_may | Rule::kw_using));
+                let party = if inner.next().unwrap().as_str() == "holder" { Party::Holder } else { Party::Issuer };
+                let amount = self.expr(inner.next().unwrap());
+                let using = inner.map(|p| self.expr(p)).collect();
+                Stmt::Choice { party, amount, using, span }
+            }
             other => unreachable!("grammar yields no statement {other:?}"),
         }
     }
@@ -1049,6 +1080,7 @@ fn describe(rule: Rule) -> Option<String> {
         Rule::let_stmt | Rule::if_stmt | Rule::pay_stmt | Rule::end_stmt | Rule::assign_stmt => {
             "a statement (let, if, pay, end, or `name = value`)"
         }
+        Rule::choice_stmt => "a statement (let, if, pay, end, `holder may end for ...`, or `name = value`)",
         Rule::or | Rule::and | Rule::le | Rule::ge | Rule::ne | Rule::eq | Rule::lt | Rule::gt
         | Rule::add | Rule::sub | Rule::mul | Rule::div => "an operator",
         Rule::number | Rule::percent => "a number",
@@ -1113,6 +1145,22 @@ mod tests {
         assert_eq!(body.len(), 3);
         assert!(matches!(body[1], Stmt::Assign(..)));
         assert!(matches!(body[2], Stmt::End(_)));
+    }
+
+    #[test]
+    fn early_exercise_statements() {
+        let file = parse(
+            "for each t in q {\n holder may end for max(40 - level(P), 0)\n issuer may end for notional using perf(P), n\n issuer = 1\n}",
+        )
+        .unwrap();
+        let Item::Each { body, .. } = &file.items[0] else { panic!() };
+        let Stmt::Choice { party: Party::Holder, amount, using, .. } = &body[0] else { panic!("{:?}", body[0]) };
+        assert_eq!((show(amount), using.len()), ("(max (- 40 (level P)) 0)".to_string(), 0));
+        let Stmt::Choice { party: Party::Issuer, amount, using, .. } = &body[1] else { panic!("{:?}", body[1]) };
+        assert_eq!(show(amount), "notional");
+        assert_eq!(using.iter().map(show).collect::<Vec<_>>(), ["(perf P)", "n"]);
+        // The party words are not reserved: a state may still be called `issuer`.
+        assert!(matches!(&body[2], Stmt::Assign(n, _) if n.text == "issuer"));
     }
 
     #[test]
