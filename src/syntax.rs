@@ -875,6 +875,26 @@ fn decimal(text: &str) -> f64 {
     text.replace('_', "").parse().expect("the grammar only passes decimal digits")
 }
 
+/// A `may end` statement that stops before its amount (`issuer may end at notional`):
+/// say what the statement's words are.
+fn choice_slip(source: &str, at: usize) -> Option<Diagnostic> {
+    let line_start = source[..at].rfind(['\n', '\r']).map_or(0, |i| i + 1);
+    let before: Vec<&str> = source[line_start..at].split_whitespace().collect();
+    let party = *before.first()?;
+    if !matches!(party, "issuer" | "holder") || before.len() < 2 || before[1] != "may" || before.len() > 3 {
+        return None;
+    }
+    let word: String = source[at..].chars().take_while(|c| !c.is_whitespace()).collect();
+    let end = at + word.len().max(1).min(source.len() - at);
+    Some(
+        Diagnostic::at(
+            Span::new(at, end),
+            format!("`{party} may` is followed by `end for` and the amount paid when the {party} ends the product"),
+        )
+        .with_fix(format!("write `{party} may end for AMOUNT`, for example `{party} may end for notional`")),
+    )
+}
+
 /// Turns pest's error into our diagnostic, with words a payoff writer would use.
 fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     use pest::error::{ErrorVariant, InputLocation};
@@ -882,7 +902,7 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
-    if let Some(d) = slip(source, at) {
+    if let Some(d) = slip(source, at).or_else(|| choice_slip(source, at)) {
         return d;
     }
     // A reserved word where a name belongs is the likeliest slip: say so plainly.

@@ -823,13 +823,12 @@ impl Checker {
         let vars: Vec<Option<TExpr>> = using.iter().map(|e| self.expr(e)).collect();
         let mut ok = true;
         match self.choice {
-            Some((first, at)) if first != party => {
+            Some((first, _)) if first != party => {
                 self.error(
                     span,
                     format!(
-                        "this product already gives the choice to end it to the {} (at byte {}); one product gives it to one party only",
-                        first.word(),
-                        at.start
+                        "this product already lets the {0} end it (`{0} may end` above); one product gives the choice to one party only",
+                        first.word()
                     ),
                     "price the issuer's call and the holder's put as two products, or keep one of the two",
                 );

@@ -15,8 +15,8 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::closed_form::{
-    self as cf, asset_or_nothing, bermudan_binomial, bgk_shifted_barrier, black_scholes, cash_or_nothing, fixed_lookback,
-    floating_lookback, forward_start, geometric_asian_discrete, lookback_discrete_shift, margrabe,
+    self as cf, asset_or_nothing, bermudan_binomial, bgk_shifted_barrier, black_scholes, cash_or_nothing,
+    fixed_lookback, floating_lookback, forward_start, geometric_asian_discrete, lookback_discrete_shift, margrabe,
     standard_barrier_with_rebate, two_asset_extreme, RebateTiming,
 };
 use crate::diagnostic::Diagnostic;

@@ -115,10 +115,8 @@ fn an_issuer_callable_note_is_worth_no_more_than_never_called_nor_called_at_once
     // allows 4 standard errors of the difference, bounded by the sum of the two errors.
     let callable = in_demo_folder("callable-note", &fixed_coupon_note("issuer may end for notional"));
     let never = in_demo_folder("never-called-note", &fixed_coupon_note("let nothing = 0"));
-    let first = in_demo_folder(
-        "first-called-note",
-        &fixed_coupon_note("if t == first(quarterly) {\n pay notional\n end\n }"),
-    );
+    let first =
+        in_demo_folder("first-called-note", &fixed_coupon_note("if t == first(quarterly) {\n pay notional\n end\n }"));
     let args = ["--paths", "50000", "--seed", "3"];
     let (c, c_se) = price_se(&price(callable.to_str().unwrap(), &args));
     let (n, n_se) = price_se(&price(never.to_str().unwrap(), &args));
