@@ -378,6 +378,11 @@ struct Now {
 
 const TIME_EPS: f64 = 1e-9;
 
+/// The most `may end` dates times grid dates: the fit of the exercise rule simulates its
+/// paths over the whole grid once per exercise date (a year of daily exercise, 252 × 253,
+/// is within; two years are not).
+pub const MAX_EXERCISE_WORK: usize = 250_000;
+
 /// The most dates one schedule may hold (the syntax already refuses more steps).
 pub use crate::syntax::MAX_SCHEDULE_DATES;
 
@@ -874,6 +879,20 @@ impl<'p> Compiler<'p> {
             vars.push((v, centre, scale));
         }
         let site = self.choices.len() as u32;
+        // Said once, at the first date past the limit.
+        let work = self.choices.len() * self.grid.len();
+        if work <= MAX_EXERCISE_WORK && work + self.grid.len() > MAX_EXERCISE_WORK {
+            self.error(
+                span,
+                format!(
+                    "early exercise on more than {} dates over a grid of {} dates: fitting its rule takes one pass over the fit paths per exercise date, and exercise dates times grid dates may be at most {},000",
+                    MAX_EXERCISE_WORK / self.grid.len(),
+                    self.grid.len(),
+                    MAX_EXERCISE_WORK / 1000
+                ),
+                "let the party end the product on fewer dates (weekly or monthly rather than daily)",
+            );
+        }
         self.choices.push(Choice {
             party,
             using: vars.iter().map(|(v, _, _)| v.src).collect(),
