@@ -229,7 +229,8 @@ impl Normal {
             for j in 0..k {
                 pivot -= l[k * m + j] * l[k * m + j];
             }
-            if !(pivot > 1e-10) {
+            // A NaN pivot (from overflowing sums) is left out too.
+            if pivot.is_nan() || pivot <= 1e-10 {
                 continue;
             }
             let root = pivot.sqrt();
