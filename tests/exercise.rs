@@ -207,3 +207,42 @@ fn the_callable_demo_is_worth_no_more_than_the_same_note_without_the_call() {
     let (n, n_se) = price_se(&price("payoffs/worst_of_autocall.payoff", &args));
     assert!(c <= n + 4.0 * (c_se + n_se), "callable {c} ± {c_se} above the plain note {n} ± {n_se}");
 }
+
+/// The demo autocallable with `statement` added on every quarterly date, after the
+/// coupon and the autocall.
+fn autocall_with(statement: &str) -> String {
+    let text = std::fs::read_to_string("payoffs/worst_of_autocall.payoff").unwrap();
+    let anchor = "    if t == last(quarterly) {";
+    assert!(text.contains(anchor));
+    text.replacen(anchor, &format!("    {statement}\n{anchor}"), 1)
+}
+
+#[test]
+fn a_right_never_worth_using_changes_nothing() {
+    // Equivalences: a holder's right to end the note for nothing is never in the money,
+    // and an issuer's right to call at a thousand times the notional always costs more
+    // than going on; either way no path ends early, and the price is the plain note's, bit
+    // for bit, on the same seed.
+    let args = ["--paths", "20000", "--seed", "4"];
+    let plain = price("payoffs/worst_of_autocall.payoff", &args);
+    for (tag, statement) in
+        [("worthless-put", "holder may end for 0"), ("dear-call", "issuer may end for notional * 1000")]
+    {
+        let s = Scratch::file(tag, "note.payoff", &autocall_with(statement));
+        std::fs::copy("payoffs/market.toml", s.join("market.toml")).unwrap();
+        let v = price(s.to_str().unwrap(), &args);
+        assert_eq!(price_se(&v), price_se(&plain), "{statement}");
+        assert!(v["early_exercise"].is_object(), "{statement}");
+    }
+}
+
+#[test]
+fn an_error_bounded_run_gives_the_bits_of_a_plain_run_of_its_paths() {
+    // The rule does not depend on the path count, so `--target-se` keeps its promise.
+    let v = price("payoffs/callable_autocall.payoff", &["--paths", "5000", "--target-se", "0.1%", "--seed", "6"]);
+    let paths = v["paths"].as_u64().unwrap();
+    assert!(paths > 5000, "the run added paths: {paths}");
+    let paths = paths.to_string();
+    let plain = price("payoffs/callable_autocall.payoff", &["--paths", &paths, "--seed", "6"]);
+    assert_eq!(price_se(&v), price_se(&plain));
+}
