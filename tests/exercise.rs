@@ -246,3 +246,28 @@ fn an_error_bounded_run_gives_the_bits_of_a_plain_run_of_its_paths() {
     let plain = price("payoffs/callable_autocall.payoff", &["--paths", &paths, "--seed", "6"]);
     assert_eq!(price_se(&v), price_se(&plain));
 }
+
+#[test]
+fn a_right_on_the_last_date_alone_is_the_european_option() {
+    // Equivalence: exercisable only at expiry, with nothing paid after, the holder takes
+    // the payment wherever it is positive, which is the European put written with `pay`,
+    // bit for bit on the same seed; and that is Black–Scholes (3.844 for Longstaff and
+    // Schwartz's put, from memory) within 4 standard errors.
+    let write = |statement: &str| {
+        format!(
+            "product \"put\"\ncurrency USD\nnotional 40\nunderlyings LSPUT\nmarket \"american_market.toml\"\nat 1y {{\n    {statement}\n}}\n"
+        )
+    };
+    let dir = Scratch::dir("last-date-right");
+    std::fs::copy("payoffs/validation/american_market.toml", dir.join("american_market.toml")).unwrap();
+    std::fs::write(dir.join("right.payoff"), write("holder may end for max(40 - level(LSPUT), 0)")).unwrap();
+    std::fs::write(dir.join("pay.payoff"), write("pay max(40 - level(LSPUT), 0)")).unwrap();
+    let args = ["--paths", "20000", "--seed", "8"];
+    let right = price(dir.join("right.payoff").to_str().unwrap(), &args);
+    let pay = price(dir.join("pay.payoff").to_str().unwrap(), &args);
+    assert_eq!(price_se(&right), price_se(&pay));
+    let (mc, se) = price_se(&right);
+    let bs = black_scholes(OptionKind::Put, 36.0, 40.0, 1.0, 0.06, 0.06, 0.2);
+    assert!((bs - 3.844).abs() < 5e-4);
+    assert_within("Black–Scholes put", mc, se, bs, 4.0);
+}
