@@ -271,3 +271,17 @@ fn a_right_on_the_last_date_alone_is_the_european_option() {
     assert!((bs - 3.844).abs() < 5e-4);
     assert_within("Black–Scholes put", mc, se, bs, 4.0);
 }
+
+#[test]
+fn sensitivities_of_a_bermudan_put_say_how_the_rule_was_fitted() {
+    // The holder's monthly put: delta negative, and the report notes the refit and the
+    // direction of the bias.
+    let file = in_validation_folder("bermudan-risk", "put.payoff", MONTHLY_PUT);
+    let (stdout, stderr, code) = common::run(&["risk", file.to_str().unwrap(), "--paths", "4000", "--format", "json"]);
+    assert_eq!(code, Some(0), "{stderr}");
+    let v: serde_json::Value = serde_json::from_str(&stdout).unwrap();
+    let notes: Vec<&str> = v["notes"].as_array().unwrap().iter().map(|n| n.as_str().unwrap()).collect();
+    assert!(notes.iter().any(|n| n.contains("holder may end, 12 dates") && n.contains("biased low")), "{notes:?}");
+    let delta = v["sensitivities"].as_array().unwrap().iter().find(|s| s["measure"] == "delta").unwrap();
+    assert!(delta["value"].as_f64().unwrap() < 0.0, "{delta}");
+}
