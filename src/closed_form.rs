@@ -23,6 +23,7 @@ mod asian;
 mod barrier;
 mod lookback;
 mod normal;
+mod tree;
 mod two_asset;
 mod vanilla;
 
@@ -36,6 +37,7 @@ pub use barrier::{
 };
 pub use lookback::{fixed_lookback, floating_lookback};
 pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf};
+pub use tree::{bermudan_binomial, binomial};
 pub use two_asset::{margrabe, two_asset_extreme};
 pub use vanilla::{asset_or_nothing, black_scholes, black_scholes_greeks, cash_or_nothing, forward_start, Greeks};
 

@@ -10,7 +10,7 @@
 use crate::date::Date;
 use crate::diagnostic::{Diagnostic, Span};
 use crate::market::Market;
-use crate::syntax::{Aggregate, BinaryOp, DateTerm, PeriodUnit, ScheduleKind, UnaryOp};
+use crate::syntax::{Aggregate, BinaryOp, DateTerm, Party, PeriodUnit, ScheduleKind, UnaryOp};
 use crate::typing::{self, DateRef, Direction, Func, Product, TExpr, TKind, TStmt, When};
 
 /// Where an operation reads a value for each path of a block.
@@ -93,6 +93,40 @@ pub enum Op {
     Pay { mask: u32, amount: Src, slot: u32, discount: f64, site: u32 },
     /// Ends the product on the paths where `mask` is set.
     End { mask: u32, slot: u32 },
+    /// `holder may end for amount` (early-exercise date `site` of [`Program::choices`]):
+    /// `dst` = 1 on the paths, among those where `mask` is set, on which the party ends the
+    /// product by its rule; a `Pay` of `amount` and an `End` on `dst` follow.
+    Choose { site: u32, mask: u32, amount: Src, discount: f64, dst: u32 },
+}
+
+/// One early-exercise date: a `may end` statement on one run date.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Choice {
+    pub party: Party,
+    /// The variables of the regression (`using`), read when the statement runs.
+    pub using: Vec<Src>,
+    /// Each variable enters the basis as `(x - centre) / scale`: a performance around 1,
+    /// a level around the spot, other numbers as they are.
+    pub centre: Vec<f64>,
+    pub scale: Vec<f64>,
+    /// The `may end` statement.
+    pub span: Span,
+    /// The date it runs on.
+    pub time: f64,
+    /// The exercise rule; compiled as [`Rule::Never`], fitted by `sim::exercise`.
+    pub rule: Rule,
+}
+
+/// What a `Choose` does on its paths.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Rule {
+    /// Never ends the product (the rule is not fitted yet).
+    Never,
+    /// Never ends the product, but keeps what the fit of this date needs.
+    Record,
+    /// Ends it where the stated payment beats the fitted value of going on: the
+    /// coefficients of the basis (`sim::rule`).
+    Fitted(Vec<f64>),
 }
 
 /// The register that holds 1 on paths where the product is still alive.
@@ -190,6 +224,8 @@ pub struct Program {
     pub condition_sites: Vec<Span>,
     /// Averaging schedules: (asset, grid indices of the fixings), offered to the engine as geometric-average control variates.
     pub averages: Vec<(usize, Vec<usize>)>,
+    /// Early-exercise dates (`may end`), in the order they run; `Choose` refers to them.
+    pub choices: Vec<Choice>,
 }
 
 /// How a trade that is already struck is compiled, for sensitivities: what stays fixed
@@ -356,6 +392,7 @@ struct Compiler<'p> {
     pay_sites: Vec<Span>,
     condition_sites: Vec<Span>,
     averages: Vec<(usize, Vec<usize>)>,
+    choices: Vec<Choice>,
     /// Running accumulators of aggregates that read only levels, by (site, schedule):
     /// the register and how many fixings it already holds.
     running: std::collections::HashMap<(usize, usize, usize), (u32, usize)>,
@@ -379,6 +416,11 @@ struct Now {
 }
 
 const TIME_EPS: f64 = 1e-9;
+
+/// The most `may end` dates times grid dates: the fit of the exercise rule simulates its
+/// paths over the whole grid once per exercise date (a year of daily exercise, 252 × 253,
+/// is within; two years are not).
+pub const MAX_EXERCISE_WORK: usize = 250_000;
 
 /// The most dates one schedule may hold (the syntax already refuses more steps).
 pub use crate::syntax::MAX_SCHEDULE_DATES;
@@ -412,6 +454,7 @@ impl<'p> Compiler<'p> {
             pay_sites: Vec::new(),
             condition_sites: Vec::new(),
             averages: Vec::new(),
+            choices: Vec::new(),
             running: std::collections::HashMap::new(),
             aged: 0.0,
             initial_levels: None,
@@ -745,6 +788,7 @@ impl<'p> Compiler<'p> {
             pay_sites: self.pay_sites,
             condition_sites: self.condition_sites,
             averages: self.averages,
+            choices: self.choices,
         }
     }
 
@@ -902,7 +946,71 @@ impl<'p> Compiler<'p> {
                 self.free.push(hit);
                 false
             }
+            TStmt::Choice { party, amount, using, span } => self.choice(*party, amount, using, *span, now, mask),
         }
+    }
+
+    /// `holder may end for amount using x, y`: a `Choose` deciding, path by path, whether
+    /// the party ends the product here, then the payment and the end on those paths.
+    fn choice(&mut self, party: Party, amount: &TExpr, using: &[TExpr], span: Span, now: Now, mask: u32) -> bool {
+        let Some(a) = self.expr(amount, now) else { return false };
+        let mut vars = Vec::new();
+        for e in using {
+            let Some(v) = self.expr(e, now) else { return false };
+            let (centre, scale) = match e.kind {
+                TKind::Perf { .. } => (1.0, 1.0),
+                TKind::Level { asset, .. } => {
+                    let spot = self.assets.get(asset).map_or(1.0, |x| x.spot);
+                    (spot, spot)
+                }
+                _ => (0.0, 1.0),
+            };
+            vars.push((v, centre, scale));
+        }
+        let site = self.choices.len() as u32;
+        // Said once, at the first date past the limit.
+        let work = self.choices.len() * self.grid.len();
+        if work <= MAX_EXERCISE_WORK && work + self.grid.len() > MAX_EXERCISE_WORK {
+            self.error(
+                span,
+                format!(
+                    "early exercise on more than {} dates over a grid of {} dates: fitting its rule takes one pass over the fit paths per exercise date, and exercise dates times grid dates may be at most {},000",
+                    MAX_EXERCISE_WORK / self.grid.len(),
+                    self.grid.len(),
+                    MAX_EXERCISE_WORK / 1000
+                ),
+                "let the party end the product on fewer dates (weekly or monthly rather than daily)",
+            );
+        }
+        self.choices.push(Choice {
+            party,
+            using: vars.iter().map(|(v, _, _)| v.src).collect(),
+            centre: vars.iter().map(|x| x.1).collect(),
+            scale: vars.iter().map(|x| x.2).collect(),
+            span,
+            time: now.event.0,
+            rule: Rule::Never,
+        });
+        let dst = self.alloc();
+        let discount = (-self.rate * now.event.0).exp();
+        self.ops.push(Op::Choose { site, mask, amount: a.src, discount, dst });
+        let slot = slot_of(&mut self.payments, now.event);
+        let pay_site = self.pay_sites.len() as u32;
+        self.pay_sites.push(span);
+        self.ops.push(Op::Pay { mask: dst, amount: a.src, slot, discount, site: pay_site });
+        let end = slot_of(&mut self.events, now.event);
+        self.ops.push(Op::End { mask: dst, slot: end });
+        if mask != ALIVE {
+            // The statements after this one, under the same `if`, run only where the
+            // product goes on.
+            self.ops.push(Op::Acc { op: Acc::Min, dst: mask, src: Src::Reg(ALIVE) });
+        }
+        self.free.push(dst);
+        for (v, _, _) in vars {
+            self.release(v);
+        }
+        self.release(a);
+        true
     }
 
     fn push_bin(&mut self, op: Bin, a: V, b: V) -> V {
@@ -1465,6 +1573,12 @@ fn collect_stmt(s: &TStmt, times: &mut Vec<f64>, c: &mut Compiler<'_>) {
         TStmt::Pay { amount, .. } => collect_expr(amount, times, c),
         TStmt::PayAtHit { barrier, .. } => collect_expr(barrier, times, c),
         TStmt::End(_) => {}
+        TStmt::Choice { amount, using, .. } => {
+            collect_expr(amount, times, c);
+            for e in using {
+                collect_expr(e, times, c);
+            }
+        }
     }
 }
 
@@ -1535,6 +1649,8 @@ fn drop_needless_checks(ops: &mut [Op], registers: usize, states: &[f64]) {
             }
             Op::Copy { dst, src } => (dst, is_number(&number, src)),
             Op::Assign { dst, src, .. } => (dst, number[dst as usize] && is_number(&number, src)),
+            // The exercise decision writes 1 or 0.
+            Op::Choose { dst, .. } => (dst, true),
             Op::Pay { .. } | Op::End { .. } => continue,
         };
         number[dst as usize] = keeps;

@@ -284,6 +284,15 @@ pub fn risk_of(loaded: &Loaded, settings: &Settings, bumps: &Bumps) -> Result<Ri
         )),
         Err(e) => notes.push(format!("theta: {e}")),
     }
+    if let Some(x) = programs.first().and_then(crate::sim::exercise::Exercise::of) {
+        let fit = format!("{},{:03}", x.fit_paths / 1000, x.fit_paths % 1000);
+        notes.push(format!(
+            "early exercise ({} may end, {} dates): its rule is fitted again by least squares in every scenario, on the same {fit} fit paths; every price is biased {} by the rule's shortfall",
+            x.party.word(),
+            x.dates,
+            x.bias()
+        ));
+    }
     Ok(Risk {
         file: loaded.file.display().to_string(),
         market_file: loaded.market_path.display().to_string(),

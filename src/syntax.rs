@@ -111,6 +111,30 @@ pub enum Stmt {
     /// `pay amount on first touch(perf(X) >= 130% from start to t)`: paid at the moment
     /// the barrier is first touched in the window, discounted from that moment.
     PayAtHit { amount: Expr, condition: Box<Expr>, from: Box<Expr>, to: Box<Expr>, span: Span },
+    /// `holder may end for amount` / `issuer may end for amount using x, y`: on this date
+    /// the party may end the product against `amount`, paid on the date; priced by
+    /// least-squares regression on `using` (default: every underlying's `perf` and every
+    /// state).
+    Choice { party: Party, amount: Expr, using: Vec<Expr>, span: Span },
+}
+
+/// Who holds an early-exercise right.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Party {
+    /// `holder may end ...`: the holder ends the product when that is worth more to them.
+    Holder,
+    /// `issuer may end ...`: the issuer ends the product when that costs them less.
+    Issuer,
+}
+
+impl Party {
+    /// The word the payoff file uses.
+    pub fn word(self) -> &'static str {
+        match self {
+            Party::Holder => "holder",
+            Party::Issuer => "issuer",
+        }
+    }
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -644,6 +668,13 @@ impl Lowering {
                 let to = Box::new(self.expr(inner.next().unwrap()));
                 Stmt::PayAtHit { amount, condition, from, to, span }
             }
+            Rule::choice_stmt => {
+                let mut inner = inner.filter(|p| !matches!(p.as_rule(), Rule::kw_may | Rule::kw_using));
+                let party = if inner.next().unwrap().as_str() == "holder" { Party::Holder } else { Party::Issuer };
+                let amount = self.expr(inner.next().unwrap());
+                let using = inner.map(|p| self.expr(p)).collect();
+                Stmt::Choice { party, amount, using, span }
+            }
             other => unreachable!("grammar yields no statement {other:?}"),
         }
     }
@@ -876,6 +907,26 @@ fn decimal(text: &str) -> f64 {
     text.replace('_', "").parse().expect("the grammar only passes decimal digits")
 }
 
+/// A `may end` statement that stops before its amount (`issuer may end at notional`):
+/// say what the statement's words are.
+fn choice_slip(source: &str, at: usize) -> Option<Diagnostic> {
+    let line_start = source[..at].rfind(['\n', '\r']).map_or(0, |i| i + 1);
+    let before: Vec<&str> = source[line_start..at].split_whitespace().collect();
+    let party = *before.first()?;
+    if !matches!(party, "issuer" | "holder") || before.len() < 2 || before[1] != "may" || before.len() > 3 {
+        return None;
+    }
+    let word: String = source[at..].chars().take_while(|c| !c.is_whitespace()).collect();
+    let end = at + word.len().max(1).min(source.len() - at);
+    Some(
+        Diagnostic::at(
+            Span::new(at, end),
+            format!("`{party} may` is followed by `end for` and the amount paid when the {party} ends the product"),
+        )
+        .with_fix(format!("write `{party} may end for AMOUNT`, for example `{party} may end for notional`")),
+    )
+}
+
 /// Turns pest's error into our diagnostic, with words a payoff writer would use.
 fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
     use pest::error::{ErrorVariant, InputLocation};
@@ -883,7 +934,7 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
-    if let Some(d) = slip(source, at) {
+    if let Some(d) = slip(source, at).or_else(|| choice_slip(source, at)) {
         return d;
     }
     // A reserved word where a name belongs is the likeliest slip: say so plainly.
@@ -1115,6 +1166,7 @@ fn describe(rule: Rule) -> Option<String> {
         Rule::let_stmt | Rule::if_stmt | Rule::pay_stmt | Rule::pay_hit_stmt | Rule::end_stmt | Rule::assign_stmt => {
             "a statement (let, if, pay, end, or `name = value`)"
         }
+        Rule::choice_stmt => "a statement (let, if, pay, end, `holder may end for ...`, or `name = value`)",
         Rule::or | Rule::and | Rule::le | Rule::ge | Rule::ne | Rule::eq | Rule::lt | Rule::gt
         | Rule::add | Rule::sub | Rule::mul | Rule::div => "an operator",
         Rule::number | Rule::percent => "a number",
@@ -1206,6 +1258,22 @@ mod tests {
             ("5".into(), "(>= (perf Z) 1.3)".into(), "Start".into(), "Years(1.0)".into())
         );
         assert!(matches!(&body[1], Stmt::Pay { on: Some(_), .. }));
+    }
+
+    #[test]
+    fn early_exercise_statements() {
+        let file = parse(
+            "for each t in q {\n holder may end for max(40 - level(P), 0)\n issuer may end for notional using perf(P), n\n issuer = 1\n}",
+        )
+        .unwrap();
+        let Item::Each { body, .. } = &file.items[0] else { panic!() };
+        let Stmt::Choice { party: Party::Holder, amount, using, .. } = &body[0] else { panic!("{:?}", body[0]) };
+        assert_eq!((show(amount), using.len()), ("(max (- 40 (level P)) 0)".to_string(), 0));
+        let Stmt::Choice { party: Party::Issuer, amount, using, .. } = &body[1] else { panic!("{:?}", body[1]) };
+        assert_eq!(show(amount), "notional");
+        assert_eq!(using.iter().map(show).collect::<Vec<_>>(), ["(perf P)", "n"]);
+        // The party words are not reserved: a state may still be called `issuer`.
+        assert!(matches!(&body[2], Stmt::Assign(n, _) if n.text == "issuer"));
     }
 
     #[test]

@@ -9,7 +9,7 @@
 use std::collections::HashMap;
 
 use crate::diagnostic::{closest, Diagnostic, Span};
-use crate::syntax::{self, Aggregate, BinaryOp, DateTerm, ExprKind, Item, Name, Stmt, UnaryOp};
+use crate::syntax::{self, Aggregate, BinaryOp, DateTerm, ExprKind, Item, Name, Party, Stmt, UnaryOp};
 
 /// The type of an expression.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -154,7 +154,19 @@ pub enum TStmt {
         barrier: TExpr,
         span: Span,
     },
+    /// `holder may end for amount using x, y`: `using` filled in with the default
+    /// (every underlying's `perf`, every state) when the file gives none.
+    Choice {
+        party: Party,
+        amount: TExpr,
+        using: Vec<TExpr>,
+        span: Span,
+    },
 }
+
+/// The most variables an early-exercise rule regresses on (`using`): the basis grows with
+/// their square.
+pub const MAX_CHOICE_VARIABLES: usize = 6;
 
 /// When a block runs.
 #[derive(Clone, Debug, PartialEq)]
@@ -332,6 +344,8 @@ struct Checker {
     warnings: Vec<Diagnostic>,
     /// Let slots holding a performance, for the warning on `worst < 70`.
     performance_lets: std::collections::HashSet<usize>,
+    /// The party of the first `may end`, and where it was written.
+    choice: Option<(Party, Span)>,
 }
 
 impl Default for Product {
@@ -570,6 +584,7 @@ impl Checker {
                         Stmt::If { .. } => "`if`",
                         Stmt::Assign(..) => "an assignment",
                         Stmt::PayAtHit { .. } => "`pay ... on first touch(...)`",
+                        Stmt::Choice { .. } => "`may end`",
                     };
                     self.error(
                         *span,
@@ -830,7 +845,75 @@ impl Checker {
                 }
                 Some(TStmt::PayAtHit { amount: a, barrier: barrier?, span: *span })
             }
+            Stmt::Choice { party, amount, using, span } => self.choice(*party, amount, using, *span),
         }
+    }
+
+    /// `holder may end for amount using x, y`: one party per product (so the direction of
+    /// the regression's bias is known), a number to pay, and at most
+    /// [`MAX_CHOICE_VARIABLES`] numbers or flags to regress on.
+    fn choice(&mut self, party: Party, amount: &syntax::Expr, using: &[syntax::Expr], span: Span) -> Option<TStmt> {
+        let a = self.expr(amount);
+        let vars: Vec<Option<TExpr>> = using.iter().map(|e| self.expr(e)).collect();
+        let mut ok = true;
+        match self.choice {
+            Some((first, _)) if first != party => {
+                self.error(
+                    span,
+                    format!(
+                        "this product already lets the {0} end it (`{0} may end` above); one product gives the choice to one party only",
+                        first.word()
+                    ),
+                    "price the issuer's call and the holder's put as two products, or keep one of the two",
+                );
+                ok = false;
+            }
+            Some(_) => {}
+            None => self.choice = Some((party, span)),
+        }
+        let a = self.expect(a?, Ty::Number, "the amount of `may end`");
+        let mut vars_ok = Vec::new();
+        for v in vars {
+            let v = v?;
+            if v.ty == Ty::Date {
+                self.error(
+                    v.span,
+                    "a date cannot be regressed on: the exercise rule reads numbers or flags",
+                    "write a number that describes the path, such as `perf(X)` or a state",
+                );
+                ok = false;
+            }
+            vars_ok.push(v);
+        }
+        let vars_given = !using.is_empty();
+        let using = if !vars_given {
+            let perfs = (0..self.product.underlyings.len()).map(|asset| TExpr {
+                kind: TKind::Perf { asset, at: None },
+                ty: Ty::Number,
+                span,
+            });
+            let states = self.product.states.iter().enumerate().map(|(slot, st)| TExpr {
+                kind: TKind::State(slot),
+                ty: st.ty,
+                span,
+            });
+            perfs.chain(states).collect::<Vec<_>>()
+        } else {
+            vars_ok
+        };
+        if using.len() > MAX_CHOICE_VARIABLES {
+            let what = if vars_given { "" } else { " (by default every underlying's performance and every state)" };
+            self.error(
+                span,
+                format!(
+                    "the exercise rule would regress on {} variables{what}; at most {MAX_CHOICE_VARIABLES} are allowed",
+                    using.len()
+                ),
+                "name the ones that drive the decision with `using`, for example `using perf(ZPHX), missed`",
+            );
+            ok = false;
+        }
+        (ok && a.is_some()).then(|| TStmt::Choice { party, amount: a.unwrap(), using, span })
     }
 
     fn expect(&mut self, e: TExpr, ty: Ty, what: &str) -> Option<TExpr> {
@@ -1334,7 +1417,11 @@ fn holds_one_date(s: &syntax::Schedule) -> bool {
 fn stmt_span(stmt: &Stmt) -> Span {
     match stmt {
         Stmt::Let(n, e) | Stmt::Assign(n, e) => n.span.join(e.span),
-        Stmt::If { span, .. } | Stmt::Pay { span, .. } | Stmt::PayAtHit { span, .. } | Stmt::End(span) => *span,
+        Stmt::If { span, .. }
+        | Stmt::Pay { span, .. }
+        | Stmt::PayAtHit { span, .. }
+        | Stmt::End(span)
+        | Stmt::Choice { span, .. } => *span,
     }
 }
 

@@ -15,8 +15,8 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::closed_form::{
-    self as cf, asset_or_nothing, bgk_shifted_barrier, black_scholes, cash_or_nothing, fixed_lookback,
-    floating_lookback, forward_start, geometric_asian_discrete, lookback_discrete_shift, margrabe,
+    self as cf, asset_or_nothing, bermudan_binomial, bgk_shifted_barrier, black_scholes, cash_or_nothing,
+    fixed_lookback, floating_lookback, forward_start, geometric_asian_discrete, lookback_discrete_shift, margrabe,
     standard_barrier_with_rebate, two_asset_extreme, RebateTiming,
 };
 use crate::diagnostic::Diagnostic;
@@ -167,6 +167,18 @@ pub enum Reference {
         volatility2: f64,
         correlation: f64,
     },
+    /// Exercisable on `dates` equally spaced dates (the last at `years`): the CRR tree with
+    /// 80 steps between dates (its error there is below 0.0005 on a 36/40 put).
+    Bermudan {
+        kind: Kind,
+        spot: f64,
+        strike: f64,
+        years: f64,
+        rate: f64,
+        carry: f64,
+        volatility: f64,
+        dates: u32,
+    },
     /// Rubinstein: strike set at `moneyness` × the level at `reset_years`, expiring at `years`.
     ForwardStart {
         kind: Kind,
@@ -198,6 +210,7 @@ impl Reference {
             Reference::Exchange { .. } => "Margrabe",
             Reference::TwoAssetExtreme { .. } => "Stulz",
             Reference::ForwardStart { .. } => "Rubinstein forward start",
+            Reference::Bermudan { .. } => "CRR tree, Bermudan",
         }
     }
 
@@ -342,6 +355,9 @@ impl Reference {
             }
             Reference::ForwardStart { kind, spot, moneyness, reset_years, years, rate, carry, volatility } => {
                 forward_start(kind.into(), spot, moneyness, reset_years, years, rate, carry, volatility)
+            }
+            Reference::Bermudan { kind, spot, strike, years, rate, carry, volatility, dates } => {
+                bermudan_binomial(kind.into(), spot, strike, years, rate, carry, volatility, dates as usize, 80)
             }
         }
     }

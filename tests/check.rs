@@ -38,6 +38,7 @@ fn every_validation_case_is_within_four_standard_errors() {
         "Margrabe",
         "Stulz",
         "Rubinstein forward start",
+        "CRR tree, Bermudan",
     ] {
         assert!(names.contains(&needed), "no {needed} case");
     }

@@ -185,6 +185,12 @@ fn every_catalogue_file_prices_inside_its_sanity_band() {
             call(t1, &ZPHX) + call(t1, &VNTL),
             "max of the two calls ≤ best-of call ≤ their sum",
         ),
+        (
+            "callable_autocall",
+            0.0,
+            NOTIONAL * 1.27,
+            "pays at most 100% plus twelve 2.25% coupons; a call only ends it sooner, at 100%",
+        ),
         ("cliquet", 0.0, NOTIONAL * 0.15 * df(t3), "pays between 0 and the 15% global cap"),
         ("digital", 0.0, NOTIONAL * 0.10, "pays 0 or 10%"),
         ("european_call", 0.0, NOTIONAL * (-ZPHX.q * t1).exp(), "a call is worth less than the share"),

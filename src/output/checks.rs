@@ -119,7 +119,7 @@ pub fn write_checks(out: &mut dyn Write, outcomes: &[Outcome], format: Format) -
             writeln!(out)?;
             writeln!(
                 out,
-                "{passed} of {} cases within {} errors of their closed form; z divides the difference by the standard error and, for BGK-corrected references, their error budget in quadrature.",
+                "{passed} of {} cases within {} errors of their closed form; z divides the difference by the standard error and, for BGK-corrected references and the early-exercise case, their error budget in quadrature.",
                 outcomes.len(),
                 MAX_Z
             )?;

@@ -13,7 +13,7 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
     let (lo, hi) = p.interval();
     let params: serde_json::Map<String, serde_json::Value> =
         p.params.iter().map(|(n, v)| (n.clone(), json!(v))).collect();
-    json!({
+    let mut out = json!({
         "file": p.file,
         "market_file": p.market_file,
         "product": p.product,
@@ -39,7 +39,22 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
             "expected_pv": r.expected_pv,
         })).collect::<Vec<_>>(),
         "caution": CAUTION,
-    })
+    });
+    // Only a product with `may end` has the key, so other reports keep their shape.
+    if let (Some(x), Some(map)) = (&e.exercise, out.as_object_mut()) {
+        map.insert(
+            "early_exercise".into(),
+            json!({
+                "party": x.party.word(),
+                "dates": x.dates,
+                "method": "least-squares regression (Longstaff-Schwartz), rule fitted on paths independent of the pricing paths",
+                "fit_paths": x.fit_paths,
+                "basis_functions": x.basis,
+                "bias": x.bias(),
+            }),
+        );
+    }
+    out
 }
 
 /// The target of an error-bounded run, or null.
@@ -100,6 +115,21 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     match e.variance_reduction {
         Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
         None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
+    }
+    if let Some(x) = &e.exercise {
+        let dates = if x.dates == 1 { "1 date".to_string() } else { format!("{} dates", x.dates) };
+        writeln!(
+            out,
+            "  early exercise    {} may end the product on {dates}; rule fitted by least squares on {} other paths",
+            x.party.word(),
+            group(x.fit_paths as f64, 0)
+        )?;
+        writeln!(
+            out,
+            "                    (at most {} basis functions): the price is biased {} by the rule's shortfall",
+            x.basis,
+            x.bias()
+        )?;
     }
     if let Some(t) = &p.record.target {
         let verdict = if t.met { "met" } else { "NOT met" };

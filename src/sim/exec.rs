@@ -8,6 +8,7 @@
 use rand_pcg::Pcg64;
 
 use super::paths::{Controls, Model, PathBuffers};
+use super::rule;
 use super::stats::{sum, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
@@ -23,6 +24,8 @@ pub struct Workspace {
     /// Scratch lanes: one payment's amounts, or the lanes one `end` closes.
     paid: Vec<f64>,
     columns: Vec<Vec<f64>>,
+    /// The lanes an early-exercise decision reads (`may end`).
+    choice: rule::Lanes,
 }
 
 /// An operand resolved for one block: a lane slice or one value for all lanes.
@@ -43,12 +46,18 @@ impl Workspace {
             pv: vec![0.0; BLOCK],
             paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
+            choice: rule::Lanes::new(p.choices.iter().map(|c| c.using.len()).max().unwrap_or(0), BLOCK),
         }
     }
 
     /// The discounted payoff of each lane of the last block run, in lane order.
     pub fn payoffs(&self) -> &[f64] {
         &self.pv
+    }
+
+    /// What the last block's recorded early-exercise date kept ([`rule::Lanes`]).
+    pub fn recorded(&self) -> &rule::Lanes {
+        &self.choice
     }
 
     /// Simulates block `index` (of `lanes` paths) and returns its statistics.
@@ -119,6 +128,7 @@ impl Workspace {
             self.regs[1 + s][..lanes].fill(*init);
         }
         self.pv[..lanes].fill(0.0);
+        self.choice.recorded = false;
         for op in &p.ops {
             match *op {
                 Op::Bin { op, dst, a, b } => {
@@ -242,6 +252,19 @@ impl Workspace {
                     result.ended[slot as usize] += ended;
                     self.regs[ALIVE as usize] = alive;
                 }
+                Op::Choose { site, mask, amount, discount, dst } => {
+                    let choice = &p.choices[site as usize];
+                    let mut lanes_in = std::mem::take(&mut self.choice);
+                    for (row, &src) in lanes_in.vars.iter_mut().zip(&choice.using) {
+                        fill(&mut row[..lanes], self.arg(src, lanes));
+                    }
+                    fill(&mut lanes_in.amount[..lanes], self.arg(amount, lanes));
+                    let mut out = std::mem::take(&mut self.regs[dst as usize]);
+                    let (m, alive) = (&self.regs[mask as usize][..lanes], &self.regs[ALIVE as usize][..lanes]);
+                    rule::decide(choice, discount, m, alive, &self.pv[..lanes], &mut lanes_in, &mut out[..lanes]);
+                    self.regs[dst as usize] = out;
+                    self.choice = lanes_in;
+                }
             }
         }
     }
@@ -273,6 +296,14 @@ fn splitmix64(mut x: u64) -> u64 {
     x = (x ^ (x >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
     x = (x ^ (x >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
     x ^ (x >> 31)
+}
+
+/// `out = a`, lane by lane.
+fn fill(out: &mut [f64], a: Arg<'_>) {
+    match a {
+        Arg::Lanes(s) => out.copy_from_slice(s),
+        Arg::Same(x) => out.fill(x),
+    }
 }
 
 #[inline(always)]

@@ -65,6 +65,14 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
             "the scenarios do not share one simulation grid, so they cannot be priced on common paths",
         ));
     }
+    // Each scenario's early exercise is fitted on the same fit paths.
+    let fitted: Vec<Program>;
+    let programs = if programs.iter().any(|p| !p.choices.is_empty()) {
+        fitted = programs.iter().map(|p| super::exercise::prepare(p, settings).into_owned()).collect();
+        &fitted[..]
+    } else {
+        programs
+    };
     let k = programs.len();
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     let models: Vec<Model> = programs.iter().map(Model::new).collect();

@@ -9,10 +9,12 @@
 //! blocks in flight, not by the path count.
 
 pub mod exec;
+pub mod exercise;
 pub mod joint;
 pub mod partial;
 pub mod paths;
 pub mod regress;
+pub mod rule;
 pub mod stats;
 
 use std::time::{Duration, Instant};
@@ -134,13 +136,16 @@ pub struct Estimate {
     /// What the caller should be told about the estimate (controls left out, a fallback
     /// to the plain estimate); warnings, never errors.
     pub warnings: Vec<Diagnostic>,
+    /// The early exercise priced by regression (`may end`), if the product has any.
+    pub exercise: Option<exercise::Exercise>,
 }
 
 /// Prices a compiled program.
 pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diagnostic> {
     let started = Instant::now();
     settings.validate().map_err(Diagnostic::new)?;
-    let mut run = Run::new(program, settings);
+    let fitted = exercise::prepare(program, settings);
+    let mut run = Run::new(&fitted, settings);
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     run.extend_to(paths);
     run.finish(started)
@@ -164,7 +169,8 @@ pub fn simulate_to_target(
     let block = BLOCK as u64;
     let whole = |n: u64| n.div_ceil(block) * block;
     let max_paths = whole(max_paths);
-    let mut run = Run::new(program, settings);
+    let fitted = exercise::prepare(program, settings);
+    let mut run = Run::new(&fitted, settings);
     let mut paths = whole(settings.paths).min(max_paths);
     loop {
         run.extend_to(paths);
@@ -285,6 +291,7 @@ impl<'a> Run<'a> {
             profile,
             elapsed: started.elapsed(),
             warnings,
+            exercise: exercise::Exercise::of(program),
         })
     }
 }

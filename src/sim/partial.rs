@@ -75,6 +75,9 @@ impl Shape {
 /// Simulates the blocks `range` of the run `settings` describes, exactly as the full run
 /// does, and returns each block's result in block order.
 pub fn simulate_blocks(program: &Program, settings: &Settings, range: Range<u64>) -> Vec<BlockResult> {
+    // Every part fits the same rule of early exercise: the fit depends on the seed only.
+    let fitted = super::exercise::prepare(program, settings);
+    let program = &*fitted;
     let model = paths::Model::new(program);
     let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
     let paths = paths_run(settings);
