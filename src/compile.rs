@@ -148,7 +148,8 @@ pub struct Program {
     pub assets: Vec<AssetModel>,
     /// Cholesky factor of the assets' correlation matrix (lower triangular).
     pub cholesky: Vec<Vec<f64>>,
-    /// Simulation times in years; `grid[0] == 0` is the valuation date.
+    /// Times in years from the valuation date, `grid[past] == 0`; the times before it are
+    /// past dates (levels from the fixings), the times after it are simulated.
     pub grid: Vec<f64>,
     /// Grid index of the initial fixing (the `start` date).
     pub start: usize,
@@ -165,6 +166,20 @@ pub struct Program {
     pub pay_sites: Vec<Span>,
     /// Averaging schedules: (asset, grid indices of the fixings), offered to the engine as geometric-average control variates.
     pub averages: Vec<(usize, Vec<usize>)>,
+    /// The dynamics read at the grid times, when some input is not flat (curves, discrete
+    /// dividends, quanto); `None`: flat rate, volatilities and yields of `assets`.
+    pub curves: Option<crate::dynamics::GridCurves>,
+    /// Each underlying's dynamics, for reports.
+    pub dynamics: Vec<crate::dynamics::AssetDynamics>,
+    /// The correlation matrix of the assets as the market gives it, for reports.
+    pub correlations: Vec<Vec<f64>>,
+    /// The payoff currency's `∫₀ᵗ r`, for reports.
+    pub discounting: crate::curve::Integral,
+    /// The grid index of the valuation date; the indices before it are past dates.
+    pub past: usize,
+    /// The fixings at the past grid indices, `[k][asset]` (NaN where none is given: such
+    /// a level is never read).
+    pub past_levels: Vec<Vec<f64>>,
 }
 
 /// How a trade that is already struck is compiled, for sensitivities: what stays fixed
@@ -198,31 +213,23 @@ pub fn compile_struck(
     // Underlyings from the market.
     let mut assets = Vec::new();
     let market_name = market_file.display();
+    let mut dynamics = Vec::new();
     for u in &product.underlyings {
         match market.underlying(&u.text) {
-            // Until quanto pricing exists, a stock quoted in another currency would silently
-            // drift at the payoff currency's rate: refused.
-            Some(m) if !product.currency.is_empty() && m.currency != product.currency => {
-                errors.push(
-                    Diagnostic::at(
-                        u.span,
-                        format!(
-                            "`{}` is quoted in {} (market file {market_name}) but this payoff pays in {}; pathfold does not price payoffs in another currency than their underlyings (quanto)",
-                            u.text, m.currency, product.currency
-                        ),
-                    )
-                    .with_fix(format!(
-                        "write `currency {}` in the payoff, or use an underlying quoted in {}; if the market file is wrong, correct `currency` under [underlyings.{}]",
-                        m.currency, product.currency, u.text
-                    )),
-                );
-            }
-            Some(m) => assets.push(AssetModel {
-                name: u.text.clone(),
-                spot: m.spot,
-                volatility: m.volatility,
-                dividend_yield: m.dividend_yield,
-            }),
+            Some(m) => match crate::dynamics::asset(market, &u.text, m, &product.currency, u.span, market_file) {
+                Ok(d) => {
+                    assets.push(AssetModel {
+                        name: u.text.clone(),
+                        spot: m.spot,
+                        volatility: m.volatility.flat().unwrap_or_else(|| d.volatility(0.0)),
+                        dividend_yield: m.dividend_yield.flat().unwrap_or_else(|| d.dividend_yield(0.0)),
+                    });
+                    dynamics.push(d);
+                }
+                // A cash dividend as large as the forward: an error in the market file alone.
+                Err(e) if e.file.is_some() => return Err(vec![e]),
+                Err(e) => errors.push(e),
+            },
             None => {
                 let known: Vec<&str> = market.underlying_names().collect();
                 errors.push(Diagnostic::at(u.span, format!("the market has no underlying `{}`", u.text)).with_fix(
@@ -244,11 +251,22 @@ pub fn compile_struck(
     if !errors.is_empty() {
         return Err(errors);
     }
-    let rate = rate.unwrap_or(0.0);
+    let discounting = crate::dynamics::discounting(market, &product.currency);
+    // The flat rate, for the flat arithmetic; with a curve, its zero rate to one year
+    // (only reports read it then).
+    let rate = rate.and_then(crate::curve::Curve::flat).unwrap_or_else(|| discounting.average(1.0));
+    let flat = dynamics.iter().all(|d| d.flat);
     let names: Vec<&str> = assets.iter().map(|a| a.name.as_str()).collect();
     let cholesky = market.cholesky(&names, market_file).map_err(|e| vec![e])?;
+    let correlations: Vec<Vec<f64>> =
+        names.iter().map(|a| names.iter().map(|b| market.correlation(a, b).unwrap_or(0.0)).collect()).collect();
     let initial_levels = struck.initial_levels.clone().filter(|l| l.len() == assets.len());
     let mut c = Compiler::new(product, valuation, rate, assets);
+    c.fixings = market.fixings.as_ref();
+    c.discounting = discounting.clone();
+    if !flat {
+        c.knots = dynamics.iter().flat_map(|d| d.knots.iter().copied()).collect();
+    }
     c.aged = struck.aged_days as f64 / 365.0;
     c.initial_levels = initial_levels.clone();
     c.resolve_schedules();
@@ -263,8 +281,13 @@ pub fn compile_struck(
     }
     let mut program = c.finish();
     program.cholesky = cholesky;
+    if !flat {
+        program.curves = Some(crate::dynamics::GridCurves::new(&program.grid, &discounting, &dynamics));
+    }
+    program.dynamics = dynamics;
+    program.correlations = correlations;
     // A barrier relative to an initial level fixed today is a fixed level.
-    if let (Some(levels), 0) = (&initial_levels, program.start) {
+    if let (Some(levels), true) = (&initial_levels, program.start == program.past) {
         for m in program.monitors.iter_mut().filter(|m| m.relative) {
             m.level *= levels[m.asset];
             m.relative = false;
@@ -326,6 +349,14 @@ struct Compiler<'p> {
     aged: f64,
     /// Initial levels fixed for a start on the valuation date ([`Struck::initial_levels`]).
     initial_levels: Option<Vec<f64>>,
+    /// The payoff currency's `∫₀ᵗ r`, for discounting payments.
+    discounting: crate::curve::Integral,
+    /// Times where a coefficient of the dynamics changes; they join the grid.
+    knots: Vec<f64>,
+    /// The fixings of past dates, when the market names a fixings file.
+    fixings: Option<&'p crate::fixings::Fixings>,
+    /// The grid index of the valuation date: indices below it are past dates.
+    past: usize,
 }
 
 /// The date context an expression is compiled in.
@@ -371,6 +402,10 @@ impl<'p> Compiler<'p> {
             running: std::collections::HashMap::new(),
             aged: 0.0,
             initial_levels: None,
+            discounting: crate::curve::Curve::Flat(rate).at(valuation, crate::curve::Reading::Rate),
+            knots: Vec::new(),
+            fixings: None,
+            past: 0,
         }
     }
 
@@ -382,11 +417,12 @@ impl<'p> Compiler<'p> {
     fn term(&mut self, term: DateTerm, span: Span) -> Option<When_> {
         match term {
             DateTerm::Iso(d) => {
-                if d < self.valuation {
+                // Past dates are read from the fixings, when there are fixings.
+                if d < self.valuation && self.fixings.is_none() {
                     self.error(
                         span,
                         format!("{d} is before the valuation date {}", self.valuation),
-                        "pathfold prices from the valuation date on; use a later date or a market file with an earlier valuation date",
+                        "pathfold prices from the valuation date on; for a trade already running, name its fixings file in the market file (`fixings = \"fixings.csv\"`), else use a later date",
                     );
                     return None;
                 }
@@ -510,7 +546,7 @@ impl<'p> Compiler<'p> {
                     break;
                 }
             }
-            if let Some(first) = dates.first() {
+            if let Some(first) = dates.first().filter(|_| self.fixings.is_none()) {
                 if first.0 < -TIME_EPS {
                     self.error(
                         span,
@@ -599,10 +635,16 @@ impl<'p> Compiler<'p> {
                 collect_stmt(s, &mut times, self);
             }
         }
-        times.retain(|t| t.is_finite() && *t >= -TIME_EPS);
+        let seasoned = self.fixings.is_some();
+        times.retain(|t| t.is_finite() && (seasoned || *t >= -TIME_EPS));
+        // Where the dynamics change before the last date: steps with constant coefficients.
+        let last = times.iter().copied().fold(0.0, f64::max);
+        times.extend(self.knots.iter().copied().filter(|&t| t > TIME_EPS && t < last - TIME_EPS));
         times.sort_by(f64::total_cmp);
         times.dedup_by(|a, b| (*a - *b).abs() < TIME_EPS);
-        times[0] = 0.0;
+        // The valuation date (always there: the list starts with it); before it, past dates.
+        self.past = times.iter().position(|t| t.abs() < TIME_EPS).unwrap_or(0);
+        times[self.past] = 0.0;
         self.grid = times;
     }
 
@@ -675,6 +717,9 @@ impl<'p> Compiler<'p> {
     }
 
     fn finish(self) -> Program {
+        let past_levels = (0..self.past)
+            .map(|k| (0..self.assets.len()).map(|a| self.past_fixing(a, k).map_or(f64::NAN, |f| f.level)).collect())
+            .collect();
         Program {
             name: self.product.name.clone(),
             currency: self.product.currency.clone(),
@@ -693,6 +738,12 @@ impl<'p> Compiler<'p> {
             payments: self.payments,
             pay_sites: self.pay_sites,
             averages: self.averages,
+            curves: None,
+            dynamics: Vec::new(),
+            correlations: Vec::new(),
+            past: self.past,
+            past_levels,
+            discounting: self.discounting,
         }
     }
 
@@ -799,11 +850,16 @@ impl<'p> Compiler<'p> {
                     },
                     None => now.event,
                 };
+                if pay_at.0 < -TIME_EPS {
+                    // Paid before the valuation date: not part of what is left.
+                    return false;
+                }
                 let Some(v) = self.expr(amount, now) else { return false };
                 let slot = slot_of(&mut self.payments, pay_at);
                 let site = self.pay_sites.len() as u32;
                 self.pay_sites.push(*span);
-                let discount = (-self.rate * pay_at.0).exp();
+                // With a flat rate, `∫₀ᵗ r` is `r·t` to the bit.
+                let discount = (-self.discounting.value(pay_at.0)).exp();
                 self.ops.push(Op::Pay { mask, amount: v.src, slot, discount, site });
                 self.release(v);
                 false
@@ -837,12 +893,36 @@ impl<'p> Compiler<'p> {
         V { src: Src::Reg(dst), temp: true }
     }
 
-    fn level(&mut self, asset: usize, idx: usize) -> V {
-        if idx == 0 {
-            V::konst(self.assets[asset].spot)
-        } else {
-            V { src: Src::Level((idx * self.assets.len() + asset) as u32), temp: false }
+    fn level(&mut self, asset: usize, idx: usize, span: Span) -> Option<V> {
+        if idx == self.past {
+            return Some(V::konst(self.assets[asset].spot));
         }
+        if idx > self.past {
+            return Some(V { src: Src::Level((idx * self.assets.len() + asset) as u32), temp: false });
+        }
+        let name = self.assets[asset].name.clone();
+        let date = self.grid_date(idx);
+        if let Some(f) = self.past_fixing(asset, idx) {
+            return Some(V::konst(f.level));
+        }
+        let file = self.fixings.map_or_else(String::new, |f| f.file.display().to_string());
+        self.error(
+            span,
+            format!("no fixing of {name} on {date} in the fixings file {file}: the level of a past date comes from the fixings"),
+            format!("add the line `{date},{name},<level>` to {file}"),
+        );
+        None
+    }
+
+    /// The calendar date of a grid index (grid times are whole days from the valuation date
+    /// when they come from dates).
+    fn grid_date(&self, idx: usize) -> Date {
+        self.valuation.add_days((self.grid[idx] * 365.0).round() as i64).unwrap_or(self.valuation)
+    }
+
+    /// The fixing of `asset` at a past grid index, if the fixings give it.
+    fn past_fixing(&self, asset: usize, idx: usize) -> Option<crate::fixings::Fixing> {
+        self.fixings?.get(&self.assets[asset].name, self.grid_date(idx))
     }
 
     fn initial(&mut self, asset: usize, span: Span, now: &Now) -> Option<V> {
@@ -859,9 +939,9 @@ impl<'p> Compiler<'p> {
             return None;
         }
         let idx = self.grid_index(self.start.0);
-        match (&self.initial_levels, idx) {
-            (Some(levels), 0) => Some(V::konst(levels[asset])),
-            _ => Some(self.level(asset, idx)),
+        match &self.initial_levels {
+            Some(levels) if idx == self.past => Some(V::konst(levels[asset])),
+            _ => self.level(asset, idx, span),
         }
     }
 
@@ -983,13 +1063,13 @@ impl<'p> Compiler<'p> {
             }
             TKind::Level { asset, at } => {
                 let idx = self.read_index(*at, e.span, &now)?;
-                self.level(*asset, idx)
+                self.level(*asset, idx, e.span)?
             }
             TKind::Initial(asset) => self.initial(*asset, e.span, &now)?,
             TKind::Perf { asset, at } => {
                 let idx = self.read_index(*at, e.span, &now)?;
                 let init = self.initial(*asset, e.span, &now)?;
-                let level = self.level(*asset, idx);
+                let level = self.level(*asset, idx, e.span)?;
                 match init.src {
                     Src::Const(x) => self.push_bin(Bin::Mul, level, V::konst(1.0 / x)),
                     _ => self.push_bin(Bin::Div, level, init),
@@ -1032,11 +1112,44 @@ impl<'p> Compiler<'p> {
                     );
                     return None;
                 }
+                let (mut barrier, mut relative) = (*level, *relative);
+                if relative && self.grid_index(self.start.0) < self.past {
+                    // Struck in the past: the barrier is a known level.
+                    match self.initial(*asset, e.span, &now)?.src {
+                        Src::Const(x) => (barrier, relative) = (barrier * x, false),
+                        _ => return None,
+                    }
+                }
+                let mut a = a;
+                if a.0 < -TIME_EPS {
+                    // The past part of the window, from the fixings: touched if a close, or a
+                    // day's low (high) where given, is at or beyond the barrier. Between
+                    // fixings nothing is assumed to have crossed.
+                    let (Some(first), true) = (a.1, !relative) else { return None };
+                    let last = self.valuation.add_days(-1).unwrap_or(self.valuation);
+                    let down = *direction == Direction::Down;
+                    let seen =
+                        self.fixings.map(|f| f.between(&self.assets[*asset].name, first, last)).unwrap_or_default();
+                    let touched = seen.iter().any(|(_, f)| {
+                        if down {
+                            f.level.min(f.low.unwrap_or(f.level)) <= barrier
+                        } else {
+                            f.level.max(f.high.unwrap_or(f.level)) >= barrier
+                        }
+                    });
+                    if touched {
+                        return Some(V::konst(1.0));
+                    }
+                    if b.0 < -TIME_EPS {
+                        return Some(V::konst(0.0));
+                    }
+                    a = (0.0, Some(self.valuation));
+                }
                 let m = Monitor {
                     asset: *asset,
                     direction: *direction,
-                    level: *level,
-                    relative: *relative,
+                    level: barrier,
+                    relative,
                     from: self.grid_index(a.0),
                     to: self.grid_index(b.0),
                 };
