@@ -76,6 +76,9 @@ pub struct Priced {
     pub warnings: String,
     /// The market inputs the price used.
     pub inputs: Inputs,
+    /// The date the product ended, when it ended before the valuation date (a trade
+    /// already redeemed or knocked out): its price is what is left to pay.
+    pub ended: Option<String>,
 }
 
 /// The market inputs of a price, per underlying, read to the product's last simulated
@@ -108,6 +111,8 @@ pub struct UnderlyingInputs {
     pub quanto: Option<crate::dynamics::Quanto>,
     /// Correlations with the product's other underlyings.
     pub correlations: Vec<(String, f64)>,
+    /// The fixings of past dates the product reads, in date order.
+    pub fixings: Vec<(String, f64)>,
 }
 
 impl Inputs {
@@ -139,6 +144,16 @@ impl Inputs {
                     .filter(|(j, _)| *j != i)
                     .map(|(j, b)| {
                         (b.name.clone(), program.correlations.get(i).and_then(|r| r.get(j)).copied().unwrap_or(0.0))
+                    })
+                    .collect(),
+                fixings: program
+                    .past_levels
+                    .iter()
+                    .zip(&program.grid)
+                    .filter(|(levels, _)| levels[i].is_finite())
+                    .map(|(levels, t)| {
+                        let date = program.valuation_date.add_days((t * 365.0).round() as i64);
+                        (date.map_or_else(|| format!("{t:.4}y"), |d| d.to_string()), levels[i])
                     })
                     .collect(),
             })
@@ -330,7 +345,14 @@ impl Compiled {
         let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
         let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
         let warnings = render_all(&in_file(found), Some(source));
+        // Ended before the valuation date: every path ends on the same past date.
+        let ended = estimate
+            .profile
+            .iter()
+            .find(|r| r.time < 0.0 && r.end_probability.is_some_and(|p| p >= 1.0 - 1e-12))
+            .map(|r| r.label.clone());
         Ok(Priced {
+            ended,
             warnings,
             inputs: Inputs::of(program),
             file: file.display().to_string(),

@@ -199,6 +199,7 @@ fn every_catalogue_file_prices_inside_its_sanity_band() {
             "a call on a level that grows slower than the USD rate: below its discounted forward, itself below 100%",
         ),
         ("range_accrual", NOTIONAL * df(t1), NOTIONAL * df(t1) * 1.07, "principal plus between 0% and 7% at maturity"),
+        ("seasoned_worst_of_autocall", 0.0, NOTIONAL * 1.27, "pays at most 100% plus twelve 2.25% coupons"),
         (
             "twin_win",
             NOTIONAL,

@@ -38,6 +38,7 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
             "end_probability": r.end_probability,
             "expected_pv": r.expected_pv,
         })).collect::<Vec<_>>(),
+        "ended": p.ended,
         "market_inputs": inputs_json(&p.inputs),
         "caution": CAUTION,
     })
@@ -64,6 +65,7 @@ pub fn inputs_json(i: &Inputs) -> serde_json::Value {
                 "fx_correlation": q.correlation,
             })),
             "correlations": u.correlations.iter().map(|(n, r)| (n.clone(), json!(r))).collect::<serde_json::Map<_, _>>(),
+            "fixings": u.fixings.iter().map(|(d, x)| json!({ "date": d, "level": x })).collect::<Vec<_>>(),
         })).collect::<Vec<_>>(),
     })
 }
@@ -104,6 +106,10 @@ fn write_inputs(out: &mut dyn Write, i: &Inputs, ccy: &str) -> io::Result<()> {
                 pct(q.fx_volatility),
                 q.correlation
             )?;
+        }
+        if !u.fixings.is_empty() {
+            let list: Vec<String> = u.fixings.iter().map(|(d, x)| format!("{d} {}", group(*x, 2))).collect();
+            writeln!(out, "    {:<14}  fixings {}", "", list.join(", "))?;
         }
         if !u.correlations.is_empty() {
             let list: Vec<String> = u.correlations.iter().map(|(n, r)| format!("{n} {r}")).collect();
@@ -158,6 +164,9 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
             .collect();
         writeln!(out, "  parameters        {}", list.join(", "))?;
     }
+    if let Some(date) = &p.ended {
+        writeln!(out, "  ended             on {date}, before the valuation date: the price is what is left to pay")?;
+    }
     writeln!(out)?;
     let se_percent = 100.0 * e.std_error / p.notional;
     let dp = decimals(se_percent).max(4);
@@ -205,7 +214,7 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
     }
     writeln!(out, "  (plain averages over the paths: they add up to the price before control variates)")?;
-    if e.variance_reduction.is_some_and(|v| v < 1.0) {
+    if e.variance_reduction.is_some_and(|v| v < 1.0) && p.ended.is_none() {
         writeln!(out)?;
         writeln!(
             out,
