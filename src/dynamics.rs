@@ -97,6 +97,11 @@ impl AssetDynamics {
         self.jumps.iter().filter(|(tj, _)| *tj <= t + SAME_TIME).map(|(_, j)| j).sum::<f64>().exp()
     }
 
+    /// `Σ ln(1 − δᵢ)` of the dividends going ex after `t0` and up to `t1`.
+    pub fn drop_between(&self, t0: f64, t1: f64) -> f64 {
+        self.jumps.iter().filter(|(tj, _)| *tj > t0 + SAME_TIME && *tj <= t1 + SAME_TIME).map(|(_, j)| j).sum()
+    }
+
     /// How many discrete dividends go ex after the valuation date and up to `t`.
     pub fn dividend_count_to(&self, t: f64) -> usize {
         self.jumps.iter().filter(|(tj, _)| *tj <= t + SAME_TIME).count()
@@ -235,6 +240,10 @@ pub struct GridCurves {
     pub log_growth: Vec<Vec<f64>>,
     /// `V(tₖ)` per asset, per grid index.
     pub variance: Vec<Vec<f64>>,
+    /// Per asset, per grid index: `Σ ln(1 − δᵢ)` of the dividends going ex in the step
+    /// ending there (on its last date, since ex-dates are grid dates). The path runs
+    /// without them up to that date and drops at it: a barrier's bridge ends before the drop.
+    pub drop: Vec<Vec<f64>>,
 }
 
 impl GridCurves {
@@ -243,6 +252,12 @@ impl GridCurves {
             discount: grid.iter().map(|&t| (-discount.value(t)).exp()).collect(),
             log_growth: assets.iter().map(|a| grid.iter().map(|&t| a.log_growth(t)).collect()).collect(),
             variance: assets.iter().map(|a| grid.iter().map(|&t| a.variance(t)).collect()).collect(),
+            drop: assets
+                .iter()
+                .map(|a| {
+                    (0..grid.len()).map(|k| if k == 0 { 0.0 } else { a.drop_between(grid[k - 1], grid[k]) }).collect()
+                })
+                .collect(),
         }
     }
 }

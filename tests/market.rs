@@ -180,3 +180,38 @@ fn a_flat_curve_written_as_one_far_pillar_prices_as_the_flat_number() {
     let (x, y) = (run(&a), run(&b));
     assert!((x - y).abs() <= 1e-9 * x.abs(), "flat {x} against one far pillar {y}");
 }
+
+#[test]
+fn a_barrier_bridge_ends_before_a_dividend_drop() {
+    // Regression: a dividend going ex on a grid date drops the level at that date; the
+    // path before it is the path without the dividend. So a down barrier watched up to the
+    // ex-date is touched exactly when the undivided path touches it, or its last level
+    // after the 30% drop is at or below it. Two writings of one event, on the same paths
+    // (both markets take the curve route, through a volatility pillar past the maturity):
+    // the bridge must run to the level before the drop, not after it.
+    let base = "valuation_date = 2026-12-01\n[rates]\nUSD = 0.03\n[underlyings.OSMP]\ncurrency = \"USD\"\nspot = 100.0\nvolatility = { 10y = 0.25 }\n";
+    let with_dividend = format!("{base}proportional_dividends = {{ 2027-12-01 = 0.30 }}\n");
+    let dir = Scratch::dir("dividend-bridge");
+    let (a, b) = (dir.join("dividend.toml"), dir.join("none.toml"));
+    std::fs::write(&a, with_dividend).unwrap();
+    std::fs::write(&b, base).unwrap();
+    let head = "product \"Touch\"\ncurrency USD\nnotional 1\nunderlyings OSMP\nat 2027-12-01 {\n";
+    let touched = format!("{head}    if touched(level(OSMP) <= 80 from start to 2027-12-01) {{ pay 1 }}\n}}\n");
+    let written_out = format!(
+        "{head}    if touched(level(OSMP) <= 80 from start to 2027-12-01) or level(OSMP) * 0.7 <= 80 {{ pay 1 }}\n}}\n"
+    );
+    let (pa, pb) = (dir.join("touched.payoff"), dir.join("written_out.payoff"));
+    std::fs::write(&pa, touched).unwrap();
+    std::fs::write(&pb, written_out).unwrap();
+    let args = |m: &std::path::Path| {
+        vec!["--market".to_string(), m.display().to_string(), "--paths".into(), "100000".into(), "--no-control".into()]
+    };
+    let run = |p: &std::path::Path, m: &std::path::Path| {
+        let a = args(m);
+        let a: Vec<&str> = a.iter().map(String::as_str).collect();
+        price_se(&price(p.to_str().unwrap(), &a))
+    };
+    let (x, se) = run(&pa, &a);
+    let (y, _) = run(&pb, &b);
+    assert!((x - y).abs() <= 0.05 * se, "with the dividend {x} ± {se}, written out {y}");
+}

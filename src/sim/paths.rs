@@ -320,12 +320,18 @@ impl PathBuffers {
                 let mut k = m.from + 1;
                 while !hit && k <= m.to {
                     let (x0, x1) = (at(k - 1), at(k));
-                    if beyond(x1) {
+                    // A dividend going ex on this date drops the level at its end: the
+                    // path runs to the level before the drop.
+                    let x1_before = match &p.curves {
+                        Some(c) => x1 - c.drop[a][k],
+                        None => x1,
+                    };
+                    if beyond(x1) || beyond(x1_before) {
                         hit = true;
                     } else {
                         let step_var =
                             if p.curves.is_some() { step_variance(p, a, k) } else { var * (p.grid[k] - p.grid[k - 1]) };
-                        let crossing = (-2.0 * (x0 - h) * (x1 - h) / step_var).exp();
+                        let crossing = (-2.0 * (x0 - h) * (x1_before - h) / step_var).exp();
                         hit = self.uniforms[(slot * steps + k) * block + lane] < crossing;
                     }
                     k += 1;
