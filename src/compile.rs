@@ -263,6 +263,7 @@ pub fn compile_struck(
     let initial_levels = struck.initial_levels.clone().filter(|l| l.len() == assets.len());
     let mut c = Compiler::new(product, valuation, rate, assets);
     c.fixings = market.fixings.as_ref();
+    c.calendars = market.calendars.as_ref();
     c.discounting = discounting.clone();
     if !flat {
         c.knots = dynamics.iter().flat_map(|d| d.knots.iter().copied()).collect();
@@ -355,6 +356,8 @@ struct Compiler<'p> {
     knots: Vec<f64>,
     /// The fixings of past dates, when the market names a fixings file.
     fixings: Option<&'p crate::fixings::Fixings>,
+    /// The holiday calendars, when the market names a calendars file.
+    calendars: Option<&'p crate::calendar::Calendars>,
     /// The grid index of the valuation date: indices below it are past dates.
     past: usize,
 }
@@ -405,6 +408,7 @@ impl<'p> Compiler<'p> {
             discounting: crate::curve::Curve::Flat(rate).at(valuation, crate::curve::Reading::Rate),
             knots: Vec::new(),
             fixings: None,
+            calendars: None,
             past: 0,
         }
     }
@@ -497,8 +501,9 @@ impl<'p> Compiler<'p> {
                             } else {
                                 let mut out = Vec::new();
                                 let mut d = Some(a);
+                                let holidays = self.holidays(&def.schedule.rolling);
                                 while let Some(day) = d.filter(|day| *day <= b) {
-                                    if day.is_weekday() {
+                                    if day.is_weekday() && !holidays.as_ref().is_some_and(|h| h.contains(&day)) {
                                         out.push((self.valuation.years_until(day), Some(day)));
                                     }
                                     d = day.add_days(1);
@@ -521,6 +526,7 @@ impl<'p> Compiler<'p> {
                     }
                 },
             };
+            let dates = self.rolled(def, dates);
             if dates.len() > room {
                 // A list written out by hand, or an `every` schedule that ran over.
                 self.too_many(&def.name, span, total);
@@ -557,6 +563,68 @@ impl<'p> Compiler<'p> {
             }
             self.schedules.push(dates);
         }
+    }
+
+    /// The holidays of a schedule's `calendar NAME`, or `None` (with an error if the name
+    /// or the calendars file is missing).
+    fn holidays(&mut self, rolling: &crate::syntax::Rolling) -> Option<std::collections::BTreeSet<Date>> {
+        let (name, span) = rolling.calendar.as_ref()?;
+        match self.calendars.map(|c| (c.holidays(name), c)) {
+            Some((Some(h), _)) => Some(h.clone()),
+            Some((None, c)) => {
+                let known = c.names().join(", ");
+                let file = c.file.display().to_string();
+                self.error(
+                    *span,
+                    format!("no calendar `{name}` in {file}"),
+                    format!("use one it lists ({known}), or add lines `{name},YYYY-MM-DD` to it"),
+                );
+                None
+            }
+            None => {
+                self.error(
+                    *span,
+                    format!("the market names no calendars file, so `{name}` has no holidays"),
+                    "add `calendars = \"holidays.csv\"` to the market file, with lines `calendar,date`",
+                );
+                None
+            }
+        }
+    }
+
+    /// A schedule's dates moved by its `rolled ...` convention onto business days (of its
+    /// calendar, or Monday to Friday without one).
+    fn rolled(&mut self, def: &typing::ScheduleDef, dates: Vec<When_>) -> Vec<When_> {
+        let rolling = &def.schedule.rolling;
+        let Some((rule, span)) = rolling.roll else {
+            if let (Some((_, span)), false) =
+                (&rolling.calendar, matches!(def.schedule.kind, ScheduleKind::BusinessDays { .. }))
+            {
+                self.error(
+                    *span,
+                    format!("the calendar of `{}` is not used: its dates are not rolled", def.name),
+                    "write `rolled following`, `rolled modified following` or `rolled preceding` before `calendar`",
+                );
+            }
+            return dates;
+        };
+        let holidays = self.holidays(rolling).unwrap_or_default();
+        let mut out = Vec::with_capacity(dates.len());
+        for (t, d) in dates {
+            let Some(d) = d else {
+                self.error(
+                    span,
+                    format!("the dates of `{}` are year offsets, which have no weekday to roll", def.name),
+                    "write the schedule with calendar dates, e.g. every 3m from 2027-03-01 to 2029-12-01",
+                );
+                return Vec::new();
+            };
+            match crate::calendar::roll(d, rule, &holidays) {
+                Some(r) => out.push((self.valuation.years_until(r), Some(r))),
+                None => out.push((t, Some(d))),
+            }
+        }
+        out
     }
 
     /// A schedule, or the error naming it, when it would hold more dates than allowed.

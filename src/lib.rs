@@ -21,6 +21,7 @@
 //! ```
 
 pub mod batch;
+pub mod calendar;
 pub mod closed_form;
 pub mod commands;
 pub mod comparison;

@@ -99,6 +99,9 @@ pub struct Market {
     pub fixings: Option<crate::fixings::Fixings>,
     /// The fixings file as written, and where.
     fixings_name: Option<(String, Option<Span>)>,
+    /// Holiday calendars, from the file the market names (`calendars = "..."`).
+    pub calendars: Option<crate::calendar::Calendars>,
+    calendars_name: Option<(String, Option<Span>)>,
     /// Names that have their own line under `[correlations]`, with the span of the name:
     /// a missing pair is best added to an existing line (a second line would be a TOML
     /// duplicate key).
@@ -139,6 +142,17 @@ impl Market {
                 return Err(vec![d]);
             }
             market.fixings = Some(crate::fixings::Fixings::load(&file)?);
+        }
+        if let Some((name, span)) = market.calendars_name.clone() {
+            let file = path.parent().unwrap_or(Path::new(".")).join(&name);
+            if !file.is_file() {
+                let mut d = Diagnostic::new(format!("the calendars file {} named here does not exist", file.display()))
+                    .with_fix("write the path relative to the market file, e.g. calendars = \"holidays.csv\"")
+                    .in_file(path);
+                d.span = span;
+                return Err(vec![d]);
+            }
+            market.calendars = Some(crate::calendar::Calendars::load(&file)?);
         }
         Ok(market)
     }
@@ -439,7 +453,8 @@ fn list_or_none(names: &[&str]) -> String {
 // ---------------------------------------------------------------------------------------
 // Validation: from the spanned TOML tree to a `Market`, collecting every problem.
 
-const TOP_KEYS: &[&str] = &["valuation_date", "fixings", "rates", "underlyings", "correlations", "fx_volatilities"];
+const TOP_KEYS: &[&str] =
+    &["valuation_date", "fixings", "calendars", "rates", "underlyings", "correlations", "fx_volatilities"];
 const UNDERLYING_KEYS: &[&str] =
     &["currency", "spot", "volatility", "dividend_yield", "cash_dividends", "proportional_dividends", "fx_correlation"];
 
@@ -577,17 +592,21 @@ impl Reader<'_> {
         };
         let fx_volatilities =
             sections.get("fx_volatilities").map(|node| self.fx_volatilities(node)).unwrap_or_default();
-        let fixings_name = sections.get("fixings").and_then(|node| match &node.kind {
-            Kind::String(name) if !name.trim().is_empty() => Some((name.clone(), node.span)),
-            other => {
-                self.error(
-                    node.span,
-                    format!("fixings must be the name of a file in quotes (got {})", other.describe()),
-                    "write for example fixings = \"fixings.csv\" (relative to the market file)".into(),
-                );
-                None
-            }
-        });
+        let mut file_name = |key: &str, example: &str| {
+            sections.get(key).and_then(|node| match &node.kind {
+                Kind::String(name) if !name.trim().is_empty() => Some((name.clone(), node.span)),
+                other => {
+                    self.error(
+                        node.span,
+                        format!("{key} must be the name of a file in quotes (got {})", other.describe()),
+                        format!("write for example {key} = \"{example}\" (relative to the market file)"),
+                    );
+                    None
+                }
+            })
+        };
+        let fixings_name = file_name("fixings", "fixings.csv");
+        let calendars_name = file_name("calendars", "holidays.csv");
         let valuation_date = match sections.get("valuation_date") {
             Some(_) => valuation_date,
             None => {
@@ -611,6 +630,8 @@ impl Reader<'_> {
             fx_volatilities,
             fixings: None,
             fixings_name,
+            calendars: None,
+            calendars_name,
             underlyings,
             correlations,
             correlation_rows,

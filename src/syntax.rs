@@ -73,6 +73,28 @@ pub enum DateTerm {
 pub struct Schedule {
     pub kind: ScheduleKind,
     pub span: Span,
+    /// `rolled ...` and `calendar NAME` after the schedule.
+    pub rolling: Rolling,
+}
+
+/// How a schedule's dates meet business days: `rolled modified following calendar ZEX`.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Rolling {
+    pub roll: Option<(Roll, Span)>,
+    /// The holiday calendar, by the name the market's calendars file gives it.
+    pub calendar: Option<(String, Span)>,
+}
+
+/// A business-day convention for a date that is not a business day.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Roll {
+    /// `following`: the next business day.
+    Following,
+    /// `modified following`: the next business day, unless it is in the next month; then
+    /// the business day before.
+    ModifiedFollowing,
+    /// `preceding`: the business day before.
+    Preceding,
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -445,7 +467,23 @@ impl Lowering {
             }
             Rule::dates_item => {
                 let n = name(inner.next().unwrap());
-                Item::Dates(n, self.schedule(inner.next().unwrap()))
+                let mut schedule = self.schedule(inner.next().unwrap());
+                for clause in inner {
+                    let rule = clause.as_rule();
+                    let span = span_of(&clause);
+                    let Some(word) = clause.into_inner().nth(1) else { continue };
+                    if rule == Rule::roll_clause {
+                        let roll = match word.as_str().split_whitespace().next() {
+                            Some("modified") => Roll::ModifiedFollowing,
+                            Some("following") => Roll::Following,
+                            _ => Roll::Preceding,
+                        };
+                        schedule.rolling.roll = Some((roll, span));
+                    } else {
+                        schedule.rolling.calendar = Some((word.as_str().to_string(), span_of(&word)));
+                    }
+                }
+                Item::Dates(n, schedule)
             }
             Rule::each_block => {
                 let var = name(inner.next().unwrap());
@@ -517,7 +555,7 @@ impl Lowering {
             }
             other => unreachable!("grammar yields no schedule {other:?}"),
         };
-        Schedule { kind, span }
+        Schedule { kind, span, rolling: Rolling::default() }
     }
 
     /// A whole count from 1 to `most`; `what` names it in the message.
@@ -1113,6 +1151,28 @@ mod tests {
         assert_eq!(body.len(), 3);
         assert!(matches!(body[1], Stmt::Assign(..)));
         assert!(matches!(body[2], Stmt::End(_)));
+    }
+
+    #[test]
+    fn rolled_schedules_and_calendars() {
+        let text = "dates m = every 1m from 2027-01-31 to 2027-12-31 rolled modified  following calendar ZEX\n\
+            dates p = 2027-06-05 rolled preceding\ndates b = business days from 2026-12-02 to 2027-01-29 calendar ZEX\n\
+            dates calendar = 2027-01-04";
+        let file = parse(text).unwrap();
+        let rolling = |i: usize| match &file.items[i] {
+            Item::Dates(_, s) => s.rolling.clone(),
+            _ => panic!("a dates item"),
+        };
+        let m = rolling(0);
+        assert_eq!(m.roll.map(|r| r.0), Some(Roll::ModifiedFollowing));
+        assert_eq!(m.calendar.as_ref().map(|c| c.0.as_str()), Some("ZEX"));
+        assert_eq!(rolling(1).roll.map(|r| r.0), Some(Roll::Preceding));
+        assert_eq!(rolling(1).calendar, None);
+        assert_eq!(rolling(2).roll, None);
+        assert_eq!(rolling(2).calendar.map(|c| c.0), Some("ZEX".to_string()));
+        // `calendar` and `rolled` are words of fixed places, not reserved: a schedule may be
+        // called `calendar`.
+        assert_eq!(rolling(3), Rolling::default());
     }
 
     #[test]
