@@ -18,7 +18,18 @@ use std::path::{Path, PathBuf};
 use crate::date::Date;
 use crate::diagnostic::{Diagnostic, Span};
 use crate::files::read_regular_file;
-use crate::syntax::Roll;
+
+/// A business-day convention for a date that is not a business day.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Roll {
+    /// `following`: the next business day.
+    Following,
+    /// `modified following`: the next business day, unless it is in the next month; then
+    /// the business day before.
+    ModifiedFollowing,
+    /// `preceding`: the business day before.
+    Preceding,
+}
 
 /// Holidays by calendar name.
 #[derive(Clone, Debug, Default, PartialEq)]

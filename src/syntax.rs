@@ -85,17 +85,8 @@ pub struct Rolling {
     pub calendar: Option<(String, Span)>,
 }
 
-/// A business-day convention for a date that is not a business day.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Roll {
-    /// `following`: the next business day.
-    Following,
-    /// `modified following`: the next business day, unless it is in the next month; then
-    /// the business day before.
-    ModifiedFollowing,
-    /// `preceding`: the business day before.
-    Preceding,
-}
+/// `rolled following`, `rolled modified following`, `rolled preceding`.
+pub use crate::calendar::Roll;
 
 #[derive(Clone, Debug, PartialEq)]
 pub enum ScheduleKind {
