@@ -1185,7 +1185,10 @@ impl<'p> Compiler<'p> {
                     // Struck in the past: the barrier is a known level.
                     match self.initial(*asset, e.span, &now)?.src {
                         Src::Const(x) => (barrier, relative) = (barrier * x, false),
-                        _ => return None,
+                        _ => {
+                            self.error(e.span, "the initial level of a past start is not known", "give its fixing");
+                            return None;
+                        }
                     }
                 }
                 let mut a = a;
@@ -1193,7 +1196,14 @@ impl<'p> Compiler<'p> {
                     // The past part of the window, from the fixings: touched if a close, or a
                     // day's low (high) where given, is at or beyond the barrier. Between
                     // fixings nothing is assumed to have crossed.
-                    let (Some(first), true) = (a.1, !relative) else { return None };
+                    let (Some(first), true) = (a.1, !relative) else {
+                        self.error(
+                            e.span,
+                            "a window that begins before the valuation date needs a calendar date and a known barrier level",
+                            "begin the window at a written date or at a start with a fixing",
+                        );
+                        return None;
+                    };
                     let last = self.valuation.add_days(-1).unwrap_or(self.valuation);
                     let down = *direction == Direction::Down;
                     let seen =
