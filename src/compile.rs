@@ -99,6 +99,14 @@ pub enum Op {
     Choose { site: u32, mask: u32, amount: Src, discount: f64, dst: u32 },
 }
 
+/// What is known of a continuously monitored window when the block runs.
+enum Watch {
+    /// It lies before the valuation date, or was touched then: decided from the fixings.
+    Past(bool),
+    /// Watched on the simulated paths from this monitor's window on.
+    Live(Monitor),
+}
+
 /// One early-exercise date: a `may end` statement on one run date.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Choice {
@@ -202,7 +210,8 @@ pub struct Program {
     pub assets: Vec<AssetModel>,
     /// Cholesky factor of the assets' correlation matrix (lower triangular).
     pub cholesky: Vec<Vec<f64>>,
-    /// Simulation times in years; `grid[0] == 0` is the valuation date.
+    /// Times in years from the valuation date, `grid[past] == 0`; the times before it are
+    /// past dates (levels from the fixings), the times after it are simulated.
     pub grid: Vec<f64>,
     /// Grid index of the initial fixing (the `start` date).
     pub start: usize,
@@ -226,6 +235,20 @@ pub struct Program {
     pub averages: Vec<(usize, Vec<usize>)>,
     /// Early-exercise dates (`may end`), in the order they run; `Choose` refers to them.
     pub choices: Vec<Choice>,
+    /// The dynamics read at the grid times, when some input is not flat (curves, discrete
+    /// dividends, quanto); `None`: flat rate, volatilities and yields of `assets`.
+    pub curves: Option<crate::dynamics::GridCurves>,
+    /// Each underlying's dynamics, for reports.
+    pub dynamics: Vec<crate::dynamics::AssetDynamics>,
+    /// The correlation matrix of the assets as the market gives it, for reports.
+    pub correlations: Vec<Vec<f64>>,
+    /// The payoff currency's `∫₀ᵗ r`, for reports.
+    pub discounting: crate::curve::Integral,
+    /// The grid index of the valuation date; the indices before it are past dates.
+    pub past: usize,
+    /// The fixings at the past grid indices, `[k][asset]` (NaN where none is given: such
+    /// a level is never read).
+    pub past_levels: Vec<Vec<f64>>,
 }
 
 /// How a trade that is already struck is compiled, for sensitivities: what stays fixed
@@ -259,31 +282,23 @@ pub fn compile_struck(
     // Underlyings from the market.
     let mut assets = Vec::new();
     let market_name = market_file.display();
+    let mut dynamics = Vec::new();
     for u in &product.underlyings {
         match market.underlying(&u.text) {
-            // Until quanto pricing exists, a stock quoted in another currency would silently
-            // drift at the payoff currency's rate: refused.
-            Some(m) if !product.currency.is_empty() && m.currency != product.currency => {
-                errors.push(
-                    Diagnostic::at(
-                        u.span,
-                        format!(
-                            "`{}` is quoted in {} (market file {market_name}) but this payoff pays in {}; pathfold does not price payoffs in another currency than their underlyings (quanto)",
-                            u.text, m.currency, product.currency
-                        ),
-                    )
-                    .with_fix(format!(
-                        "write `currency {}` in the payoff, or use an underlying quoted in {}; if the market file is wrong, correct `currency` under [underlyings.{}]",
-                        m.currency, product.currency, u.text
-                    )),
-                );
-            }
-            Some(m) => assets.push(AssetModel {
-                name: u.text.clone(),
-                spot: m.spot,
-                volatility: m.volatility,
-                dividend_yield: m.dividend_yield,
-            }),
+            Some(m) => match crate::dynamics::asset(market, &u.text, m, &product.currency, u.span, market_file) {
+                Ok(d) => {
+                    assets.push(AssetModel {
+                        name: u.text.clone(),
+                        spot: m.spot,
+                        volatility: m.volatility.flat().unwrap_or_else(|| d.volatility(0.0)),
+                        dividend_yield: m.dividend_yield.flat().unwrap_or_else(|| d.dividend_yield(0.0)),
+                    });
+                    dynamics.push(d);
+                }
+                // A cash dividend as large as the forward: an error in the market file alone.
+                Err(e) if e.file.is_some() => return Err(vec![e]),
+                Err(e) => errors.push(e),
+            },
             None => {
                 let known: Vec<&str> = market.underlying_names().collect();
                 errors.push(Diagnostic::at(u.span, format!("the market has no underlying `{}`", u.text)).with_fix(
@@ -305,11 +320,23 @@ pub fn compile_struck(
     if !errors.is_empty() {
         return Err(errors);
     }
-    let rate = rate.unwrap_or(0.0);
+    let discounting = crate::dynamics::discounting(market, &product.currency);
+    // The flat rate, for the flat arithmetic; with a curve, its zero rate to one year
+    // (only reports read it then).
+    let rate = rate.and_then(crate::curve::Curve::flat).unwrap_or_else(|| discounting.average(1.0));
+    let flat = dynamics.iter().all(|d| d.flat);
     let names: Vec<&str> = assets.iter().map(|a| a.name.as_str()).collect();
     let cholesky = market.cholesky(&names, market_file).map_err(|e| vec![e])?;
+    let correlations: Vec<Vec<f64>> =
+        names.iter().map(|a| names.iter().map(|b| market.correlation(a, b).unwrap_or(0.0)).collect()).collect();
     let initial_levels = struck.initial_levels.clone().filter(|l| l.len() == assets.len());
     let mut c = Compiler::new(product, valuation, rate, assets);
+    c.fixings = market.fixings.as_ref();
+    c.calendars = market.calendars.as_ref();
+    c.discounting = discounting.clone();
+    if !flat {
+        c.knots = dynamics.iter().flat_map(|d| d.knots.iter().copied()).collect();
+    }
     c.aged = struck.aged_days as f64 / 365.0;
     c.initial_levels = initial_levels.clone();
     c.resolve_schedules();
@@ -324,8 +351,13 @@ pub fn compile_struck(
     }
     let mut program = c.finish();
     program.cholesky = cholesky;
+    if !flat {
+        program.curves = Some(crate::dynamics::GridCurves::new(&program.grid, &discounting, &dynamics));
+    }
+    program.dynamics = dynamics;
+    program.correlations = correlations;
     // A barrier relative to an initial level fixed today is a fixed level.
-    if let (Some(levels), 0) = (&initial_levels, program.start) {
+    if let (Some(levels), true) = (&initial_levels, program.start == program.past) {
         for m in program.monitors.iter_mut().filter(|m| m.relative) {
             m.level *= levels[m.asset];
             m.relative = false;
@@ -400,6 +432,16 @@ struct Compiler<'p> {
     aged: f64,
     /// Initial levels fixed for a start on the valuation date ([`Struck::initial_levels`]).
     initial_levels: Option<Vec<f64>>,
+    /// The payoff currency's `∫₀ᵗ r`, for discounting payments.
+    discounting: crate::curve::Integral,
+    /// Times where a coefficient of the dynamics changes; they join the grid.
+    knots: Vec<f64>,
+    /// The fixings of past dates, when the market names a fixings file.
+    fixings: Option<&'p crate::fixings::Fixings>,
+    /// The holiday calendars, when the market names a calendars file.
+    calendars: Option<&'p crate::calendar::Calendars>,
+    /// The grid index of the valuation date: indices below it are past dates.
+    past: usize,
 }
 
 /// The date context an expression is compiled in.
@@ -458,6 +500,11 @@ impl<'p> Compiler<'p> {
             running: std::collections::HashMap::new(),
             aged: 0.0,
             initial_levels: None,
+            discounting: crate::curve::Curve::Flat(rate).at(valuation, crate::curve::Reading::Rate),
+            knots: Vec::new(),
+            fixings: None,
+            calendars: None,
+            past: 0,
         }
     }
 
@@ -469,11 +516,12 @@ impl<'p> Compiler<'p> {
     fn term(&mut self, term: DateTerm, span: Span) -> Option<When_> {
         match term {
             DateTerm::Iso(d) => {
-                if d < self.valuation {
+                // Past dates are read from the fixings, when there are fixings.
+                if d < self.valuation && self.fixings.is_none() {
                     self.error(
                         span,
                         format!("{d} is before the valuation date {}", self.valuation),
-                        "pathfold prices from the valuation date on; use a later date or a market file with an earlier valuation date",
+                        "pathfold prices from the valuation date on; for a trade already running, name its fixings file in the market file (`fixings = \"fixings.csv\"`), else use a later date",
                     );
                     return None;
                 }
@@ -548,8 +596,9 @@ impl<'p> Compiler<'p> {
                             } else {
                                 let mut out = Vec::new();
                                 let mut d = Some(a);
+                                let holidays = self.holidays(&def.schedule.rolling);
                                 while let Some(day) = d.filter(|day| *day <= b) {
-                                    if day.is_weekday() {
+                                    if day.is_weekday() && !holidays.as_ref().is_some_and(|h| h.contains(&day)) {
                                         out.push((self.valuation.years_until(day), Some(day)));
                                     }
                                     d = day.add_days(1);
@@ -572,6 +621,7 @@ impl<'p> Compiler<'p> {
                     }
                 },
             };
+            let dates = self.rolled(def, dates);
             if dates.len() > room {
                 // A list written out by hand, or an `every` schedule that ran over.
                 self.too_many(&def.name, span, total);
@@ -597,7 +647,7 @@ impl<'p> Compiler<'p> {
                     break;
                 }
             }
-            if let Some(first) = dates.first() {
+            if let Some(first) = dates.first().filter(|_| self.fixings.is_none()) {
                 if first.0 < -TIME_EPS {
                     self.error(
                         span,
@@ -608,6 +658,68 @@ impl<'p> Compiler<'p> {
             }
             self.schedules.push(dates);
         }
+    }
+
+    /// The holidays of a schedule's `calendar NAME`, or `None` (with an error if the name
+    /// or the calendars file is missing).
+    fn holidays(&mut self, rolling: &crate::syntax::Rolling) -> Option<std::collections::BTreeSet<Date>> {
+        let (name, span) = rolling.calendar.as_ref()?;
+        match self.calendars.map(|c| (c.holidays(name), c)) {
+            Some((Some(h), _)) => Some(h.clone()),
+            Some((None, c)) => {
+                let known = c.names().join(", ");
+                let file = c.file.display().to_string();
+                self.error(
+                    *span,
+                    format!("no calendar `{name}` in {file}"),
+                    format!("use one it lists ({known}), or add lines `{name},YYYY-MM-DD` to it"),
+                );
+                None
+            }
+            None => {
+                self.error(
+                    *span,
+                    format!("the market names no calendars file, so `{name}` has no holidays"),
+                    "add `calendars = \"holidays.csv\"` to the market file, with lines `calendar,date`",
+                );
+                None
+            }
+        }
+    }
+
+    /// A schedule's dates moved by its `rolled ...` convention onto business days (of its
+    /// calendar, or Monday to Friday without one).
+    fn rolled(&mut self, def: &typing::ScheduleDef, dates: Vec<When_>) -> Vec<When_> {
+        let rolling = &def.schedule.rolling;
+        let Some((rule, span)) = rolling.roll else {
+            if let (Some((_, span)), false) =
+                (&rolling.calendar, matches!(def.schedule.kind, ScheduleKind::BusinessDays { .. }))
+            {
+                self.error(
+                    *span,
+                    format!("the calendar of `{}` is not used: its dates are not rolled", def.name),
+                    "write `rolled following`, `rolled modified following` or `rolled preceding` before `calendar`",
+                );
+            }
+            return dates;
+        };
+        let holidays = self.holidays(rolling).unwrap_or_default();
+        let mut out = Vec::with_capacity(dates.len());
+        for (t, d) in dates {
+            let Some(d) = d else {
+                self.error(
+                    span,
+                    format!("the dates of `{}` are year offsets, which have no weekday to roll", def.name),
+                    "write the schedule with calendar dates, e.g. every 3m from 2027-03-01 to 2029-12-01",
+                );
+                return Vec::new();
+            };
+            match crate::calendar::roll(d, rule, &holidays) {
+                Some(r) => out.push((self.valuation.years_until(r), Some(r))),
+                None => out.push((t, Some(d))),
+            }
+        }
+        out
     }
 
     /// A schedule, or the error naming it, when it would hold more dates than allowed.
@@ -686,10 +798,16 @@ impl<'p> Compiler<'p> {
                 collect_stmt(s, &mut times, self);
             }
         }
-        times.retain(|t| t.is_finite() && *t >= -TIME_EPS);
+        let seasoned = self.fixings.is_some();
+        times.retain(|t| t.is_finite() && (seasoned || *t >= -TIME_EPS));
+        // Where the dynamics change before the last date: steps with constant coefficients.
+        let last = times.iter().copied().fold(0.0, f64::max);
+        times.extend(self.knots.iter().copied().filter(|&t| t > TIME_EPS && t < last - TIME_EPS));
         times.sort_by(f64::total_cmp);
         times.dedup_by(|a, b| (*a - *b).abs() < TIME_EPS);
-        times[0] = 0.0;
+        // The valuation date (always there: the list starts with it); before it, past dates.
+        self.past = times.iter().position(|t| t.abs() < TIME_EPS).unwrap_or(0);
+        times[self.past] = 0.0;
         self.grid = times;
     }
 
@@ -768,6 +886,9 @@ impl<'p> Compiler<'p> {
     fn finish(mut self) -> Program {
         let states: Vec<f64> = self.product.states.iter().map(|s| s.init).collect();
         drop_needless_checks(&mut self.ops, self.registers as usize, &states);
+        let past_levels = (0..self.past)
+            .map(|k| (0..self.assets.len()).map(|a| self.past_fixing(a, k).map_or(f64::NAN, |f| f.level)).collect())
+            .collect();
         Program {
             name: self.product.name.clone(),
             currency: self.product.currency.clone(),
@@ -789,6 +910,12 @@ impl<'p> Compiler<'p> {
             condition_sites: self.condition_sites,
             averages: self.averages,
             choices: self.choices,
+            curves: None,
+            dynamics: Vec::new(),
+            correlations: Vec::new(),
+            past: self.past,
+            past_levels,
+            discounting: self.discounting,
         }
     }
 
@@ -896,11 +1023,16 @@ impl<'p> Compiler<'p> {
                     },
                     None => now.event,
                 };
+                if pay_at.0 < -TIME_EPS {
+                    // Paid before the valuation date: not part of what is left.
+                    return false;
+                }
                 let Some(v) = self.expr(amount, now) else { return false };
                 let slot = slot_of(&mut self.payments, pay_at);
                 let site = self.pay_sites.len() as u32;
                 self.pay_sites.push(*span);
-                let discount = (-self.rate * pay_at.0).exp();
+                // With a flat rate, `∫₀ᵗ r` is `r·t` to the bit.
+                let discount = (-self.discounting.value(pay_at.0)).exp();
                 self.ops.push(Op::Pay { mask, amount: v.src, slot, discount, site });
                 self.release(v);
                 false
@@ -914,7 +1046,10 @@ impl<'p> Compiler<'p> {
                 let TKind::Touched { asset, direction, level, relative, from, to } = barrier.kind else {
                     return false;
                 };
-                let Some(m) = self.monitor(asset, direction, level, relative, from, to, barrier.span, &now) else {
+                // A touch before the valuation date was paid then: nothing is left to pay.
+                let Some(Watch::Live(m)) =
+                    self.monitor(asset, direction, level, relative, from, to, barrier.span, &now)
+                else {
                     return false;
                 };
                 let Some(a) = self.expr(amount, now) else { return false };
@@ -992,7 +1127,7 @@ impl<'p> Compiler<'p> {
             rule: Rule::Never,
         });
         let dst = self.alloc();
-        let discount = (-self.rate * now.event.0).exp();
+        let discount = (-self.discounting.value(now.event.0)).exp();
         self.ops.push(Op::Choose { site, mask, amount: a.src, discount, dst });
         let slot = slot_of(&mut self.payments, now.event);
         let pay_site = self.pay_sites.len() as u32;
@@ -1054,12 +1189,36 @@ impl<'p> Compiler<'p> {
         V { src: Src::Reg(dst), temp: true }
     }
 
-    fn level(&mut self, asset: usize, idx: usize) -> V {
-        if idx == 0 {
-            V::konst(self.assets[asset].spot)
-        } else {
-            V { src: Src::Level((idx * self.assets.len() + asset) as u32), temp: false }
+    fn level(&mut self, asset: usize, idx: usize, span: Span) -> Option<V> {
+        if idx == self.past {
+            return Some(V::konst(self.assets[asset].spot));
         }
+        if idx > self.past {
+            return Some(V { src: Src::Level((idx * self.assets.len() + asset) as u32), temp: false });
+        }
+        let name = self.assets[asset].name.clone();
+        let date = self.grid_date(idx);
+        if let Some(f) = self.past_fixing(asset, idx) {
+            return Some(V::konst(f.level));
+        }
+        let file = self.fixings.map_or_else(String::new, |f| f.file.display().to_string());
+        self.error(
+            span,
+            format!("no fixing of {name} on {date} in the fixings file {file}: the level of a past date comes from the fixings"),
+            format!("add the line `{date},{name},<level>` to {file}"),
+        );
+        None
+    }
+
+    /// The calendar date of a grid index (grid times are whole days from the valuation date
+    /// when they come from dates).
+    fn grid_date(&self, idx: usize) -> Date {
+        self.valuation.add_days((self.grid[idx] * 365.0).round() as i64).unwrap_or(self.valuation)
+    }
+
+    /// The fixing of `asset` at a past grid index, if the fixings give it.
+    fn past_fixing(&self, asset: usize, idx: usize) -> Option<crate::fixings::Fixing> {
+        self.fixings?.get(&self.assets[asset].name, self.grid_date(idx))
     }
 
     fn initial(&mut self, asset: usize, span: Span, now: &Now) -> Option<V> {
@@ -1076,9 +1235,9 @@ impl<'p> Compiler<'p> {
             return None;
         }
         let idx = self.grid_index(self.start.0);
-        match (&self.initial_levels, idx) {
-            (Some(levels), 0) => Some(V::konst(levels[asset])),
-            _ => Some(self.level(asset, idx)),
+        match &self.initial_levels {
+            Some(levels) if idx == self.past => Some(V::konst(levels[asset])),
+            _ => self.level(asset, idx, span),
         }
     }
 
@@ -1203,13 +1362,13 @@ impl<'p> Compiler<'p> {
             }
             TKind::Level { asset, at } => {
                 let idx = self.read_index(*at, e.span, &now)?;
-                self.level(*asset, idx)
+                self.level(*asset, idx, e.span)?
             }
             TKind::Initial(asset) => self.initial(*asset, e.span, &now)?,
             TKind::Perf { asset, at } => {
                 let idx = self.read_index(*at, e.span, &now)?;
                 let init = self.initial(*asset, e.span, &now)?;
-                let level = self.level(*asset, idx);
+                let level = self.level(*asset, idx, e.span)?;
                 match init.src {
                     Src::Const(x) => self.push_bin(Bin::Mul, level, V::konst(1.0 / x)),
                     _ => self.push_bin(Bin::Div, level, init),
@@ -1222,7 +1381,10 @@ impl<'p> Compiler<'p> {
             }
             TKind::Aggregate(agg, body, s) => self.aggregate(*agg, body, *s, e.span, now)?,
             TKind::Touched { asset, direction, level, relative, from, to } => {
-                let m = self.monitor(*asset, *direction, *level, *relative, *from, *to, e.span, &now)?;
+                let m = match self.monitor(*asset, *direction, *level, *relative, *from, *to, e.span, &now)? {
+                    Watch::Past(touched) => return Some(V::konst(if touched { 1.0 } else { 0.0 })),
+                    Watch::Live(m) => m,
+                };
                 if let Some(v) = self.running_window(e, *to, m.from, m.to, Combine::Bin(Bin::Or), |from, to| {
                     Source::Monitor(Monitor { from, to, ..m })
                 }) {
@@ -1253,7 +1415,10 @@ impl<'p> Compiler<'p> {
     }
 
     /// The monitor of `touched(...)` over the window `from`..`to`, refusing windows that
-    /// run backwards, end after the block's date, or watch a relative barrier before the start.
+    /// run backwards, end after the block's date, or watch a relative barrier before the
+    /// start. The part of a window before the valuation date is decided from the fixings:
+    /// touched if a close, or a day's low (high) where given, is at or beyond the barrier;
+    /// between fixings nothing is assumed to have crossed.
     #[allow(clippy::too_many_arguments)]
     fn monitor(
         &mut self,
@@ -1265,7 +1430,7 @@ impl<'p> Compiler<'p> {
         to: DateRef,
         span: Span,
         now: &Now,
-    ) -> Option<Monitor> {
+    ) -> Option<Watch> {
         let a = self.resolve(from, span, Some(now))?;
         let b = self.resolve(to, span, Some(now))?;
         if b.0 < a.0 {
@@ -1292,7 +1457,53 @@ impl<'p> Compiler<'p> {
             );
             return None;
         }
-        Some(Monitor { asset, direction, level, relative, from: self.grid_index(a.0), to: self.grid_index(b.0) })
+        let (mut barrier, mut relative) = (level, relative);
+        if relative && self.grid_index(self.start.0) < self.past {
+            // Struck in the past: the barrier is a known level.
+            match self.initial(asset, span, now)?.src {
+                Src::Const(x) => (barrier, relative) = (barrier * x, false),
+                _ => {
+                    self.error(span, "the initial level of a past start is not known", "give its fixing");
+                    return None;
+                }
+            }
+        }
+        let mut a = a;
+        if a.0 < -TIME_EPS {
+            let (Some(first), true) = (a.1, !relative) else {
+                self.error(
+                    span,
+                    "a window that begins before the valuation date needs a calendar date and a known barrier level",
+                    "begin the window at a written date or at a start with a fixing",
+                );
+                return None;
+            };
+            let last = self.valuation.add_days(-1).unwrap_or(self.valuation);
+            let down = direction == Direction::Down;
+            let seen = self.fixings.map(|f| f.between(&self.assets[asset].name, first, last)).unwrap_or_default();
+            let touched = seen.iter().any(|(_, f)| {
+                if down {
+                    f.level.min(f.low.unwrap_or(f.level)) <= barrier
+                } else {
+                    f.level.max(f.high.unwrap_or(f.level)) >= barrier
+                }
+            });
+            if touched {
+                return Some(Watch::Past(true));
+            }
+            if b.0 < -TIME_EPS {
+                return Some(Watch::Past(false));
+            }
+            a = (0.0, Some(self.valuation));
+        }
+        Some(Watch::Live(Monitor {
+            asset,
+            direction,
+            level: barrier,
+            relative,
+            from: self.grid_index(a.0),
+            to: self.grid_index(b.0),
+        }))
     }
 
     /// The index of monitor `m`, the same barrier and window sharing one.
@@ -1351,6 +1562,14 @@ impl<'p> Compiler<'p> {
                 span,
                 format!("`{name}` of a performance cannot be watched before the start date, which it is relative to"),
                 "begin the window at `start` or later, or watch `level(X)`",
+            );
+            return None;
+        }
+        if a.0 < -TIME_EPS {
+            self.error(
+                span,
+                format!("`{name}` over a window that begins before the valuation date is not supported: the fixings give one close a day, not the path between them"),
+                "begin the window on or after the valuation date, or fold the past extreme in by hand with `max`/`min` of `level(X, DATE)` fixings",
             );
             return None;
         }

@@ -21,13 +21,17 @@
 //! ```
 
 pub mod batch;
+pub mod calendar;
 pub mod closed_form;
 pub mod commands;
 pub mod comparison;
 pub mod compile;
+pub mod curve;
 pub mod date;
 pub mod diagnostic;
+pub mod dynamics;
 pub mod files;
+pub mod fixings;
 pub mod ladder;
 pub mod market;
 pub mod output;

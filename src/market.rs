@@ -27,31 +27,81 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
+use crate::curve::{Curve, Pillar, Reading};
 use crate::date::Date;
 use crate::diagnostic::{closest, Diagnostic, Span};
 use crate::files::read_regular_file;
 
-/// One underlying's parameters, all finite: spot > 0, volatility in (0, 5].
+/// One underlying's parameters, all finite: spot > 0, volatilities in (0, 5] with a
+/// forward variance that never falls.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Underlying {
     /// The ISO 4217 code of the currency the underlying is quoted in.
     pub currency: String,
     pub spot: f64,
-    /// Annual lognormal volatility, as a fraction (0.18 for 18%).
-    pub volatility: f64,
-    /// Continuous dividend yield, as a fraction; may be negative.
-    pub dividend_yield: f64,
+    /// Annual lognormal implied volatility, as a fraction (0.18 for 18%): flat, or by maturity.
+    pub volatility: Curve,
+    /// Continuous dividend yield, as a fraction (may be negative): flat, or by maturity.
+    pub dividend_yield: Curve,
+    /// Discrete dividends, by ex-date (increasing; each date once).
+    pub dividends: Vec<Dividend>,
+    /// The correlation of the underlying with the price of its own currency in another
+    /// currency, keyed by that currency (for quanto pricing).
+    pub fx_correlations: BTreeMap<String, f64>,
+}
+
+impl Underlying {
+    /// An underlying on flat inputs, without discrete dividends or FX data.
+    pub fn flat(currency: &str, spot: f64, volatility: f64, dividend_yield: f64) -> Underlying {
+        Underlying {
+            currency: currency.to_string(),
+            spot,
+            volatility: Curve::Flat(volatility),
+            dividend_yield: Curve::Flat(dividend_yield),
+            dividends: Vec::new(),
+            fx_correlations: BTreeMap::new(),
+        }
+    }
+}
+
+/// A discrete dividend: the level goes ex on `date` (the level of that date is after it).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Dividend {
+    pub date: Date,
+    pub amount: DividendAmount,
+    pub span: Option<Span>,
+}
+
+/// What a discrete dividend takes off the level.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum DividendAmount {
+    /// A cash amount in the underlying's currency. Model: it is paid as the fraction
+    /// `amount / F(t⁻)` of the level, `F(t⁻)` the forward just before the ex-date, so the
+    /// forward drops by exactly the amount and the level stays lognormal.
+    Cash(f64),
+    /// A fraction of the level, in (0, 1): exact under lognormal dynamics.
+    Fraction(f64),
 }
 
 /// Validated market data. Once built, every number in it is usable as is.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Market {
     pub valuation_date: Date,
-    rates: BTreeMap<String, f64>,
+    rates: BTreeMap<String, Curve>,
+    /// Volatilities of exchange rates: `(A, B)` is the price of one A in B.
+    fx_volatilities: BTreeMap<(String, String), f64>,
     /// In file order, so reports list names as the user wrote them.
     underlyings: Vec<(String, Underlying)>,
     /// Keyed by the pair in sorted order, so either order finds it.
     correlations: BTreeMap<(String, String), Given>,
+    /// The fixings of past dates, from the file the market names (`fixings = "..."`,
+    /// relative to the market file); read by [`Market::load`].
+    pub fixings: Option<crate::fixings::Fixings>,
+    /// The fixings file as written, and where.
+    fixings_name: Option<(String, Option<Span>)>,
+    /// Holiday calendars, from the file the market names (`calendars = "..."`).
+    pub calendars: Option<crate::calendar::Calendars>,
+    calendars_name: Option<(String, Option<Span>)>,
     /// Names that have their own line under `[correlations]`, with the span of the name:
     /// a missing pair is best added to an existing line (a second line would be a TOML
     /// duplicate key).
@@ -81,7 +131,30 @@ impl Market {
                 .with_fix("check that the path is right and the file is readable")
                 .in_file(path)]
         })?;
-        Market::from_toml(&text, path)
+        let mut market = Market::from_toml(&text, path)?;
+        if let Some((name, span)) = market.fixings_name.clone() {
+            let file = path.parent().unwrap_or(Path::new(".")).join(&name);
+            if !file.is_file() {
+                let mut d = Diagnostic::new(format!("the fixings file {} named here does not exist", file.display()))
+                    .with_fix("write the path relative to the market file, e.g. fixings = \"fixings.csv\"")
+                    .in_file(path);
+                d.span = span;
+                return Err(vec![d]);
+            }
+            market.fixings = Some(crate::fixings::Fixings::load(&file)?);
+        }
+        if let Some((name, span)) = market.calendars_name.clone() {
+            let file = path.parent().unwrap_or(Path::new(".")).join(&name);
+            if !file.is_file() {
+                let mut d = Diagnostic::new(format!("the calendars file {} named here does not exist", file.display()))
+                    .with_fix("write the path relative to the market file, e.g. calendars = \"holidays.csv\"")
+                    .in_file(path);
+                d.span = span;
+                return Err(vec![d]);
+            }
+            market.calendars = Some(crate::calendar::Calendars::load(&file)?);
+        }
+        Ok(market)
     }
 
     /// Validates market data given as TOML text; `file` is only used to label errors.
@@ -99,7 +172,7 @@ impl Market {
                     .in_file(file)]);
             }
         };
-        let mut reader = Reader { file, errors: Vec::new() };
+        let mut reader = Reader { file, errors: Vec::new(), valuation: None };
         let market = reader.market(root);
         // In file order; errors without a place (a missing key) last.
         reader.errors.sort_by_key(|d| d.span.map_or(usize::MAX, |s| s.start));
@@ -109,9 +182,17 @@ impl Market {
         }
     }
 
-    /// The flat, continuously compounded rate for an ISO 4217 currency code.
-    pub fn rate(&self, currency: &str) -> Option<f64> {
-        self.rates.get(currency).copied()
+    /// The continuously compounded zero-rate curve of an ISO 4217 currency code.
+    pub fn rate(&self, currency: &str) -> Option<&Curve> {
+        self.rates.get(currency)
+    }
+
+    /// The volatility of the price of one `of` in `in_` (the same as of its inverse).
+    pub fn fx_volatility(&self, of: &str, in_: &str) -> Option<f64> {
+        self.fx_volatilities
+            .get(&(of.to_string(), in_.to_string()))
+            .or_else(|| self.fx_volatilities.get(&(in_.to_string(), of.to_string())))
+            .copied()
     }
 
     pub fn underlying(&self, name: &str) -> Option<&Underlying> {
@@ -149,8 +230,13 @@ impl Market {
         if !(u.spot.is_finite() && u.spot > 0.0) {
             return Err(format!("the bumped spot of `{name}` is not positive"));
         }
-        if !(u.volatility.is_finite() && u.volatility > 0.0 && u.volatility <= MAX_VOLATILITY) {
+        if !u.volatility.values().iter().all(|v| v.is_finite() && *v > 0.0 && *v <= MAX_VOLATILITY) {
             return Err(format!("the bumped volatility of `{name}` is outside (0, {MAX_VOLATILITY}]"));
+        }
+        if let Some((a, b)) = falling_variance(&u.volatility, m.valuation_date) {
+            return Err(format!(
+                "the bumped volatilities of `{name}` imply a negative forward variance between {a} and {b}"
+            ));
         }
         Ok(m)
     }
@@ -162,19 +248,19 @@ impl Market {
 
     /// A copy with `name`'s volatility moved by `shift` (0.01 for one volatility point).
     pub fn with_volatility_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
-        self.bumped_underlying(name, |u| u.volatility += shift)
+        self.bumped_underlying(name, |u| u.volatility = u.volatility.shifted(shift))
     }
 
     /// A copy with `name`'s dividend yield moved by `shift` (0.0001 for one basis point).
     pub fn with_dividend_shifted(&self, name: &str, shift: f64) -> Result<Market, String> {
-        self.bumped_underlying(name, |u| u.dividend_yield += shift)
+        self.bumped_underlying(name, |u| u.dividend_yield = u.dividend_yield.shifted(shift))
     }
 
     /// A copy with every rate moved by `shift` (0.0001 for one basis point).
     pub fn with_rates_shifted(&self, shift: f64) -> Market {
         let mut m = self.clone();
         for r in m.rates.values_mut() {
-            *r += shift;
+            *r = r.shifted(shift);
         }
         m
     }
@@ -367,13 +453,51 @@ fn list_or_none(names: &[&str]) -> String {
 // ---------------------------------------------------------------------------------------
 // Validation: from the spanned TOML tree to a `Market`, collecting every problem.
 
-const TOP_KEYS: &[&str] = &["valuation_date", "rates", "underlyings", "correlations"];
-const UNDERLYING_KEYS: &[&str] = &["currency", "spot", "volatility", "dividend_yield"];
+const TOP_KEYS: &[&str] =
+    &["valuation_date", "fixings", "calendars", "rates", "underlyings", "correlations", "fx_volatilities"];
+const UNDERLYING_KEYS: &[&str] =
+    &["currency", "spot", "volatility", "dividend_yield", "cash_dividends", "proportional_dividends", "fx_correlation"];
 
 struct Reader<'a> {
     file: &'a Path,
     errors: Vec<Diagnostic>,
+    /// The valuation date, once read: tenors count from it.
+    valuation: Option<Date>,
 }
+
+/// The first pair of volatility pillars (earlier, later) between which the total variance
+/// `σ²T` falls, which no positive forward variance can give.
+pub fn falling_variance(curve: &Curve, valuation: Date) -> Option<(String, String)> {
+    let Curve::Pillars(pillars) = curve else { return None };
+    let ahead: Vec<&Pillar> = pillars.iter().filter(|p| p.date > valuation).collect();
+    ahead.windows(2).find_map(|w| {
+        let total = |p: &Pillar| p.value * p.value * valuation.years_until(p.date);
+        (total(w[1]) < total(w[0])).then(|| (w[0].label.clone(), w[1].label.clone()))
+    })
+}
+
+/// The date of a pillar written as a tenor (`10d`, `2w`, `6m`, `1y`) from `valuation`,
+/// or as an ISO date; `None` if it is neither.
+fn pillar_date(text: &str, valuation: Date) -> Option<Date> {
+    if let Some(d) = Date::parse(text) {
+        return Some(d);
+    }
+    let unit = text.chars().last()?;
+    let count: i64 = text[..text.len() - 1].parse().ok().filter(|n: &i64| *n > 0 && *n <= 2400)?;
+    if !text[..text.len() - 1].bytes().all(|b| b.is_ascii_digit()) {
+        return None;
+    }
+    match unit {
+        'd' => valuation.add_days(count),
+        'w' => valuation.add_days(7 * count),
+        'm' => valuation.add_months(count),
+        'y' => valuation.add_months(12 * count),
+        _ => None,
+    }
+}
+
+/// What a value of a curve must satisfy: `None`, or the message and the fix.
+type Check<'c> = &'c dyn Fn(f64, &str, &str) -> Option<(String, String)>;
 
 impl Reader<'_> {
     fn error(&mut self, span: Option<Span>, message: String, fix: String) {
@@ -455,6 +579,8 @@ impl Reader<'_> {
             }
         }
 
+        let valuation_date = sections.get("valuation_date").and_then(|node| self.valuation_date(node));
+        self.valuation = valuation_date;
         let rates = sections.get("rates").map(|node| self.rates(node)).unwrap_or_default();
         let (underlyings, declared) = match sections.get("underlyings") {
             Some(node) => self.underlyings(node),
@@ -464,8 +590,25 @@ impl Reader<'_> {
             Some(node) => self.correlations(node, &declared),
             None => (BTreeMap::new(), BTreeMap::new()),
         };
+        let fx_volatilities =
+            sections.get("fx_volatilities").map(|node| self.fx_volatilities(node)).unwrap_or_default();
+        let mut file_name = |key: &str, example: &str| {
+            sections.get(key).and_then(|node| match &node.kind {
+                Kind::String(name) if !name.trim().is_empty() => Some((name.clone(), node.span)),
+                other => {
+                    self.error(
+                        node.span,
+                        format!("{key} must be the name of a file in quotes (got {})", other.describe()),
+                        format!("write for example {key} = \"{example}\" (relative to the market file)"),
+                    );
+                    None
+                }
+            })
+        };
+        let fixings_name = file_name("fixings", "fixings.csv");
+        let calendars_name = file_name("calendars", "holidays.csv");
         let valuation_date = match sections.get("valuation_date") {
-            Some(node) => self.valuation_date(node),
+            Some(_) => valuation_date,
             None => {
                 // A date written below a [section] header is reported there instead
                 // (so the sections are read first).
@@ -481,7 +624,18 @@ impl Reader<'_> {
                 None
             }
         };
-        Some(Market { valuation_date: valuation_date?, rates, underlyings, correlations, correlation_rows })
+        Some(Market {
+            valuation_date: valuation_date?,
+            rates,
+            fx_volatilities,
+            fixings: None,
+            fixings_name,
+            calendars: None,
+            calendars_name,
+            underlyings,
+            correlations,
+            correlation_rows,
+        })
     }
 
     fn valuation_date(&mut self, node: &Node) -> Option<Date> {
@@ -512,7 +666,7 @@ impl Reader<'_> {
         None
     }
 
-    fn rates(&mut self, node: &Node) -> BTreeMap<String, f64> {
+    fn rates(&mut self, node: &Node) -> BTreeMap<String, Curve> {
         let mut rates = BTreeMap::new();
         let Some(entries) = self.table(node, "rates", "[rates] with lines like `USD = 0.038`") else {
             return rates;
@@ -533,15 +687,13 @@ impl Reader<'_> {
                 self.error(key.span, format!("`{code}` in [rates] is not an ISO 4217 currency code"), fix);
                 continue;
             }
-            let Some(rate) = self.number(value, &path, code) else {
-                continue;
+            let check = |rate: f64, path: &str, key: &str| {
+                (rate.abs() > 1.0)
+                    .then(|| (format!("{path} must be between -1 and 1 (got {})", show(rate)), percent_fix(key, rate)))
             };
-            if rate.abs() > 1.0 {
-                let message = format!("{path} must be between -1 and 1 (got {})", show(rate));
-                self.error(value.span, message, percent_fix(code, rate));
-                continue;
+            if let Some(curve) = self.curve(value, &path, code, &check, Reading::Rate) {
+                rates.insert(code.clone(), curve);
             }
-            rates.insert(code.clone(), rate);
         }
         rates
     }
@@ -576,63 +728,79 @@ impl Reader<'_> {
         let name = &key.name;
         let example = format!("[underlyings.{name}] with currency, spot, volatility and dividend_yield lines");
         let entries = self.table(node, &format!("underlyings.{name}"), &example)?;
-        let (mut spot, mut volatility, mut dividend_yield) = (None, None, Some(0.0));
+        let mut spot = None;
+        let mut volatility = None;
+        let mut dividend_yield = Some(Curve::Flat(0.0));
         let mut currency = None;
+        let mut dividends = Vec::new();
+        let mut fx_correlations = BTreeMap::new();
         let mut broken = false;
         // A misspelt key is already reported; don't report its field as missing too.
         let mut misspelt = Vec::new();
         for (field, value) in entries {
             let path = format!("underlyings.{name}.{}", field.name);
-            if field.name == "currency" {
-                match self.currency(value, &path) {
+            match field.name.as_str() {
+                "currency" => match self.currency(value, &path) {
                     Some(code) => currency = Some(code),
                     None => broken = true,
+                },
+                "spot" => {
+                    spot = self.number(value, &path, "spot");
+                    if let Some(x) = spot.filter(|x| *x <= 0.0) {
+                        let message = format!("{path} must be greater than 0 (got {})", show(x));
+                        self.error(value.span, message, "a spot price is positive".into());
+                        spot = None;
+                    }
+                    broken |= spot.is_none();
                 }
-                continue;
-            }
-            let slot = match field.name.as_str() {
-                "spot" => &mut spot,
-                "volatility" => &mut volatility,
-                "dividend_yield" => &mut dividend_yield,
+                "volatility" => {
+                    let check = |x: f64, path: &str, _: &str| {
+                        if x <= 0.0 {
+                            Some((
+                                format!("{path} must be greater than 0 (got {})", show(x)),
+                                "write the annual volatility as a positive fraction, e.g. volatility = 0.25 for 25%"
+                                    .to_string(),
+                            ))
+                        } else if x > MAX_VOLATILITY {
+                            Some((
+                                format!(
+                                    "{path} must be at most {MAX_VOLATILITY} (got {}); it looks like a percentage",
+                                    show(x)
+                                ),
+                                percent_fix("volatility", x),
+                            ))
+                        } else {
+                            None
+                        }
+                    };
+                    volatility = self.curve(value, &path, "volatility", &check, Reading::Volatility);
+                    broken |= volatility.is_none();
+                }
+                "dividend_yield" => {
+                    let check = |x: f64, path: &str, _: &str| {
+                        (x.abs() > 1.0).then(|| {
+                            (
+                                format!(
+                                    "{path} must be between -1 and 1 (got {}); it looks like a percentage",
+                                    show(x)
+                                ),
+                                percent_fix("dividend_yield", x),
+                            )
+                        })
+                    };
+                    dividend_yield = self.curve(value, &path, "dividend_yield", &check, Reading::Rate);
+                    broken |= dividend_yield.is_none();
+                }
+                "cash_dividends" | "proportional_dividends" => {
+                    broken |= !self.dividends(value, &path, field.name == "cash_dividends", &mut dividends);
+                }
+                "fx_correlation" => broken |= !self.fx_correlation(value, &path, &mut fx_correlations),
                 _ => {
                     if let Some(near) = self.unknown_key(field, &format!("[underlyings.{name}]"), UNDERLYING_KEYS) {
                         misspelt.push(near);
                     }
                     broken = true;
-                    continue;
                 }
-            };
-            let Some(x) = self.number(value, &path, &field.name) else {
-                broken = true;
-                *slot = None;
-                continue;
-            };
-            let problem = match field.name.as_str() {
-                "spot" if x <= 0.0 => Some((
-                    format!("{path} must be greater than 0 (got {})", show(x)),
-                    "a spot price is positive".to_string(),
-                )),
-                "volatility" if x <= 0.0 => Some((
-                    format!("{path} must be greater than 0 (got {})", show(x)),
-                    "write the annual volatility as a positive fraction, e.g. volatility = 0.25 for 25%".to_string(),
-                )),
-                "volatility" if x > MAX_VOLATILITY => Some((
-                    format!("{path} must be at most {MAX_VOLATILITY} (got {}); it looks like a percentage", show(x)),
-                    percent_fix("volatility", x),
-                )),
-                "dividend_yield" if x.abs() > 1.0 => Some((
-                    format!("{path} must be between -1 and 1 (got {}); it looks like a percentage", show(x)),
-                    percent_fix("dividend_yield", x),
-                )),
-                _ => None,
-            };
-            match problem {
-                Some((message, fix)) => {
-                    self.error(value.span, message, fix);
-                    broken = true;
-                    *slot = None;
-                }
-                None => *slot = Some(x),
             }
         }
         let given = [
@@ -651,10 +819,267 @@ impl Reader<'_> {
                 broken = true;
             }
         }
+        let currency = currency?;
+        if let Some((other, span)) =
+            fx_correlations.iter().find(|(c, _)| **c == currency).map(|(c, g)| (c.clone(), g.1))
+        {
+            self.error(
+                span,
+                format!("underlyings.{name}.fx_correlation.{other} names the underlying's own currency"),
+                format!("give the correlation with the price of {currency} in another currency (the payoff's), e.g. fx_correlation = {{ EUR = -0.2 }}"),
+            );
+            broken = true;
+        }
+        dividends.sort_by_key(|d: &Dividend| d.date);
+        for w in dividends.windows(2) {
+            if w[0].date == w[1].date {
+                self.error(
+                    w[1].span,
+                    format!("underlyings.{name} has two dividends going ex on {}", w[0].date),
+                    "give one dividend per ex-date: add the amounts, or remove one".into(),
+                );
+                broken = true;
+            }
+        }
         if broken {
             return None;
         }
-        Some(Underlying { currency: currency?, spot: spot?, volatility: volatility?, dividend_yield: dividend_yield? })
+        Some(Underlying {
+            currency,
+            spot: spot?,
+            volatility: volatility?,
+            dividend_yield: dividend_yield?,
+            dividends,
+            fx_correlations: fx_correlations.into_iter().map(|(c, (x, _))| (c, x)).collect(),
+        })
+    }
+
+    /// A curve: one number, or a table of pillars (`6m = 0.2`, `2028-06-01 = 0.21`), each
+    /// value checked by `check`; volatility pillars must not imply a negative forward variance.
+    fn curve(&mut self, node: &Node, path: &str, key: &str, check: Check<'_>, reading: Reading) -> Option<Curve> {
+        let Kind::Table(entries) = &node.kind else {
+            let x = self.number(node, path, key)?;
+            if let Some((message, fix)) = check(x, path, key) {
+                self.error(node.span, message, fix);
+                return None;
+            }
+            return Some(Curve::Flat(x));
+        };
+        if entries.is_empty() {
+            self.error(
+                node.span,
+                format!("{path} has no pillars"),
+                format!("write one number, e.g. {key} = 0.2, or pillars, e.g. {key} = {{ 6m = 0.21, 1y = 0.2 }}"),
+            );
+            return None;
+        }
+        let mut pillars: Vec<Pillar> = Vec::new();
+        let mut ok = true;
+        for (pillar, value) in entries {
+            let at = format!("{path}.{}", pillar.name);
+            let date = match self.valuation {
+                Some(valuation) => match pillar_date(&pillar.name, valuation) {
+                    Some(d) if d > valuation => Some(d),
+                    Some(_) => {
+                        self.error(
+                            pillar.span,
+                            format!("the pillar {} of {path} is not after the valuation date {valuation}", pillar.name),
+                            "give pillars after the valuation date (a tenor such as 6m, or a later date)".into(),
+                        );
+                        ok = false;
+                        None
+                    }
+                    None => {
+                        self.error(
+                            pillar.span,
+                            format!("`{}` in {path} is neither a tenor nor a date", pillar.name),
+                            "write a tenor as a count and d, w, m or y (10d, 2w, 6m, 5y) or a date as YYYY-MM-DD"
+                                .into(),
+                        );
+                        ok = false;
+                        None
+                    }
+                },
+                // Without a valuation date (reported elsewhere) tenors cannot be placed.
+                None => {
+                    ok = false;
+                    None
+                }
+            };
+            let Some(x) = self.number(value, &at, &pillar.name) else {
+                ok = false;
+                continue;
+            };
+            if let Some((message, fix)) = check(x, &at, &pillar.name) {
+                self.error(value.span, message, fix);
+                ok = false;
+                continue;
+            }
+            if let Some(date) = date {
+                if let Some(same) = pillars.iter().find(|p| p.date == date) {
+                    self.error(
+                        pillar.span,
+                        format!(
+                            "the pillars {} and {} of {path} fall on the same date {date}",
+                            same.label, pillar.name
+                        ),
+                        "give each maturity once".into(),
+                    );
+                    ok = false;
+                    continue;
+                }
+                pillars.push(Pillar { date, label: pillar.name.clone(), value: x, span: value.span });
+            }
+        }
+        if !ok {
+            return None;
+        }
+        pillars.sort_by_key(|p| p.date);
+        let curve = Curve::Pillars(pillars);
+        if let (Reading::Volatility, Some(valuation)) = (reading, self.valuation) {
+            if let Some((a, b)) = falling_variance(&curve, valuation) {
+                let span = match &curve {
+                    Curve::Pillars(p) => p.iter().find(|p| p.label == b).and_then(|p| p.span),
+                    Curve::Flat(_) => None,
+                };
+                self.error(
+                    span,
+                    format!("{path} implies a negative forward variance between the pillars {a} and {b}: the total variance σ²T falls"),
+                    format!("raise the volatility at {b} or lower it at {a}, so that σ²T grows with the maturity"),
+                );
+                return None;
+            }
+        }
+        Some(curve)
+    }
+
+    /// Discrete dividends `{ 2027-03-15 = 0.85, ... }` into `out`; false if any is wrong.
+    fn dividends(&mut self, node: &Node, path: &str, cash: bool, out: &mut Vec<Dividend>) -> bool {
+        let example = if cash {
+            "cash_dividends = { 2027-03-15 = 0.85 }"
+        } else {
+            "proportional_dividends = { 2027-03-15 = 0.01 }"
+        };
+        let Some(entries) = self.table(node, path, example) else { return false };
+        let mut ok = true;
+        for (key, value) in entries {
+            let at = format!("{path}.{}", key.name);
+            let Some(date) = Date::parse(&key.name) else {
+                self.error(
+                    key.span,
+                    format!("`{}` in {path} is not an ex-date", key.name),
+                    format!("key each dividend by its ex-date as YYYY-MM-DD, e.g. {example}"),
+                );
+                ok = false;
+                continue;
+            };
+            let Some(x) = self.number(value, &at, &key.name) else {
+                ok = false;
+                continue;
+            };
+            let problem = if cash {
+                (x <= 0.0).then(|| {
+                    (
+                        format!("{at} must be greater than 0 (got {})", show(x)),
+                        "a cash dividend is a positive amount in the underlying's currency".to_string(),
+                    )
+                })
+            } else if x <= 0.0 || x >= 1.0 {
+                let fix = if (1.0..100.0).contains(&x) {
+                    percent_fix(&key.name, x)
+                } else {
+                    "a proportional dividend is a fraction of the level between 0 and 1, e.g. 0.012 for 1.2%"
+                        .to_string()
+                };
+                Some((format!("{at} must be between 0 and 1, both excluded (got {})", show(x)), fix))
+            } else {
+                None
+            };
+            if let Some((message, fix)) = problem {
+                self.error(value.span, message, fix);
+                ok = false;
+                continue;
+            }
+            let amount = if cash { DividendAmount::Cash(x) } else { DividendAmount::Fraction(x) };
+            out.push(Dividend { date, amount, span: key.span });
+        }
+        ok
+    }
+
+    /// `fx_correlation = { USD = -0.3 }` into `out`; false if any entry is wrong.
+    fn fx_correlation(&mut self, node: &Node, path: &str, out: &mut BTreeMap<String, (f64, Option<Span>)>) -> bool {
+        let Some(entries) = self.table(node, path, "fx_correlation = { USD = -0.3 }") else { return false };
+        let mut ok = true;
+        for (key, value) in entries {
+            let at = format!("{path}.{}", key.name);
+            if !is_currency(&key.name) {
+                self.error(
+                    key.span,
+                    format!("`{}` in {path} is not an ISO 4217 currency code", key.name),
+                    "key the correlation by the three-letter code of the other currency, e.g. USD".into(),
+                );
+                ok = false;
+                continue;
+            }
+            let Some(rho) = self.number(value, &at, &key.name) else {
+                ok = false;
+                continue;
+            };
+            if !(-1.0..=1.0).contains(&rho) {
+                self.error(
+                    value.span,
+                    format!("{at} must be between -1 and 1 (got {})", show(rho)),
+                    "a correlation lies between -1 and 1; -0.30 means -30%".into(),
+                );
+                ok = false;
+                continue;
+            }
+            out.insert(key.name.clone(), (rho, key.span));
+        }
+        ok
+    }
+
+    /// `[fx_volatilities]` with lines `EUR_USD = 0.085` (the price of one EUR in USD).
+    fn fx_volatilities(&mut self, node: &Node) -> BTreeMap<(String, String), f64> {
+        let mut out = BTreeMap::new();
+        let Some(entries) = self.table(node, "fx_volatilities", "[fx_volatilities] with lines like `EUR_USD = 0.085`")
+        else {
+            return out;
+        };
+        for (key, value) in entries {
+            let path = format!("fx_volatilities.{}", key.name);
+            let pair = key.name.split_once('_').filter(|(a, b)| is_currency(a) && is_currency(b) && a != b);
+            let Some((a, b)) = pair else {
+                self.error(
+                    key.span,
+                    format!("`{}` in [fx_volatilities] is not a currency pair", key.name),
+                    "write two different ISO 4217 codes joined by _, e.g. EUR_USD for the price of one EUR in USD"
+                        .into(),
+                );
+                continue;
+            };
+            let Some(x) = self.number(value, &path, &key.name) else { continue };
+            if x <= 0.0 || x > MAX_VOLATILITY {
+                let fix = if x > MAX_VOLATILITY {
+                    percent_fix(&key.name, x)
+                } else {
+                    "an FX volatility is a positive fraction, e.g. 0.085 for 8.5%".to_string()
+                };
+                self.error(value.span, format!("{path} must be in (0, {MAX_VOLATILITY}] (got {})", show(x)), fix);
+                continue;
+            }
+            let inverse = (b.to_string(), a.to_string());
+            if out.contains_key(&inverse) {
+                self.error(
+                    key.span,
+                    format!("the volatility of {a} against {b} is given twice ({b}_{a} too)"),
+                    "give each pair once: the volatility of a rate and of its inverse are the same".into(),
+                );
+                continue;
+            }
+            out.insert((a.to_string(), b.to_string()), x);
+        }
+        out
     }
 
     /// The ISO 4217 code of an underlying's `currency = "USD"`, or `None` with an error.
@@ -765,6 +1190,11 @@ impl Reader<'_> {
         self.error(key.span, format!("{path} names `{}`, which is not under [underlyings]", key.name), fix);
         false
     }
+}
+
+/// A three-letter ISO 4217 code in capitals.
+fn is_currency(code: &str) -> bool {
+    code.len() == 3 && code.bytes().all(|b| b.is_ascii_uppercase())
 }
 
 /// Names as the payoff language writes them: a letter or `_`, then letters, digits or `_`.
@@ -952,25 +1382,13 @@ VNTL = { OSMP = 0.50 }
     fn reads_the_demo_market() {
         let m = Market::from_toml(DEMO, file()).unwrap();
         assert_eq!(m.valuation_date, Date::parse("2026-12-01").unwrap());
-        assert_eq!(m.rate("USD"), Some(0.038));
+        assert_eq!(m.rate("USD"), Some(&Curve::Flat(0.038)));
         assert_eq!(m.rate("EUR"), None);
         assert_eq!(m.underlying_names().collect::<Vec<_>>(), ["ZPHX", "QMEN", "OSMP", "VNTL"]);
-        assert_eq!(
-            m.underlying("ZPHX"),
-            Some(&Underlying { currency: "USD".into(), spot: 4250.0, volatility: 0.18, dividend_yield: 0.019 })
-        );
-        assert_eq!(
-            m.underlying("QMEN"),
-            Some(&Underlying { currency: "USD".into(), spot: 38.40, volatility: 0.32, dividend_yield: 0.031 })
-        );
-        assert_eq!(
-            m.underlying("OSMP"),
-            Some(&Underlying { currency: "USD".into(), spot: 112.0, volatility: 0.26, dividend_yield: 0.012 })
-        );
-        assert_eq!(
-            m.underlying("VNTL"),
-            Some(&Underlying { currency: "USD".into(), spot: 57.25, volatility: 0.29, dividend_yield: 0.0 })
-        );
+        assert_eq!(m.underlying("ZPHX"), Some(&Underlying::flat("USD", 4250.0, 0.18, 0.019)));
+        assert_eq!(m.underlying("QMEN"), Some(&Underlying::flat("USD", 38.40, 0.32, 0.031)));
+        assert_eq!(m.underlying("OSMP"), Some(&Underlying::flat("USD", 112.0, 0.26, 0.012)));
+        assert_eq!(m.underlying("VNTL"), Some(&Underlying::flat("USD", 57.25, 0.29, 0.0)));
         assert_eq!(m.correlation("ZPHX", "QMEN"), Some(0.55));
         assert_eq!(m.correlation("QMEN", "ZPHX"), Some(0.55));
         assert_eq!(m.correlation("OSMP", "VNTL"), Some(0.50));
@@ -1043,7 +1461,7 @@ VNTL = { OSMP = 0.50 }
     #[test]
     fn negative_dividend_yield_is_allowed() {
         let m = Market::from_toml(&demo_with("dividend_yield = 0.031", "dividend_yield = -0.004"), file()).unwrap();
-        assert_eq!(m.underlying("QMEN").unwrap().dividend_yield, -0.004);
+        assert_eq!(m.underlying("QMEN").unwrap().dividend_yield, Curve::Flat(-0.004));
     }
 
     #[test]
@@ -1052,7 +1470,7 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(d.message, "unknown key `volatilty` in [underlyings.QMEN]");
         assert_eq!(
             d.fix.unwrap(),
-            "did you mean `volatility`? allowed keys: currency, spot, volatility, dividend_yield"
+            "did you mean `volatility`? allowed keys: currency, spot, volatility, dividend_yield, cash_dividends, proportional_dividends, fx_correlation"
         );
         assert_eq!(at, "volatilty");
 
@@ -1101,6 +1519,105 @@ VNTL = { OSMP = 0.50 }
         let errs = Market::load(missing).unwrap_err();
         assert!(errs[0].message.starts_with("cannot read the market file"));
         assert_eq!(errs[0].file.as_deref(), Some(missing));
+    }
+
+    #[test]
+    fn reads_curves_by_tenor_or_date_in_date_order() {
+        let text = demo_with("USD = 0.038", "USD = { 2y = 0.04, 6m = 0.036, 2027-12-01 = 0.038 }\nEUR = 0.02")
+            .replace("volatility = 0.32", "volatility = { 1y = 0.30, 3y = 0.28 }");
+        let m = Market::from_toml(&text, file()).unwrap();
+        let Some(Curve::Pillars(p)) = m.rate("USD") else { panic!("a USD curve") };
+        let dates: Vec<String> = p.iter().map(|p| p.date.to_string()).collect();
+        assert_eq!(dates, ["2027-06-01", "2027-12-01", "2028-12-01"]);
+        assert_eq!(p.iter().map(|p| p.label.as_str()).collect::<Vec<_>>(), ["6m", "2027-12-01", "2y"]);
+        assert_eq!(m.rate("EUR"), Some(&Curve::Flat(0.02)));
+        let Curve::Pillars(v) = &m.underlying("QMEN").unwrap().volatility else { panic!("a volatility curve") };
+        assert_eq!(v.iter().map(|p| p.value).collect::<Vec<_>>(), [0.30, 0.28]);
+        // A bump moves every pillar and keeps the forward variance checked.
+        let down = m.with_volatility_shifted("QMEN", -0.29);
+        assert!(down.is_err(), "0.01 at 1y is fine but the bump leaves -0.01 at 3y");
+    }
+
+    #[test]
+    fn refuses_bad_pillars_at_their_place() {
+        let (d, at) = only_error(&demo_with("USD = 0.038", "USD = { 6q = 0.036 }"));
+        assert_eq!(d.message, "`6q` in rates.USD is neither a tenor nor a date");
+        assert_eq!(at, "6q");
+
+        let (d, at) = only_error(&demo_with("USD = 0.038", "USD = { 2026-11-01 = 0.036 }"));
+        assert_eq!(d.message, "the pillar 2026-11-01 of rates.USD is not after the valuation date 2026-12-01");
+        assert_eq!(at, "2026-11-01");
+
+        let (d, at) = only_error(&demo_with("USD = 0.038", "USD = { 1y = 0.03, 12m = 0.031 }"));
+        assert_eq!(d.message, "the pillars 1y and 12m of rates.USD fall on the same date 2027-12-01");
+        assert_eq!(at, "12m");
+
+        let (d, at) = only_error(&demo_with("USD = 0.038", "USD = { 1y = 3.8 }"));
+        assert_eq!(d.message, "rates.USD.1y must be between -1 and 1 (got 3.8)");
+        assert_eq!(at, "3.8");
+
+        let (d, at) = only_error(&demo_with("volatility = 0.32", "volatility = { 1y = 0.30, 2y = 0.20 }"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.volatility implies a negative forward variance between the pillars 1y and 2y: the total variance σ²T falls"
+        );
+        assert_eq!(d.fix.unwrap(), "raise the volatility at 2y or lower it at 1y, so that σ²T grows with the maturity");
+        assert_eq!(at, "0.20");
+
+        let (d, _) = only_error(&demo_with("volatility = 0.32", "volatility = {}"));
+        assert_eq!(d.message, "underlyings.QMEN.volatility has no pillars");
+    }
+
+    #[test]
+    fn reads_and_checks_discrete_dividends() {
+        let text = demo_with(
+            "dividend_yield = 0.031",
+            "cash_dividends = { 2027-03-15 = 0.40 }\nproportional_dividends = { 2027-01-15 = 0.01 }",
+        );
+        let m = Market::from_toml(&text, file()).unwrap();
+        let d = &m.underlying("QMEN").unwrap().dividends;
+        assert_eq!(d.len(), 2);
+        assert_eq!(d[0].amount, DividendAmount::Fraction(0.01), "sorted by ex-date");
+        assert_eq!(d[1].amount, DividendAmount::Cash(0.40));
+
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "proportional_dividends = { 2027-01-15 = 1.5 }"));
+        assert_eq!(
+            d.message,
+            "underlyings.QMEN.proportional_dividends.2027-01-15 must be between 0 and 1, both excluded (got 1.5)"
+        );
+        assert_eq!(at, "1.5");
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "cash_dividends = { 2027-01-15 = -1 }"));
+        assert_eq!(d.message, "underlyings.QMEN.cash_dividends.2027-01-15 must be greater than 0 (got -1)");
+        assert_eq!(at, "-1");
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "cash_dividends = { 3m = 0.4 }"));
+        assert_eq!(d.message, "`3m` in underlyings.QMEN.cash_dividends is not an ex-date");
+        assert_eq!(at, "3m");
+        let both = "cash_dividends = { 2027-01-15 = 0.4 }\nproportional_dividends = { 2027-01-15 = 0.01 }";
+        let (d, _) = only_error(&demo_with("dividend_yield = 0.031", both));
+        assert_eq!(d.message, "underlyings.QMEN has two dividends going ex on 2027-01-15");
+    }
+
+    #[test]
+    fn reads_and_checks_fx_inputs() {
+        let text = demo_with("[correlations]", "[fx_volatilities]\nEUR_USD = 0.09\n\n[correlations]")
+            .replace("dividend_yield = 0.031", "fx_correlation = { EUR = -0.3 }");
+        let m = Market::from_toml(&text, file()).unwrap();
+        assert_eq!(m.fx_volatility("EUR", "USD"), Some(0.09));
+        assert_eq!(m.fx_volatility("USD", "EUR"), Some(0.09), "the inverse has the same volatility");
+        assert_eq!(m.underlying("QMEN").unwrap().fx_correlations.get("EUR"), Some(&-0.3));
+
+        let (d, at) = only_error(&demo_with("[correlations]", "[fx_volatilities]\nEURUSD = 0.09\n[correlations]"));
+        assert_eq!(d.message, "`EURUSD` in [fx_volatilities] is not a currency pair");
+        assert_eq!(at, "EURUSD");
+        let (d, at) = only_error(&demo_with("[correlations]", "[fx_volatilities]\nEUR_USD = 9\n[correlations]"));
+        assert_eq!(d.message, "fx_volatilities.EUR_USD must be in (0, 5] (got 9)");
+        assert_eq!(at, "9");
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "fx_correlation = { USD = 0.2 }"));
+        assert_eq!(d.message, "underlyings.QMEN.fx_correlation.USD names the underlying's own currency");
+        assert_eq!(at, "USD");
+        let (d, at) = only_error(&demo_with("dividend_yield = 0.031", "fx_correlation = { EUR = -1.2 }"));
+        assert_eq!(d.message, "underlyings.QMEN.fx_correlation.EUR must be between -1 and 1 (got -1.2)");
+        assert_eq!(at, "-1.2");
     }
 
     #[test]
@@ -1240,7 +1757,7 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(up.underlying("QMEN"), m.underlying("QMEN"));
         assert!(m.with_spot_scaled("NONE", 1.01).is_err());
         assert!(m.with_volatility_shifted("ZPHX", -0.18).is_err(), "a volatility of 0 is refused");
-        assert_eq!(m.with_rates_shifted(0.001).rate("USD"), Some(0.038 + 0.001));
+        assert_eq!(m.with_rates_shifted(0.001).rate("USD"), Some(&Curve::Flat(0.038 + 0.001)));
         let names = ["ZPHX", "QMEN", "OSMP", "VNTL"];
         let c = m.with_correlation_shifted("QMEN", "ZPHX", 0.01, &names).unwrap();
         assert_eq!(c.correlation("ZPHX", "QMEN"), Some(0.55 + 0.01));

@@ -18,7 +18,7 @@ use crate::syntax;
 use crate::typing::{self, Override};
 
 /// The caution every report and every file pathfold writes carries.
-pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM, flat rates and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
+pub const CAUTION: &str = "Caution: a model value under stated assumptions (risk-neutral GBM with deterministic rates, dividends and volatilities), not a quote; independent validation and your firm's model-risk policy come first.";
 
 /// The default cap on paths of an error-bounded run.
 pub const DEFAULT_MAX_PATHS: u64 = 20_000_000;
@@ -74,6 +74,98 @@ pub struct Priced {
     pub record: Record,
     /// Rendered warnings about the payoff (allowed, but probably not meant).
     pub warnings: String,
+    /// The market inputs the price used.
+    pub inputs: Inputs,
+    /// The date the product ended, when it ended before the valuation date (a trade
+    /// already redeemed or knocked out): its price is what is left to pay.
+    pub ended: Option<String>,
+}
+
+/// The market inputs of a price, per underlying, read to the product's last simulated
+/// date: what a reviewer checks first.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Inputs {
+    /// The last simulated date, and its time in years from the valuation date.
+    pub horizon: String,
+    pub years: f64,
+    pub valuation_date: String,
+    /// The payoff currency's zero rate to the horizon.
+    pub discount_rate: f64,
+    pub underlyings: Vec<UnderlyingInputs>,
+}
+
+/// One underlying's inputs (rates, yields and volatilities to the horizon).
+#[derive(Clone, Debug, PartialEq)]
+pub struct UnderlyingInputs {
+    pub name: String,
+    pub currency: String,
+    pub spot: f64,
+    /// The implied volatility to the horizon.
+    pub volatility: f64,
+    /// The continuous dividend yield averaged to the horizon.
+    pub dividend_yield: f64,
+    /// Discrete dividends going ex after the valuation date and up to the horizon.
+    pub discrete_dividends: usize,
+    /// The zero rate of the underlying's own currency to the horizon.
+    pub rate: f64,
+    pub quanto: Option<crate::dynamics::Quanto>,
+    /// Correlations with the product's other underlyings.
+    pub correlations: Vec<(String, f64)>,
+    /// The fixings of past dates the product reads, in date order.
+    pub fixings: Vec<(String, f64)>,
+}
+
+impl Inputs {
+    /// The inputs a compiled program prices with.
+    pub fn of(program: &compile::Program) -> Inputs {
+        let t = program.grid.last().copied().unwrap_or(0.0);
+        let horizon = program
+            .valuation_date
+            .add_days((t * 365.0).round() as i64)
+            .map_or_else(|| format!("{t:.4}y"), |d| d.to_string());
+        let underlyings = program
+            .assets
+            .iter()
+            .zip(&program.dynamics)
+            .enumerate()
+            .map(|(i, (a, d))| UnderlyingInputs {
+                name: a.name.clone(),
+                currency: d.currency.clone(),
+                spot: a.spot,
+                volatility: d.volatility(t),
+                dividend_yield: d.dividend_yield(t),
+                discrete_dividends: d.dividend_count_to(t),
+                rate: d.own_rate(t),
+                quanto: d.quanto.clone(),
+                correlations: program
+                    .assets
+                    .iter()
+                    .enumerate()
+                    .filter(|(j, _)| *j != i)
+                    .map(|(j, b)| {
+                        (b.name.clone(), program.correlations.get(i).and_then(|r| r.get(j)).copied().unwrap_or(0.0))
+                    })
+                    .collect(),
+                fixings: program
+                    .past_levels
+                    .iter()
+                    .zip(&program.grid)
+                    .filter(|(levels, _)| levels[i].is_finite())
+                    .map(|(levels, t)| {
+                        let date = program.valuation_date.add_days((t * 365.0).round() as i64);
+                        (date.map_or_else(|| format!("{t:.4}y"), |d| d.to_string()), levels[i])
+                    })
+                    .collect(),
+            })
+            .collect();
+        Inputs {
+            horizon,
+            years: t,
+            valuation_date: program.valuation_date.to_string(),
+            discount_rate: program.discounting.average(t),
+            underlyings,
+        }
+    }
 }
 
 /// The reproducibility record of one result: with the same files (checked by hash), the
@@ -253,8 +345,16 @@ impl Compiled {
         let estimate = estimate.map_err(|d| Failure::input(in_file(vec![d]), Some(source.clone())))?;
         let found = product.warnings.iter().chain(&estimate.warnings).cloned().collect();
         let warnings = render_all(&in_file(found), Some(source));
+        // Ended before the valuation date: every path ends on the same past date.
+        let ended = estimate
+            .profile
+            .iter()
+            .find(|r| r.time < 0.0 && r.end_probability.is_some_and(|p| p >= 1.0 - 1e-12))
+            .map(|r| r.label.clone());
         Ok(Priced {
+            ended,
             warnings,
+            inputs: Inputs::of(program),
             file: file.display().to_string(),
             market_file: self.market_path.display().to_string(),
             product: program.name.clone(),
@@ -322,8 +422,10 @@ pub fn load_source(
     let market_data = match Market::load(&market_path) {
         Ok(m) => m,
         Err(ds) => {
-            let text = read_regular_file(&market_path).ok();
-            let ds = ds.into_iter().map(|d| d.in_file(&market_path)).collect();
+            // The market file's problems, or those of the fixings file it names.
+            let source_file = ds.first().and_then(|d| d.file.clone()).unwrap_or_else(|| market_path.clone());
+            let text = read_regular_file(&source_file).ok();
+            let ds = ds.into_iter().map(|d| d.in_file(&source_file)).collect();
             return Err(Failure::input(ds, text));
         }
     };

@@ -73,7 +73,20 @@ pub enum DateTerm {
 pub struct Schedule {
     pub kind: ScheduleKind,
     pub span: Span,
+    /// `rolled ...` and `calendar NAME` after the schedule.
+    pub rolling: Rolling,
 }
+
+/// How a schedule's dates meet business days: `rolled modified following calendar ZEX`.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Rolling {
+    pub roll: Option<(Roll, Span)>,
+    /// The holiday calendar, by the name the market's calendars file gives it.
+    pub calendar: Option<(String, Span)>,
+}
+
+/// `rolled following`, `rolled modified following`, `rolled preceding`.
+pub use crate::calendar::Roll;
 
 #[derive(Clone, Debug, PartialEq)]
 pub enum ScheduleKind {
@@ -478,7 +491,23 @@ impl Lowering {
             }
             Rule::dates_item => {
                 let n = name(inner.next().unwrap());
-                Item::Dates(n, self.schedule(inner.next().unwrap()))
+                let mut schedule = self.schedule(inner.next().unwrap());
+                for clause in inner {
+                    let rule = clause.as_rule();
+                    let span = span_of(&clause);
+                    let Some(word) = clause.into_inner().nth(1) else { continue };
+                    if rule == Rule::roll_clause {
+                        let roll = match word.as_str().split_whitespace().next() {
+                            Some("modified") => Roll::ModifiedFollowing,
+                            Some("following") => Roll::Following,
+                            _ => Roll::Preceding,
+                        };
+                        schedule.rolling.roll = Some((roll, span));
+                    } else {
+                        schedule.rolling.calendar = Some((word.as_str().to_string(), span_of(&word)));
+                    }
+                }
+                Item::Dates(n, schedule)
             }
             Rule::each_block => {
                 let var = name(inner.next().unwrap());
@@ -550,7 +579,7 @@ impl Lowering {
             }
             other => unreachable!("grammar yields no schedule {other:?}"),
         };
-        Schedule { kind, span }
+        Schedule { kind, span, rolling: Rolling::default() }
     }
 
     /// A whole count from 1 to `most`; `what` names it in the message.
@@ -1274,6 +1303,28 @@ mod tests {
         assert_eq!(using.iter().map(show).collect::<Vec<_>>(), ["(perf P)", "n"]);
         // The party words are not reserved: a state may still be called `issuer`.
         assert!(matches!(&body[2], Stmt::Assign(n, _) if n.text == "issuer"));
+    }
+
+    #[test]
+    fn rolled_schedules_and_calendars() {
+        let text = "dates m = every 1m from 2027-01-31 to 2027-12-31 rolled modified  following calendar ZEX\n\
+            dates p = 2027-06-05 rolled preceding\ndates b = business days from 2026-12-02 to 2027-01-29 calendar ZEX\n\
+            dates calendar = 2027-01-04";
+        let file = parse(text).unwrap();
+        let rolling = |i: usize| match &file.items[i] {
+            Item::Dates(_, s) => s.rolling.clone(),
+            _ => panic!("a dates item"),
+        };
+        let m = rolling(0);
+        assert_eq!(m.roll.map(|r| r.0), Some(Roll::ModifiedFollowing));
+        assert_eq!(m.calendar.as_ref().map(|c| c.0.as_str()), Some("ZEX"));
+        assert_eq!(rolling(1).roll.map(|r| r.0), Some(Roll::Preceding));
+        assert_eq!(rolling(1).calendar, None);
+        assert_eq!(rolling(2).roll, None);
+        assert_eq!(rolling(2).calendar.map(|c| c.0), Some("ZEX".to_string()));
+        // `calendar` and `rolled` are words of fixed places, not reserved: a schedule may be
+        // called `calendar`.
+        assert_eq!(rolling(3), Rolling::default());
     }
 
     #[test]

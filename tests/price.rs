@@ -225,7 +225,14 @@ fn every_catalogue_file_prices_inside_its_sanity_band() {
             NOTIONAL * df(t5) * (1.0 + 0.8 * 0.45),
             "between the discounted floor and the discounted capped maximum",
         ),
+        (
+            "quanto_call",
+            0.0,
+            NOTIONAL,
+            "a call on a level that grows slower than the USD rate: below its discounted forward, itself below 100%",
+        ),
         ("range_accrual", NOTIONAL * df(t1), NOTIONAL * df(t1) * 1.07, "principal plus between 0% and 7% at maturity"),
+        ("seasoned_worst_of_autocall", 0.0, NOTIONAL * 1.27, "pays at most 100% plus twelve 2.25% coupons"),
         (
             "twin_win",
             NOTIONAL,
@@ -234,6 +241,7 @@ fn every_catalogue_file_prices_inside_its_sanity_band() {
         ),
         ("up_and_out_call", 0.0, call(t1, &ZPHX) + 0.05 * NOTIONAL, "≤ the vanilla call plus the rebate"),
         ("worst_of_autocall", 0.0, NOTIONAL * 1.27, "pays at most 100% plus twelve 2.25% coupons"),
+        ("worst_of_autocall_on_curves", 0.0, NOTIONAL * 1.27, "pays at most 100% plus twelve 2.25% coupons"),
         ("worst_of_autocall_stepdown", 0.0, NOTIONAL * 1.27, "pays at most 100% plus twelve 2.25% coupons"),
     ];
     let mut files: Vec<String> = std::fs::read_dir("payoffs")

@@ -5,7 +5,7 @@ use std::io::{self, Write};
 use serde_json::json;
 
 use super::{decimals, group, short_hash, CAUTION};
-use crate::pricing::{Priced, Record};
+use crate::pricing::{Inputs, Priced, Record};
 
 /// The JSON object of one priced file.
 pub fn to_json(p: &Priced) -> serde_json::Value {
@@ -38,6 +38,8 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
             "end_probability": r.end_probability,
             "expected_pv": r.expected_pv,
         })).collect::<Vec<_>>(),
+        "ended": p.ended,
+        "market_inputs": inputs_json(&p.inputs),
         "caution": CAUTION,
     });
     // Only a product with `may end` has the key, so other reports keep their shape.
@@ -55,6 +57,81 @@ pub fn to_json(p: &Priced) -> serde_json::Value {
         );
     }
     out
+}
+
+/// The market inputs as JSON: rates, yields and volatilities to the horizon, as fractions.
+pub fn inputs_json(i: &Inputs) -> serde_json::Value {
+    json!({
+        "valuation_date": i.valuation_date,
+        "horizon": i.horizon,
+        "horizon_years": i.years,
+        "discount_rate": i.discount_rate,
+        "underlyings": i.underlyings.iter().map(|u| json!({
+            "name": u.name,
+            "currency": u.currency,
+            "spot": u.spot,
+            "volatility": u.volatility,
+            "dividend_yield": u.dividend_yield,
+            "discrete_dividends": u.discrete_dividends,
+            "rate": u.rate,
+            "quanto": u.quanto.as_ref().map(|q| json!({
+                "from": q.currency,
+                "fx_volatility": q.fx_volatility,
+                "fx_correlation": q.correlation,
+            })),
+            "correlations": u.correlations.iter().map(|(n, r)| (n.clone(), json!(r))).collect::<serde_json::Map<_, _>>(),
+            "fixings": u.fixings.iter().map(|(d, x)| json!({ "date": d, "level": x })).collect::<Vec<_>>(),
+        })).collect::<Vec<_>>(),
+    })
+}
+
+/// The market inputs, a line or two per underlying.
+fn write_inputs(out: &mut dyn Write, i: &Inputs, ccy: &str) -> io::Result<()> {
+    let pct = |x: f64| format!("{:.2}%", 100.0 * x);
+    writeln!(
+        out,
+        "  market inputs     valued {}, read to {} ({:.2}y); {ccy} discount rate {}",
+        i.valuation_date,
+        i.horizon,
+        i.years,
+        pct(i.discount_rate)
+    )?;
+    for u in &i.underlyings {
+        let mut dividends = format!("dividend yield {}", pct(u.dividend_yield));
+        if u.discrete_dividends > 0 {
+            let s = if u.discrete_dividends == 1 { "" } else { "s" };
+            dividends.push_str(&format!(" + {} discrete dividend{s}", u.discrete_dividends));
+        }
+        writeln!(
+            out,
+            "    {:<14}  spot {} {}, volatility {}, {dividends}, {} rate {}",
+            u.name,
+            group(u.spot, 2),
+            u.currency,
+            pct(u.volatility),
+            u.currency,
+            pct(u.rate)
+        )?;
+        if let Some(q) = &u.quanto {
+            writeln!(
+                out,
+                "    {:<14}  quanto into {ccy}: {}/{ccy} volatility {}, correlation {}",
+                "",
+                q.currency,
+                pct(q.fx_volatility),
+                q.correlation
+            )?;
+        }
+        if !u.fixings.is_empty() {
+            let list: Vec<String> = u.fixings.iter().map(|(d, x)| format!("{d} {}", group(*x, 2))).collect();
+            writeln!(out, "    {:<14}  fixings {}", "", list.join(", "))?;
+        }
+        if !u.correlations.is_empty() {
+            let list: Vec<String> = u.correlations.iter().map(|(n, r)| format!("{n} {r}")).collect();
+            writeln!(out, "    {:<14}  correlations {}", "", list.join(", "))?;
+        }
+    }
+    Ok(())
 }
 
 /// The target of an error-bounded run, or null.
@@ -101,6 +178,9 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
             .map(|((n, _), w)| format!("{n} = {}", w.split_whitespace().collect::<Vec<_>>().join(" ")))
             .collect();
         writeln!(out, "  parameters        {}", list.join(", "))?;
+    }
+    if let Some(date) = &p.ended {
+        writeln!(out, "  ended             on {date}, before the valuation date: the price is what is left to pay")?;
     }
     writeln!(out)?;
     let se_percent = 100.0 * e.std_error / p.notional;
@@ -149,6 +229,8 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     )?;
     writeln!(out, "                    market sha256 {}", short_hash(&p.record.market_sha256))?;
     writeln!(out)?;
+    write_inputs(out, &p.inputs, ccy)?;
+    writeln!(out)?;
     writeln!(out, "  {:<12} {:>14} {:>22}", "date", "ends here", format!("expected PV paid ({ccy})"))?;
     // Dates on which nothing is paid and nothing ends (most fixings of a daily schedule)
     // would drown the few that matter; JSON keeps them all.
@@ -162,7 +244,7 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
         writeln!(out, "  ({hidden} other dates: nothing paid, never ends there)")?;
     }
     writeln!(out, "  (plain averages over the paths: they add up to the price before control variates)")?;
-    if e.variance_reduction.is_some_and(|v| v < 1.0) {
+    if e.variance_reduction.is_some_and(|v| v < 1.0) && p.ended.is_none() {
         writeln!(out)?;
         writeln!(
             out,

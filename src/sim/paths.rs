@@ -33,11 +33,19 @@ impl Model {
         let n = p.grid.len();
         let mut drift = vec![vec![0.0; p.assets.len()]; n];
         let mut scale = vec![vec![0.0; p.assets.len()]; n];
-        for k in 1..n {
+        // Steps up to the valuation date (past dates, read from the fixings) stay zero.
+        for k in p.past + 1..n {
             let dt = p.grid[k] - p.grid[k - 1];
             for (a, m) in p.assets.iter().enumerate() {
-                drift[k][a] = (p.rate - m.dividend_yield - 0.5 * m.volatility * m.volatility) * dt;
-                scale[k][a] = m.volatility * dt.sqrt();
+                if let Some(c) = &p.curves {
+                    // Exact with time-dependent coefficients: the step's growth and variance.
+                    let var = step_variance(p, a, k);
+                    drift[k][a] = (c.log_growth[a][k] - c.log_growth[a][k - 1]) - 0.5 * var;
+                    scale[k][a] = var.sqrt();
+                } else {
+                    drift[k][a] = (p.rate - m.dividend_yield - 0.5 * m.volatility * m.volatility) * dt;
+                    scale[k][a] = m.volatility * dt.sqrt();
+                }
             }
         }
         let mut watched: Vec<usize> = p.monitors.iter().map(|m| m.asset).collect();
@@ -63,6 +71,15 @@ impl Model {
             uncorrelated,
             watched,
         }
+    }
+}
+
+/// The variance of asset `a`'s log level over the step ending at grid index `k` (never
+/// negative: the market refuses a falling total variance).
+fn step_variance(p: &Program, a: usize, k: usize) -> f64 {
+    match &p.curves {
+        Some(c) => (c.variance[a][k] - c.variance[a][k - 1]).max(0.0),
+        None => p.assets[a].volatility * p.assets[a].volatility * (p.grid[k] - p.grid[k - 1]),
     }
 }
 
@@ -207,17 +224,25 @@ impl PathBuffers {
         let drawn = if antithetic { lanes / 2 } else { lanes };
         for a in 0..na {
             self.x[a * block..a * block + lanes].fill(model.log_spot[a]);
-            let cell = a * block;
-            self.levels[cell..cell + lanes].fill(p.assets[a].spot);
-            if self.keep_logs {
-                self.logs[cell..cell + lanes].fill(model.log_spot[a]);
+            // Past dates hold their fixings; the valuation date the spot.
+            for k in 0..=p.past {
+                let cell = (k * na + a) * block;
+                let (level, log) = if k == p.past {
+                    (p.assets[a].spot, model.log_spot[a])
+                } else {
+                    (p.past_levels[k][a], p.past_levels[k][a].ln())
+                };
+                self.levels[cell..cell + lanes].fill(level);
+                if self.keep_logs {
+                    self.logs[cell..cell + lanes].fill(log);
+                }
             }
         }
         // Each step works in passes over the block so that everything except drawing the
         // normals runs as straight loops over lanes: draw (lane by lane, asset by asset
         // within a lane: the order is part of what a seed means), correlate, step the logs
         // of each path and its mirror, exponentiate.
-        for k in 1..p.grid.len() {
+        for k in p.past + 1..p.grid.len() {
             let (drift, scale) = (&model.drift[k], &model.scale[k]);
             if na == 1 {
                 for z in &mut self.z[..drawn] {
@@ -305,11 +330,18 @@ impl PathBuffers {
                 let mut k = m.from + 1;
                 while !hit && k <= m.to {
                     let (x0, x1) = (at(k - 1), at(k));
-                    if beyond(x1) {
+                    // A dividend going ex on this date drops the level at its end: the
+                    // path runs to the level before the drop.
+                    let x1_before = match &p.curves {
+                        Some(c) => x1 - c.drop[a][k],
+                        None => x1,
+                    };
+                    if beyond(x1) || beyond(x1_before) {
                         hit = true;
                     } else {
-                        let dt = p.grid[k] - p.grid[k - 1];
-                        let crossing = (-2.0 * (x0 - h) * (x1 - h) / (var * dt)).exp();
+                        let step_var =
+                            if p.curves.is_some() { step_variance(p, a, k) } else { var * (p.grid[k] - p.grid[k - 1]) };
+                        let crossing = (-2.0 * (x0 - h) * (x1_before - h) / step_var).exp();
                         hit = self.uniforms[(slot * steps + k) * block + lane] < crossing;
                     }
                     k += 1;
@@ -357,8 +389,6 @@ impl PathBuffers {
                     let m = &p.monitors[monitor];
                     let a = m.asset;
                     let slot = model.watched.iter().position(|&w| w == a).expect("monitored assets are watched");
-                    let vol = p.assets[a].volatility;
-                    let var = vol * vol;
                     let start = (p.start * na + a) * block;
                     let down = m.direction == Direction::Down;
                     for lane in 0..lanes {
@@ -372,33 +402,47 @@ impl PathBuffers {
                         let mut k = m.from + 1;
                         while time.is_none() && k <= m.to {
                             let (x0, x1) = (at(k - 1), at(k));
+                            let x1_before = before_drop(p, a, k, x1);
                             let dt = p.grid[k] - p.grid[k - 1];
-                            let hit = beyond(x1) || {
-                                let crossing = (-2.0 * (x0 - h) * (x1 - h) / (var * dt)).exp();
-                                self.uniforms[(slot * steps + k) * block + lane] < crossing
-                            };
-                            if hit {
-                                let scale = vol * dt.sqrt();
-                                let (gap, moved) = if down { (x0 - h, x0 - x1) } else { (h - x0, x1 - x0) };
+                            let step_var = full_step_variance(p, a, k);
+                            if beyond(x1_before) {
+                                // Crossed by the bridge to the level before any drop.
+                                let scale = step_var.sqrt();
+                                let (gap, moved) =
+                                    if down { (x0 - h, x0 - x1_before) } else { (h - x0, x1_before - x0) };
                                 let fraction = bridge_first_passage(gap / scale, moved / scale, normal, uniform);
                                 time = Some(p.grid[k - 1] + dt * fraction);
+                            } else if beyond(x1) {
+                                // Only the dividend's drop at the step's end crossed it.
+                                time = Some(p.grid[k]);
+                            } else {
+                                let crossing = (-2.0 * (x0 - h) * (x1_before - h) / step_var).exp();
+                                if self.uniforms[(slot * steps + k) * block + lane] < crossing {
+                                    let scale = step_var.sqrt();
+                                    let (gap, moved) =
+                                        if down { (x0 - h, x0 - x1_before) } else { (h - x0, x1_before - x0) };
+                                    let fraction = bridge_first_passage(gap / scale, moved / scale, normal, uniform);
+                                    time = Some(p.grid[k - 1] + dt * fraction);
+                                }
                             }
                             k += 1;
                         }
-                        out[lane] = time.map_or(0.0, |t| (-p.rate * t).exp());
+                        out[lane] = time.map_or(0.0, |t| (-p.discounting.value(t)).exp());
                     }
                 }
                 PathValue::Extreme { asset: a, up, from, to } => {
                     let slot = model.watched.iter().position(|&w| w == a).expect("assets with extremes are watched");
-                    let var = p.assets[a].volatility * p.assets[a].volatility;
                     for (lane, o) in out[..lanes].iter_mut().enumerate() {
                         let at = |k: usize| self.logs[(k * na + a) * block + lane];
                         let mut extreme = at(from);
                         for k in from + 1..=to {
                             let (x0, x1) = (at(k - 1), at(k));
-                            let dt = p.grid[k] - p.grid[k - 1];
                             let u = self.uniforms[(slot * steps + k) * block + lane];
-                            let step = bridge_extreme(x0, x1, var * dt, u, up);
+                            // The bridge runs to the level before a dividend's drop; the
+                            // level after it closes the step.
+                            let x1_before = before_drop(p, a, k, x1);
+                            let step = bridge_extreme(x0, x1_before, full_step_variance(p, a, k), u, up);
+                            let step = if up { step.max(x1) } else { step.min(x1) };
                             extreme = if up { extreme.max(step) } else { extreme.min(step) };
                         }
                         *o = extreme.exp();
@@ -406,6 +450,28 @@ impl PathBuffers {
                 }
             }
         }
+    }
+}
+
+/// The log level `x1` at grid index `k` as it was before a dividend going ex on that
+/// date dropped it (the same `x1` when none does).
+#[inline]
+fn before_drop(p: &Program, a: usize, k: usize, x1: f64) -> f64 {
+    match &p.curves {
+        Some(c) => x1 - c.drop[a][k],
+        None => x1,
+    }
+}
+
+/// The variance of asset `a`'s log level over the step ending at grid index `k`: with
+/// curves the step's own, else the flat `σ²Δt` (as the flat paths compute it).
+#[inline]
+fn full_step_variance(p: &Program, a: usize, k: usize) -> f64 {
+    if p.curves.is_some() {
+        step_variance(p, a, k)
+    } else {
+        let vol = p.assets[a].volatility;
+        vol * vol * (p.grid[k] - p.grid[k - 1])
     }
 }
 
@@ -505,6 +571,9 @@ impl Controls {
         if t <= 0.0 {
             return Controls { list };
         }
+        if let Some(c) = &p.curves {
+            return Controls { list: curve_controls(p, c) };
+        }
         let discount = (-p.rate * t).exp();
         for (a, m) in p.assets.iter().enumerate() {
             let b = p.rate - m.dividend_yield;
@@ -528,7 +597,7 @@ impl Controls {
             let m = &p.assets[*a];
             let b = p.rate - m.dividend_yield;
             // A fixing on the valuation date is known, not random: no closed form needed there.
-            if fixings.contains(&0) {
+            if fixings.iter().any(|&k| k <= p.past) {
                 continue;
             }
             let times: Vec<f64> = fixings.iter().map(|&k| p.grid[k]).collect();
@@ -628,6 +697,70 @@ impl Controls {
             }
         }
     }
+}
+
+/// The controls of [`Controls::new`] when the dynamics have curves: every expectation from
+/// the lognormal moments of the levels (forward `S₀e^{G(t)}`, total variance `V(t)`), so
+/// each stays exact. The call on the last level is Black's formula on its forward with the
+/// total variance; the geometric average `G` of fixings `t₁ < … < tₙ` is lognormal, with
+/// `E[ln G] = ln S₀ + mean(G(tᵢ) − V(tᵢ)/2)` and `Var[ln G] = Σᵢⱼ V(min(tᵢ, tⱼ)) / n²`.
+fn curve_controls(p: &Program, c: &crate::dynamics::GridCurves) -> Vec<Control> {
+    let mut list = Vec::new();
+    let last = p.grid.len() - 1;
+    let discount = c.discount[last];
+    // Black's formula with unit time: `discount · (F·N(d₁) − K·N(d₂))`, `d₁ = (ln F/K + v/2)/√v`.
+    let black = |forward: f64, strike: f64, variance: f64, discount: f64| {
+        black_scholes(OptionKind::Call, forward, strike, 1.0, -discount.ln(), 0.0, variance.max(0.0).sqrt())
+    };
+    for (a, m) in p.assets.iter().enumerate() {
+        let forward = m.spot * c.log_growth[a][last].exp();
+        list.push(Control {
+            name: format!("{} forward", m.name),
+            kind: ControlKind::Terminal { asset: a },
+            discount,
+            mean: discount * forward,
+            scale: discount * forward,
+        });
+        list.push(Control {
+            name: format!("{} call", m.name),
+            kind: ControlKind::Call { asset: a, strike: forward },
+            discount,
+            mean: black(forward, forward, c.variance[a][last], discount),
+            scale: discount * forward,
+        });
+    }
+    for (a, fixings) in &p.averages {
+        let m = &p.assets[*a];
+        if fixings.iter().any(|&k| k <= p.past) {
+            continue;
+        }
+        let n = fixings.len() as f64;
+        let k_pay = *fixings.last().unwrap_or(&last);
+        let discount = c.discount[k_pay];
+        let mean_log =
+            m.spot.ln() + fixings.iter().map(|&k| c.log_growth[*a][k] - 0.5 * c.variance[*a][k]).sum::<f64>() / n;
+        // Fixings are in increasing order: V(tᵢ) is the smaller of the pair for the
+        // 2(n − i) − 1 ordered pairs whose earlier index is i (0-based).
+        let var_log =
+            fixings.iter().enumerate().map(|(i, &k)| (2.0 * (n - i as f64) - 1.0) * c.variance[*a][k]).sum::<f64>()
+                / (n * n);
+        let forward = (mean_log + 0.5 * var_log).exp();
+        list.push(Control {
+            name: format!("{} geometric average", m.name),
+            kind: ControlKind::Geometric { asset: *a, fixings: fixings.clone() },
+            discount,
+            mean: discount * forward,
+            scale: discount * forward,
+        });
+        list.push(Control {
+            name: format!("{} geometric-average call", m.name),
+            kind: ControlKind::GeometricCall { asset: *a, fixings: fixings.clone(), strike: m.spot },
+            discount,
+            mean: black(forward, m.spot, var_log, discount),
+            scale: discount * forward,
+        });
+    }
+    list
 }
 
 #[cfg(test)]
