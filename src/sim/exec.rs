@@ -21,6 +21,9 @@ pub struct Workspace {
     /// Scratch lanes: one payment's amounts, or the lanes one `end` closes.
     paid: Vec<f64>,
     columns: Vec<Vec<f64>>,
+    /// Per lane, the grid index from which the path is known to have ended (the last
+    /// grid index while it runs on); kept only when the controls ask for it.
+    stop: Vec<f64>,
 }
 
 /// An operand resolved for one block: a lane slice or one value for all lanes.
@@ -40,6 +43,7 @@ impl Workspace {
             pv: vec![0.0; BLOCK],
             paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
+            stop: vec![0.0; BLOCK],
         }
     }
 
@@ -71,15 +75,13 @@ impl Workspace {
             bad_paths: Vec::new(),
             largest: (0.0, 0),
         };
-        self.execute(p, lanes, &mut result);
+        self.execute(p, controls, lanes, &mut result);
         // Paths still alive after the last operation end on the last run date.
         if let Some(last) = p.events.len().checked_sub(1) {
             result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
         }
         result.raw = Moments::of_columns(&[&self.pv[..lanes]]);
-        for j in 0..controls.len() {
-            controls.values(j, p, &self.paths, lanes, BLOCK, &mut self.columns[1 + j]);
-        }
+        controls.fill(p, &self.paths, &self.stop, lanes, BLOCK, &mut self.columns[1..]);
         self.columns[0][..lanes].copy_from_slice(&self.pv[..lanes]);
         // An antithetic pair is one sample: the mean of its two paths.
         let units = if settings.antithetic { lanes / 2 } else { lanes };
@@ -106,13 +108,16 @@ impl Workspace {
         result
     }
 
-    fn execute(&mut self, p: &Program, lanes: usize, result: &mut BlockResult) {
+    fn execute(&mut self, p: &Program, controls: &Controls, lanes: usize, result: &mut BlockResult) {
         self.regs[ALIVE as usize][..lanes].fill(1.0);
+        if controls.tracks_ends() {
+            self.stop[..lanes].fill((p.grid.len() - 1) as f64);
+        }
         for (s, init) in p.states.iter().enumerate() {
             self.regs[1 + s][..lanes].fill(*init);
         }
         self.pv[..lanes].fill(0.0);
-        for op in &p.ops {
+        for (index, op) in p.ops.iter().enumerate() {
             match *op {
                 Op::Bin { op, dst, a, b } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
@@ -205,6 +210,13 @@ impl Workspace {
                     let ended;
                     if mask == ALIVE {
                         ended = sum(&alive[..lanes]);
+                        if let Some(from) = controls.end_known_from(index) {
+                            for (s, a) in self.stop[..lanes].iter_mut().zip(&alive[..lanes]) {
+                                if *a != 0.0 {
+                                    *s = s.min(from);
+                                }
+                            }
+                        }
                         alive[..lanes].fill(0.0);
                     } else {
                         let m = &self.regs[mask as usize][..lanes];
@@ -215,6 +227,13 @@ impl Workspace {
                             *a = if end { 0.0 } else { *a };
                         }
                         ended = sum(gone);
+                        if let Some(from) = controls.end_known_from(index) {
+                            for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
+                                if *g != 0.0 {
+                                    *s = s.min(from);
+                                }
+                            }
+                        }
                     }
                     result.ended[slot as usize] += ended;
                     self.regs[ALIVE as usize] = alive;
