@@ -8,6 +8,7 @@
 use rand_pcg::Pcg64;
 
 use super::paths::{Controls, Model, PathBuffers};
+use super::sobol::Qmc;
 use super::stats::{sum, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
@@ -24,6 +25,17 @@ pub struct Workspace {
     /// Per lane, the grid index from which the path is known to have ended (the last
     /// grid index while it runs on); kept only when the controls ask for it.
     stop: Vec<f64>,
+    /// A quasi-random sampler's normals for one block (allocated on first use).
+    given: Vec<f64>,
+}
+
+/// Where a block's normals come from when they are quasi-random: randomisation `r` of a
+/// Sobol run, from point `first` on.
+#[derive(Clone, Copy)]
+pub struct Points<'a> {
+    pub qmc: &'a Qmc,
+    pub r: usize,
+    pub first: u32,
 }
 
 /// An operand resolved for one block: a lane slice or one value for all lanes.
@@ -44,6 +56,7 @@ impl Workspace {
             paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
             stop: vec![0.0; BLOCK],
+            given: Vec::new(),
         }
     }
 
@@ -62,8 +75,36 @@ impl Workspace {
         index: u64,
         lanes: usize,
     ) -> BlockResult {
+        self.run_block_from(p, model, controls, settings, index, lanes, None)
+    }
+
+    /// [`Workspace::run_block`], with the normals from `points` when given (block
+    /// `index` still seeds the stream of everything else the block draws).
+    #[allow(clippy::too_many_arguments)]
+    pub fn run_block_from(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        controls: &Controls,
+        settings: &Settings,
+        index: u64,
+        lanes: usize,
+        points: Option<Points<'_>>,
+    ) -> BlockResult {
         let mut rng = block_rng(settings.seed, index);
-        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
+        let drawn = if settings.antithetic { lanes / 2 } else { lanes };
+        let given = match points {
+            Some(pt) => {
+                let cells = p.grid.len().saturating_sub(1) * p.assets.len() * BLOCK;
+                if self.given.len() < cells {
+                    self.given = vec![0.0; cells];
+                }
+                pt.qmc.fill(pt.r, pt.first, drawn, BLOCK, &mut rng, &mut self.given);
+                Some(&self.given[..])
+            }
+            None => None,
+        };
+        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK, given);
         self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
         // Only the per-date tallies are allocated here; the moments are built below
         // (moments of no dimension allocate nothing).

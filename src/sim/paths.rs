@@ -183,7 +183,10 @@ impl PathBuffers {
     }
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
-    /// (`h = lanes / 2`) with every normal negated.
+    /// (`h = lanes / 2`) with every normal negated. The normals are drawn from `rng`
+    /// unless `given` holds them, laid out `[((k − 1)·assets + a)·block + lane]` for step
+    /// `k` and asset `a` (a quasi-random sampler's).
+    #[allow(clippy::too_many_arguments)]
     pub fn generate(
         &mut self,
         p: &Program,
@@ -192,6 +195,7 @@ impl PathBuffers {
         lanes: usize,
         antithetic: bool,
         block: usize,
+        given: Option<&[f64]>,
     ) {
         let na = p.assets.len();
         let drawn = if antithetic { lanes / 2 } else { lanes };
@@ -209,7 +213,12 @@ impl PathBuffers {
         // of each path and its mirror, exponentiate.
         for k in 1..p.grid.len() {
             let (drift, scale) = (&model.drift[k], &model.scale[k]);
-            if na == 1 {
+            if let Some(given) = given {
+                for a in 0..na {
+                    let from = &given[((k - 1) * na + a) * block..][..drawn];
+                    self.z[a * block..a * block + drawn].copy_from_slice(from);
+                }
+            } else if na == 1 {
                 for z in &mut self.z[..drawn] {
                     *z = rng.sample(StandardNormal);
                 }

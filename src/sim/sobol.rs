@@ -1,0 +1,321 @@
+//! Randomised quasi-Monte Carlo: Sobol points, a random digital shift per randomisation,
+//! and the Brownian-bridge construction of each path's normals.
+//!
+//! The points are the Sobol sequence with the direction numbers of Joe and Kuo (2008,
+//! file new-joe-kuo-6.21201, embedded for [`MAX_DIMS`] dimensions), in Gray-code order
+//! (Antonov and Saleev), so the first `2^m` points are the usual net. Each randomisation
+//! XORs every coordinate with its own random 32-bit word (a random digital shift): each
+//! shifted point is uniform on the unit cube, so each randomisation is an unbiased
+//! estimate, and the spread of [`RANDOMISATIONS`] independent ones is the error.
+//!
+//! A path's normals are laid out by the Brownian bridge: coordinate `j·assets + a` drives
+//! asset `a`'s Brownian motion at the `j`-th date of the bridge order (the last date
+//! first, then midpoints), so the first coordinates, where Sobol points are most even,
+//! carry most of the variance. The increments are handed to the path generator as one
+//! standard normal per step and asset, exactly what it would otherwise draw. Coordinates
+//! past [`MAX_DIMS`] (very long grids) come from the block's pseudo-random stream.
+
+use rand::{Rng, RngCore};
+use rand_distr::StandardNormal;
+use rand_pcg::Pcg64;
+use statrs::function::erf::erfc_inv;
+
+/// Independent randomisations of a Sobol run; the standard error is their spread.
+pub const RANDOMISATIONS: usize = 16;
+
+/// Dimensions with embedded direction numbers.
+pub const MAX_DIMS: usize = 4096;
+
+const BITS: usize = 32;
+
+/// The Joe–Kuo table: `d s a m_1 … m_s` per line for dimensions 2 to [`MAX_DIMS`].
+const JOE_KUO: &str = include_str!("joe_kuo.txt");
+
+/// Direction numbers `v[dim][bit]`, scaled to 32 bits.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Sobol {
+    v: Vec<[u32; BITS]>,
+}
+
+impl Sobol {
+    /// The first `dims` dimensions (at most [`MAX_DIMS`]).
+    pub fn new(dims: usize) -> Self {
+        let dims = dims.min(MAX_DIMS);
+        let mut v = Vec::with_capacity(dims);
+        if dims > 0 {
+            // Dimension 1: van der Corput, m = 1 for every bit.
+            let mut first = [0u32; BITS];
+            for (i, x) in first.iter_mut().enumerate() {
+                *x = 1 << (BITS - 1 - i);
+            }
+            v.push(first);
+        }
+        for line in JOE_KUO.lines().filter(|l| !l.starts_with('#')).take(dims.saturating_sub(1)) {
+            let nums: Vec<u32> =
+                line.split_whitespace().map(|x| x.parse().expect("the embedded table is numbers")).collect();
+            let (s, a) = (nums[1] as usize, nums[2]);
+            let m = &nums[3..3 + s];
+            let mut dir = [0u32; BITS];
+            for i in 0..BITS {
+                dir[i] = if i < s {
+                    m[i] << (BITS - 1 - i)
+                } else {
+                    // v_i = v_{i−s} ⊕ (v_{i−s} >> s) ⊕ Σ_k a_k·v_{i−k}, the polynomial's
+                    // recurrence (Bratley and Fox).
+                    let mut x = dir[i - s] ^ (dir[i - s] >> s);
+                    for k in 1..s {
+                        if (a >> (s - 1 - k)) & 1 == 1 {
+                            x ^= dir[i - k];
+                        }
+                    }
+                    x
+                };
+            }
+            v.push(dir);
+        }
+        Sobol { v }
+    }
+
+    pub fn dims(&self) -> usize {
+        self.v.len()
+    }
+
+    /// Point `index` of the Gray-code order, one 32-bit word per dimension.
+    pub fn point(&self, index: u32, out: &mut [u32]) {
+        let gray = index ^ (index >> 1);
+        for (o, dir) in out.iter_mut().zip(&self.v) {
+            let mut x = 0;
+            for (bit, d) in dir.iter().enumerate() {
+                if (gray >> bit) & 1 == 1 {
+                    x ^= d;
+                }
+            }
+            *o = x;
+        }
+    }
+
+    /// Moves `x`, point `index`, to point `index + 1`.
+    fn next(&self, index: u32, x: &mut [u32]) {
+        let bit = (index + 1).trailing_zeros() as usize;
+        for (o, dir) in x.iter_mut().zip(&self.v) {
+            *o ^= dir[bit];
+        }
+    }
+}
+
+/// The standard normal quantile: `Φ⁻¹(u) = −√2·erfc⁻¹(2u)`.
+pub fn normal_quantile(u: f64) -> f64 {
+    -std::f64::consts::SQRT_2 * erfc_inv(2.0 * u)
+}
+
+/// One step of the Brownian bridge: `W(k) = wl·W(left) + wr·W(right) + sd·Z`.
+#[derive(Clone, Debug, PartialEq)]
+struct BridgeStep {
+    k: usize,
+    left: usize,
+    right: Option<usize>,
+    wl: f64,
+    wr: f64,
+    sd: f64,
+}
+
+/// What a Sobol run shares between its blocks: the points, the bridge, and each
+/// randomisation's shifts.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Qmc {
+    sobol: Sobol,
+    /// Times `t_0 = 0 … t_K` of the grid.
+    times: Vec<f64>,
+    bridge: Vec<BridgeStep>,
+    assets: usize,
+    /// `shifts[r][dim]`: the digital shift of randomisation `r`.
+    shifts: Vec<Vec<u32>>,
+}
+
+impl Qmc {
+    /// The sampler of a grid (`grid[0] = 0`) with `assets` assets, randomised from `seed`.
+    pub fn new(grid: &[f64], assets: usize, seed: u64) -> Self {
+        let steps = grid.len().saturating_sub(1);
+        let dims = steps * assets;
+        let sobol = Sobol::new(dims);
+        // Each randomisation's shifts come from a stream no block of paths uses.
+        let shifts = (0..RANDOMISATIONS as u64)
+            .map(|r| {
+                let mut rng = super::exec::block_rng(seed, u64::MAX - r);
+                (0..sobol.dims()).map(|_| rng.next_u32()).collect()
+            })
+            .collect();
+        Qmc { sobol, times: grid.to_vec(), bridge: bridge(grid), assets, shifts }
+    }
+
+    /// Fills `z[((k − 1)·assets + a)·block + lane]` with the standard normal increment of
+    /// asset `a` over step `k` on lanes `0..lanes`, from points `first..first + lanes` of
+    /// randomisation `r`. Coordinates past the table come from `rng`.
+    pub fn fill(&self, r: usize, first: u32, lanes: usize, block: usize, rng: &mut Pcg64, z: &mut [f64]) {
+        let (na, steps) = (self.assets, self.times.len().saturating_sub(1));
+        let dims = steps * na;
+        let have = self.sobol.dims();
+        let shift = &self.shifts[r];
+        let mut x = vec![0u32; have];
+        let mut w = vec![0.0; (steps + 1) * na];
+        let mut normals = vec![0.0; dims];
+        self.sobol.point(first, &mut x);
+        for lane in 0..lanes {
+            if lane > 0 {
+                self.sobol.next(first + lane as u32 - 1, &mut x);
+            }
+            for (d, n) in normals.iter_mut().enumerate() {
+                *n = if d < have {
+                    let u = (f64::from(x[d] ^ shift[d]) + 0.5) * (1.0 / 4_294_967_296.0);
+                    normal_quantile(u)
+                } else {
+                    rng.sample(StandardNormal)
+                };
+            }
+            // The bridge: W at each date, asset by asset, in bridge order.
+            for (j, b) in self.bridge.iter().enumerate() {
+                for a in 0..na {
+                    let left = w[b.left * na + a];
+                    let right = b.right.map_or(0.0, |r| w[r * na + a]);
+                    w[b.k * na + a] = b.wl * left + b.wr * right + b.sd * normals[j * na + a];
+                }
+            }
+            for k in 1..=steps {
+                let dt = self.times[k] - self.times[k - 1];
+                for a in 0..na {
+                    let dw = w[k * na + a] - w[(k - 1) * na + a];
+                    z[((k - 1) * na + a) * block + lane] = if dt > 0.0 { dw / dt.sqrt() } else { 0.0 };
+                }
+            }
+        }
+    }
+}
+
+/// The Brownian-bridge order of grid indices `1..=K`: the last date, then the midpoint
+/// of each interval filled so far, coarse to fine.
+fn bridge(times: &[f64]) -> Vec<BridgeStep> {
+    let steps = times.len().saturating_sub(1);
+    let mut out = Vec::with_capacity(steps);
+    if steps == 0 {
+        return out;
+    }
+    out.push(BridgeStep {
+        k: steps,
+        left: 0,
+        right: None,
+        wl: 0.0,
+        wr: 0.0,
+        sd: (times[steps] - times[0]).max(0.0).sqrt(),
+    });
+    // Intervals (left, right) of known points, split breadth-first.
+    let mut queue = std::collections::VecDeque::from([(0usize, steps)]);
+    while let Some((l, r)) = queue.pop_front() {
+        if r - l < 2 {
+            continue;
+        }
+        let k = (l + r) / 2;
+        let (tl, tk, tr) = (times[l], times[k], times[r]);
+        let span = tr - tl;
+        let (wl, wr, sd) = if span > 0.0 {
+            ((tr - tk) / span, (tk - tl) / span, ((tk - tl) * (tr - tk) / span).max(0.0).sqrt())
+        } else {
+            (1.0, 0.0, 0.0)
+        };
+        out.push(BridgeStep { k, left: l, right: Some(r), wl, wr, sd });
+        queue.push_back((l, k));
+        queue.push_back((k, r));
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_first_points_are_the_published_sequence() {
+        // The first eight points in four dimensions, as scipy.stats.qmc.Sobol (unscrambled,
+        // the same Joe–Kuo numbers) gives them: 0, ½, ¾ ¼, … in dimension 1 (van der Corput).
+        let expected = [
+            [0.0, 0.0, 0.0, 0.0],
+            [0.5, 0.5, 0.5, 0.5],
+            [0.75, 0.25, 0.25, 0.25],
+            [0.25, 0.75, 0.75, 0.75],
+            [0.375, 0.375, 0.625, 0.875],
+            [0.875, 0.875, 0.125, 0.375],
+            [0.625, 0.125, 0.875, 0.625],
+            [0.125, 0.625, 0.375, 0.125],
+        ];
+        let s = Sobol::new(4);
+        let mut x = [0u32; 4];
+        for (i, row) in expected.iter().enumerate() {
+            s.point(i as u32, &mut x);
+            let got: Vec<f64> = x.iter().map(|&v| f64::from(v) / 4_294_967_296.0).collect();
+            assert_eq!(got, row, "point {i}");
+        }
+    }
+
+    #[test]
+    fn each_dimension_is_a_net_and_stepping_matches_direct_points() {
+        // A (0, m, 1)-net: the first 2^m points of each coordinate fill the 2^m intervals
+        // of width 2^-m once each (common practice: the defining property of a Sobol
+        // sequence), checked in the last embedded dimension too.
+        let s = Sobol::new(MAX_DIMS);
+        let m = 10;
+        for dim in [0, 1, 2, 100, 1000, MAX_DIMS - 1] {
+            let mut seen = vec![false; 1 << m];
+            let mut x = vec![0u32; MAX_DIMS];
+            for i in 0..1u32 << m {
+                s.point(i, &mut x);
+                let cell = (x[dim] >> (32 - m)) as usize;
+                assert!(!seen[cell], "dimension {dim}: point {i} repeats a cell");
+                seen[cell] = true;
+            }
+        }
+        let (mut a, mut b) = (vec![0u32; 50], vec![0u32; 50]);
+        let small = Sobol::new(50);
+        small.point(1000, &mut a);
+        for i in 1000..1100 {
+            small.next(i, &mut a);
+            small.point(i + 1, &mut b);
+            assert_eq!(a, b, "point {}", i + 1);
+        }
+    }
+
+    #[test]
+    fn the_bridge_gives_brownian_increments_of_the_right_variance() {
+        // With unit normals in every coordinate, W(t_K) = √t_K and each midpoint is the
+        // average of its neighbours plus its own spread: check against a direct sum.
+        let times = [0.0, 0.25, 0.5, 1.0, 1.5];
+        let b = bridge(&times);
+        assert_eq!(b.iter().map(|s| s.k).collect::<Vec<_>>(), vec![4, 2, 1, 3]);
+        // Variance of W(t_k): the bridge's conditional variances add up to t_k.
+        let mut var = [0.0; 5];
+        let mut cov_basis = [[0.0; 4]; 5];
+        for (j, s) in b.iter().enumerate() {
+            let mut row = [0.0; 4];
+            for c in 0..4 {
+                row[c] = s.wl * cov_basis[s.left][c] + s.right.map_or(0.0, |r| s.wr * cov_basis[r][c]);
+            }
+            row[j] += s.sd;
+            cov_basis[s.k] = row;
+        }
+        for k in 0..5 {
+            var[k] = cov_basis[k].iter().map(|x| x * x).sum();
+            assert!((var[k] - times[k]).abs() < 1e-12, "Var W({}) = {}", times[k], var[k]);
+        }
+        // Cov(W(s), W(t)) = min(s, t).
+        let cov: f64 = cov_basis[1].iter().zip(&cov_basis[3]).map(|(x, y)| x * y).sum();
+        assert!((cov - 0.25).abs() < 1e-12);
+    }
+
+    #[test]
+    fn the_quantile_inverts_the_normal_distribution() {
+        use crate::closed_form::norm_cdf;
+        for &u in &[1e-9, 0.001, 0.025, 0.3, 0.5, 0.77, 0.975, 0.999_999] {
+            let z = normal_quantile(u);
+            assert!((norm_cdf(z) - u).abs() < 1e-9 * u.max(1e-3), "Φ(Φ⁻¹({u})) = {}", norm_cdf(z));
+        }
+        assert_eq!(normal_quantile(0.5), 0.0);
+    }
+}
