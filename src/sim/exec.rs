@@ -25,8 +25,10 @@ pub struct Workspace {
     /// Per lane, the grid index from which the path is known to have ended (the last
     /// grid index while it runs on); kept only when the controls ask for it.
     stop: Vec<f64>,
-    /// A quasi-random sampler's normals for one block (allocated on first use).
+    /// A quasi-random sampler's normals for one block, and its scratch (allocated on
+    /// first use).
     given: Vec<f64>,
+    qmc_scratch: Vec<f64>,
 }
 
 /// Where a block's normals come from when they are quasi-random: randomisation `r` of a
@@ -57,6 +59,7 @@ impl Workspace {
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
             stop: vec![0.0; BLOCK],
             given: Vec::new(),
+            qmc_scratch: Vec::new(),
         }
     }
 
@@ -99,7 +102,7 @@ impl Workspace {
                 if self.given.len() < cells {
                     self.given = vec![0.0; cells];
                 }
-                pt.qmc.fill(pt.r, pt.first, drawn, BLOCK, &mut rng, &mut self.given);
+                pt.qmc.fill(pt.r, pt.first, drawn, BLOCK, &mut rng, &mut self.given, &mut self.qmc_scratch);
                 Some(&self.given[..])
             }
             None => None,

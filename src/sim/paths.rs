@@ -608,6 +608,43 @@ impl Controls {
         block: usize,
         columns: &mut [Vec<f64>],
     ) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been checked for AVX2.
+                unsafe { self.fill_avx2(p, paths, stop, lanes, block, columns) };
+                return;
+            }
+        }
+        self.fill_generic(p, paths, stop, lanes, block, columns);
+    }
+
+    /// Additions, multiplications, selects and `min` only, never fused: the same bits as
+    /// the baseline build.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn fill_avx2(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        self.fill_generic(p, paths, stop, lanes, block, columns);
+    }
+
+    #[inline(always)]
+    fn fill_generic(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
         for (j, col) in columns.iter_mut().enumerate().take(self.list.len()) {
             self.values(j, p, paths, lanes, block, col);
         }
@@ -618,6 +655,7 @@ impl Controls {
 
     /// The stopped-hedge controls, all in one pass over the steps.
     #[allow(clippy::too_many_arguments)]
+    #[inline(always)]
     fn hedge_values(
         &self,
         h: &Hedge,
@@ -706,6 +744,7 @@ impl Controls {
     }
 
     /// Writes control `j`'s discounted value on each path into `out`.
+    #[inline(always)]
     fn values(&self, j: usize, p: &Program, paths: &PathBuffers, lanes: usize, block: usize, out: &mut [f64]) {
         let c = &self.list[j];
         let na = p.assets.len();

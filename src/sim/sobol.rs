@@ -138,10 +138,11 @@ impl Qmc {
         let steps = grid.len().saturating_sub(1);
         let dims = steps * assets;
         let sobol = Sobol::new(dims);
-        // Each randomisation's shifts come from a stream no block of paths uses.
+        // Each randomisation's shifts come from its own PCG stream, numbered past any
+        // block's (blocks use streams below 2⁶⁴).
         let shifts = (0..RANDOMISATIONS as u64)
             .map(|r| {
-                let mut rng = super::exec::block_rng(seed, u64::MAX - r);
+                let mut rng = Pcg64::new((u128::from(seed) << 64) | 0x853c_49e6_748f_ea9b, (1 << 64) + u128::from(r));
                 (0..sobol.dims()).map(|_| rng.next_u32()).collect()
             })
             .collect();
@@ -150,41 +151,79 @@ impl Qmc {
 
     /// Fills `z[((k − 1)·assets + a)·block + lane]` with the standard normal increment of
     /// asset `a` over step `k` on lanes `0..lanes`, from points `first..first + lanes` of
-    /// randomisation `r`. Coordinates past the table come from `rng`.
-    pub fn fill(&self, r: usize, first: u32, lanes: usize, block: usize, rng: &mut Pcg64, z: &mut [f64]) {
+    /// randomisation `r`. Coordinates past the table come from `rng`. `scratch` is any
+    /// buffer, reused between blocks.
+    #[allow(clippy::too_many_arguments)]
+    pub fn fill(
+        &self,
+        r: usize,
+        first: u32,
+        lanes: usize,
+        block: usize,
+        rng: &mut Pcg64,
+        z: &mut [f64],
+        scratch: &mut Vec<f64>,
+    ) {
         let (na, steps) = (self.assets, self.times.len().saturating_sub(1));
         let dims = steps * na;
         let have = self.sobol.dims();
+        // Coordinate `d` of lane `i` at `normals[d·lanes + i]`; `W` of asset `a` at grid
+        // index `k` at `w[(k·na + a)·lanes + i]`.
+        let need = (dims + (steps + 1) * na) * lanes;
+        if scratch.len() < need {
+            scratch.resize(need, 0.0);
+        }
+        let (normals, w) = scratch[..need].split_at_mut(dims * lanes);
         let shift = &self.shifts[r];
         let mut x = vec![0u32; have];
-        let mut w = vec![0.0; (steps + 1) * na];
-        let mut normals = vec![0.0; dims];
         self.sobol.point(first, &mut x);
         for lane in 0..lanes {
             if lane > 0 {
                 self.sobol.next(first + lane as u32 - 1, &mut x);
             }
-            for (d, n) in normals.iter_mut().enumerate() {
-                *n = if d < have {
-                    let u = (f64::from(x[d] ^ shift[d]) + 0.5) * (1.0 / 4_294_967_296.0);
-                    normal_quantile(u)
-                } else {
-                    rng.sample(StandardNormal)
-                };
+            for (d, (&xd, &sd)) in x.iter().zip(shift).enumerate() {
+                normals[d * lanes + lane] = f64::from(xd ^ sd);
             }
-            // The bridge: W at each date, asset by asset, in bridge order.
-            for (j, b) in self.bridge.iter().enumerate() {
-                for a in 0..na {
-                    let left = w[b.left * na + a];
-                    let right = b.right.map_or(0.0, |r| w[r * na + a]);
-                    w[b.k * na + a] = b.wl * left + b.wr * right + b.sd * normals[j * na + a];
+            for d in have..dims {
+                normals[d * lanes + lane] = rng.sample(StandardNormal);
+            }
+        }
+        for u in &mut normals[..have.min(dims) * lanes] {
+            *u = normal_quantile((*u + 0.5) * (1.0 / 4_294_967_296.0));
+        }
+        // The bridge, a lane-wide row at a time: W at each date in bridge order (W = 0 at
+        // grid index 0).
+        w[..na * lanes].fill(0.0);
+        let mut row = vec![0.0; lanes];
+        for (j, b) in self.bridge.iter().enumerate() {
+            for a in 0..na {
+                let at = |k: usize| (k * na + a) * lanes;
+                let n = &normals[(j * na + a) * lanes..][..lanes];
+                let left = &w[at(b.left)..][..lanes];
+                match b.right {
+                    Some(right) => {
+                        let right = &w[at(right)..][..lanes];
+                        for (((o, l), r), n) in row.iter_mut().zip(left).zip(right).zip(n) {
+                            *o = b.wl * l + b.wr * r + b.sd * n;
+                        }
+                    }
+                    None => {
+                        for ((o, l), n) in row.iter_mut().zip(left).zip(n) {
+                            *o = b.wl * l + b.sd * n;
+                        }
+                    }
                 }
+                w[at(b.k)..][..lanes].copy_from_slice(&row);
             }
-            for k in 1..=steps {
-                let dt = self.times[k] - self.times[k - 1];
-                for a in 0..na {
-                    let dw = w[k * na + a] - w[(k - 1) * na + a];
-                    z[((k - 1) * na + a) * block + lane] = if dt > 0.0 { dw / dt.sqrt() } else { 0.0 };
+        }
+        for k in 1..=steps {
+            let dt = self.times[k] - self.times[k - 1];
+            let scale = if dt > 0.0 { 1.0 / dt.sqrt() } else { 0.0 };
+            for a in 0..na {
+                let (before, now) = (&w[((k - 1) * na + a) * lanes..][..lanes], &w[(k * na + a) * lanes..][..lanes]);
+                let out = &mut z[((k - 1) * na + a) * block..][..lanes];
+                for ((o, x0), x1) in out.iter_mut().zip(before).zip(now) {
+                    *o = (x1 - x0) * scale;
                 }
             }
         }
