@@ -211,6 +211,7 @@ impl PathBuffers {
         // normals runs as straight loops over lanes: draw (lane by lane, asset by asset
         // within a lane: the order is part of what a seed means), correlate, step the logs
         // of each path and its mirror, exponentiate.
+        let mut centre = model.log_spot.clone();
         for k in 1..p.grid.len() {
             let (drift, scale) = (&model.drift[k], &model.scale[k]);
             if let Some(given) = given {
@@ -261,9 +262,30 @@ impl PathBuffers {
                 }
             }
             for a in 0..na {
+                centre[a] += drift[a];
                 let cell = (k * na + a) * block;
                 let x = &self.x[a * block..a * block + lanes];
-                exp_into(&mut self.levels[cell..cell + lanes], x);
+                let levels = &mut self.levels[cell..cell + lanes];
+                if antithetic && drawn > 0 {
+                    // One exp per pair: a path and its mirror are symmetric about the
+                    // common centre c (the log spot plus the drifts so far), so the
+                    // mirror's level is e^{2c} / the path's level, a division for an exp.
+                    exp_into(&mut levels[..drawn], &x[..drawn]);
+                    let twice = (2.0 * centre[a]).exp();
+                    let (up, down) = levels.split_at_mut(drawn);
+                    let mut finite = true;
+                    for (d, u) in down[..drawn].iter_mut().zip(up.iter()) {
+                        *d = twice / u;
+                        finite &= d.is_finite() && *d != 0.0;
+                    }
+                    if !finite {
+                        // Beyond the range of doubles (or of e^{2c}): the mirror's own exp.
+                        exp_into(&mut down[..drawn], &x[drawn..2 * drawn]);
+                    }
+                    exp_into(&mut levels[2 * drawn..], &x[2 * drawn..]);
+                } else {
+                    exp_into(levels, x);
+                }
                 if self.keep_logs {
                     self.logs[cell..cell + lanes].copy_from_slice(x);
                 }
