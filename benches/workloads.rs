@@ -49,7 +49,7 @@ fn pool(threads: usize) -> ThreadPool {
 
 /// Prices a payoff file the way `pathfold price --no-control` does.
 fn price_payoff(file: &Path, paths: u64) -> (f64, f64) {
-    let settings = Settings { paths, seed: SEED, antithetic: true, control_variates: false };
+    let settings = Settings { paths, seed: SEED, antithetic: true, control_variates: false, ..Settings::default() };
     let priced = price_file(file, None, &[], &settings).expect("the benchmark payoff prices");
     (priced.estimate.price, priced.estimate.std_error)
 }

@@ -288,8 +288,13 @@ pub fn merge_parts(
     let ordered = check_cover(&headers)?;
     // The payoff again, from the files the parts name, unchanged.
     let s = &first.settings;
-    let settings =
-        Settings { paths: s.paths, seed: s.seed, antithetic: s.antithetic, control_variates: s.control_variates };
+    let settings = Settings {
+        paths: s.paths,
+        seed: s.seed,
+        antithetic: s.antithetic,
+        control_variates: s.control_variates,
+        ..Settings::default()
+    };
     settings.validate()?;
     let overrides: Vec<Override> =
         s.overrides.iter().map(|o| Override::parse(o)).collect::<Result<_, _>>().map_err(|d| d.render(None))?;

@@ -18,7 +18,7 @@ use pathfold::sim::Settings;
 
 fn engine(file: &str, paths: u64, seed: u64) -> (f64, f64) {
     let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("benches").join(file);
-    let settings = Settings { paths, seed, antithetic: true, control_variates: false };
+    let settings = Settings { paths, seed, antithetic: true, control_variates: false, ..Settings::default() };
     let priced = price_file(&path, None, &[], &settings).unwrap_or_else(|f| panic!("{}", f.render()));
     (priced.estimate.price, priced.estimate.std_error)
 }
@@ -104,7 +104,7 @@ fn w1_call_without_antithetic_pairs_and_with_controls_matches_black_scholes() {
     let bs = black_scholes(OptionKind::Call, 100.0, 105.0, 1.0, 0.03, 0.03 - 0.01, 0.20);
     let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("benches").join("w1_call.payoff");
     for (antithetic, control_variates) in [(false, false), (false, true), (true, true)] {
-        let settings = Settings { paths: 200_001, seed: 41, antithetic, control_variates };
+        let settings = Settings { paths: 200_001, seed: 41, antithetic, control_variates, ..Settings::default() };
         let e = price_file(&path, None, &[], &settings).unwrap_or_else(|f| panic!("{}", f.render())).estimate;
         assert!(e.std_error > 0.0, "{settings:?}: {e:?}");
         assert!(

@@ -377,6 +377,7 @@ impl Gen<'_, '_> {
             seed: self.tape.pick(256) as u64,
             antithetic: !self.tape.chance(20),
             control_variates: !self.tape.chance(30),
+            ..Settings::default()
         };
         self.p
     }

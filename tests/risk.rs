@@ -22,7 +22,7 @@ fn bs(s: f64, t: f64, r: f64, q: f64, sigma: f64) -> f64 {
 }
 
 fn risk(file: &str, paths: u64, seed: u64) -> Risk {
-    let settings = Settings { paths, seed, antithetic: true, control_variates: false };
+    let settings = Settings { paths, seed, antithetic: true, control_variates: false, ..Settings::default() };
     risk_file(Path::new(file), None, &[], &settings, &Bumps::default()).expect("risk runs")
 }
 

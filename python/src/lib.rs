@@ -36,7 +36,7 @@ fn failure(f: &Failure) -> PyErr {
 }
 
 fn settings(paths: u64, seed: u64, antithetic: bool, control_variates: bool) -> PyResult<Settings> {
-    let s = Settings { paths, seed, antithetic, control_variates };
+    let s = Settings { paths, seed, antithetic, control_variates, ..Settings::default() };
     s.validate().map_err(refused)?;
     Ok(s)
 }

@@ -13,6 +13,7 @@ use super::{
 use crate::batch::{self, Row};
 use crate::output::{self, rows, Format};
 use crate::partial::{check_part_count, run_part, Part};
+use crate::sim::Sampler;
 
 #[derive(Debug, Args)]
 pub struct PriceArgs {
@@ -95,6 +96,9 @@ fn price_part_inner(args: &PriceArgs, part: &str) -> Result<ExitCode, String> {
     let p = &args.pricing;
     let part = Part::parse(part)?;
     let request = request(p)?;
+    if request.settings.sampler == Sampler::Sobol {
+        return Err("--sampler sobol cannot be split with --part: its error comes from whole randomisations of the point set, which the parts would cut apart\n  fix: run the Sobol pricing in one piece, or split a pseudo-random run (the default sampler)".into());
+    }
     if request.target.is_some() {
         return Err("--target-se cannot be split with --part: an error-bounded run chooses its path count from the error of the paths so far, which no single part sees\n  fix: give every part the same fixed --paths (a quick single run with --target-se at a loose target tells how many)".into());
     }

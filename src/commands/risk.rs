@@ -54,8 +54,13 @@ impl ScenarioArgs {
             .map(|s| Override::parse(s))
             .collect::<Result<_, Diagnostic>>()
             .map_err(|d| d.render(None))?;
-        let settings =
-            Settings { paths: self.paths, seed: self.seed, antithetic: !self.no_antithetic, control_variates: false };
+        let settings = Settings {
+            paths: self.paths,
+            seed: self.seed,
+            antithetic: !self.no_antithetic,
+            control_variates: false,
+            ..Settings::default()
+        };
         settings.validate().map_err(|e| e + "\n")?;
         Ok((overrides, settings))
     }

@@ -9,6 +9,7 @@ use rand_pcg::Pcg64;
 
 use super::paths::{Controls, Model, PathBuffers};
 use super::rule;
+use super::sobol::Qmc;
 use super::stats::{sum, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
@@ -26,6 +27,22 @@ pub struct Workspace {
     columns: Vec<Vec<f64>>,
     /// The lanes an early-exercise decision reads (`may end`).
     choice: rule::Lanes,
+    /// Per lane, the grid index from which the path is known to have ended (the last
+    /// grid index while it runs on); kept only when the controls ask for it.
+    stop: Vec<f64>,
+    /// A quasi-random sampler's normals for one block, and its scratch (allocated on
+    /// first use).
+    given: Vec<f64>,
+    qmc_scratch: Vec<f64>,
+}
+
+/// Where a block's normals come from when they are quasi-random: randomisation `r` of a
+/// Sobol run, from point `first` on.
+#[derive(Clone, Copy)]
+pub struct Points<'a> {
+    pub qmc: &'a Qmc,
+    pub r: usize,
+    pub first: u32,
 }
 
 /// An operand resolved for one block: a lane slice or one value for all lanes.
@@ -47,6 +64,9 @@ impl Workspace {
             paid: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
             choice: rule::Lanes::new(p.choices.iter().map(|c| c.using.len()).max().unwrap_or(0), BLOCK),
+            stop: vec![0.0; BLOCK],
+            given: Vec::new(),
+            qmc_scratch: Vec::new(),
         }
     }
 
@@ -70,8 +90,36 @@ impl Workspace {
         index: u64,
         lanes: usize,
     ) -> BlockResult {
+        self.run_block_from(p, model, controls, settings, index, lanes, None)
+    }
+
+    /// [`Workspace::run_block`], with the normals from `points` when given (block
+    /// `index` still seeds the stream of everything else the block draws).
+    #[allow(clippy::too_many_arguments)]
+    pub fn run_block_from(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        controls: &Controls,
+        settings: &Settings,
+        index: u64,
+        lanes: usize,
+        points: Option<Points<'_>>,
+    ) -> BlockResult {
         let mut rng = block_rng(settings.seed, index);
-        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK);
+        let drawn = if settings.antithetic { lanes / 2 } else { lanes };
+        let given = match points {
+            Some(pt) => {
+                let cells = p.grid.len().saturating_sub(1) * p.assets.len() * BLOCK;
+                if self.given.len() < cells {
+                    self.given = vec![0.0; cells];
+                }
+                pt.qmc.fill(pt.r, pt.first, drawn, BLOCK, &mut rng, &mut self.given, &mut self.qmc_scratch);
+                Some(&self.given[..])
+            }
+            None => None,
+        };
+        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK, given);
         self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
         if !p.path_values.is_empty() {
             let antithetic = settings.antithetic;
@@ -87,15 +135,13 @@ impl Workspace {
             bad_paths: Vec::new(),
             largest: (0.0, 0),
         };
-        self.execute(p, lanes, &mut result);
+        self.execute(p, controls, lanes, &mut result);
         // Paths still alive after the last operation end on the last run date.
         if let Some(last) = p.events.len().checked_sub(1) {
             result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
         }
         result.raw = Moments::of_columns(&[&self.pv[..lanes]]);
-        for j in 0..controls.len() {
-            controls.values(j, p, &self.paths, lanes, BLOCK, &mut self.columns[1 + j]);
-        }
+        controls.fill(p, &self.paths, &self.stop, lanes, BLOCK, &mut self.columns[1..]);
         self.columns[0][..lanes].copy_from_slice(&self.pv[..lanes]);
         // An antithetic pair is one sample: the mean of its two paths.
         let units = if settings.antithetic { lanes / 2 } else { lanes };
@@ -122,14 +168,17 @@ impl Workspace {
         result
     }
 
-    fn execute(&mut self, p: &Program, lanes: usize, result: &mut BlockResult) {
+    fn execute(&mut self, p: &Program, controls: &Controls, lanes: usize, result: &mut BlockResult) {
         self.regs[ALIVE as usize][..lanes].fill(1.0);
+        if controls.tracks_ends() {
+            self.stop[..lanes].fill((p.grid.len() - 1) as f64);
+        }
         for (s, init) in p.states.iter().enumerate() {
             self.regs[1 + s][..lanes].fill(*init);
         }
         self.pv[..lanes].fill(0.0);
         self.choice.recorded = false;
-        for op in &p.ops {
+        for (index, op) in p.ops.iter().enumerate() {
             match *op {
                 Op::Bin { op, dst, a, b } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
@@ -238,6 +287,13 @@ impl Workspace {
                     let ended;
                     if mask == ALIVE {
                         ended = sum(&alive[..lanes]);
+                        if let Some(from) = controls.end_known_from(index) {
+                            for (s, a) in self.stop[..lanes].iter_mut().zip(&alive[..lanes]) {
+                                if *a != 0.0 {
+                                    *s = s.min(from);
+                                }
+                            }
+                        }
                         alive[..lanes].fill(0.0);
                     } else {
                         let m = &self.regs[mask as usize][..lanes];
@@ -248,6 +304,13 @@ impl Workspace {
                             *a = if end { 0.0 } else { *a };
                         }
                         ended = sum(gone);
+                        if let Some(from) = controls.end_known_from(index) {
+                            for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
+                                if *g != 0.0 {
+                                    *s = s.min(from);
+                                }
+                            }
+                        }
                     }
                     result.ended[slot as usize] += ended;
                     self.regs[ALIVE as usize] = alive;

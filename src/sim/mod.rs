@@ -15,6 +15,7 @@ pub mod partial;
 pub mod paths;
 pub mod regress;
 pub mod rule;
+pub mod sobol;
 pub mod stats;
 
 use std::time::{Duration, Instant};
@@ -41,12 +42,31 @@ pub struct Settings {
     pub seed: u64,
     pub antithetic: bool,
     pub control_variates: bool,
+    pub sampler: Sampler,
 }
 
 impl Default for Settings {
     fn default() -> Self {
-        Settings { paths: DEFAULT_PATHS, seed: DEFAULT_SEED, antithetic: true, control_variates: true }
+        Settings {
+            paths: DEFAULT_PATHS,
+            seed: DEFAULT_SEED,
+            antithetic: true,
+            control_variates: true,
+            sampler: Sampler::Random,
+        }
     }
+}
+
+/// Where a path's normals come from.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum Sampler {
+    /// Pseudo-random numbers: one PCG stream per block.
+    #[default]
+    Random,
+    /// Randomised Sobol points through a Brownian bridge ([`sobol`]): the path count is
+    /// split into [`sobol::RANDOMISATIONS`] independent randomisations of whole blocks,
+    /// and the standard error is their spread.
+    Sobol,
 }
 
 /// The default number of paths of `pathfold price`.
@@ -61,7 +81,17 @@ impl Settings {
     /// Checks the path count against [`MIN_PATHS`]..=[`MAX_PATHS`]; the message names
     /// the option and the allowed range.
     pub fn validate(&self) -> Result<(), String> {
-        path_count("--paths", self.paths)
+        path_count("--paths", self.paths)?;
+        let most = sobol::RANDOMISATIONS as u64 * (1 << 32);
+        if self.sampler == Sampler::Sobol && self.paths > most {
+            return Err(format!(
+                "--paths {} is too many for --sampler sobol: its points are numbered in 32 bits, so a run uses at most {} paths ({} randomisations of 2^32)",
+                thousands(self.paths),
+                thousands(most),
+                sobol::RANDOMISATIONS
+            ));
+        }
+        Ok(())
     }
 }
 
@@ -145,10 +175,61 @@ pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diag
     let started = Instant::now();
     settings.validate().map_err(Diagnostic::new)?;
     let fitted = exercise::prepare(program, settings);
+    if settings.sampler == Sampler::Sobol {
+        return simulate_sobol(&fitted, settings, started);
+    }
     let mut run = Run::new(&fitted, settings);
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     run.extend_to(paths);
     run.finish(started)
+}
+
+/// [`simulate`] with Sobol points: [`sobol::RANDOMISATIONS`] independent randomisations of
+/// the same points, each `paths / RANDOMISATIONS` rounded up to whole blocks. The control
+/// coefficients are fitted on all of them together; the price is the mean of the
+/// randomisations' controlled estimates and the standard error their spread.
+fn simulate_sobol(program: &Program, settings: &Settings, started: Instant) -> Result<Estimate, Diagnostic> {
+    let qmc = sobol::Qmc::new(&program.grid, program.assets.len(), settings.seed);
+    let count = sobol::RANDOMISATIONS as u64;
+    let per = settings.paths.div_ceil(count).div_ceil(BLOCK as u64) * BLOCK as u64;
+    let mut runs = Vec::with_capacity(sobol::RANDOMISATIONS);
+    for r in 0..sobol::RANDOMISATIONS {
+        let mut run = Run::new(program, settings);
+        run.points = Some((&qmc, r));
+        run.extend_to(per);
+        runs.push(run);
+    }
+    let mut pooled = Run::new(program, settings);
+    for run in &runs {
+        pooled.total.merge(&run.total);
+    }
+    pooled.paths = per * count;
+    if !pooled.total.is_finite() {
+        return pooled.finish(started);
+    }
+    let regression = pooled.regression();
+    let estimates: Vec<f64> = runs
+        .iter()
+        .map(|run| {
+            let m = &run.total.moments;
+            let mut y = m.mean(0);
+            for (b, &j) in regression.beta.iter().zip(&regression.kept) {
+                y -= b * (m.mean(1 + j) - pooled.controls.mean(j));
+            }
+            y
+        })
+        .collect();
+    let n = estimates.len() as f64;
+    let price = estimates.iter().sum::<f64>() / n;
+    let spread = estimates.iter().map(|e| (e - price) * (e - price)).sum::<f64>() / (n - 1.0);
+    let std_error = (spread / n).sqrt();
+    let raw_var = pooled.total.raw.variance(0) / pooled.paths as f64;
+    let mut estimate = pooled.finish(started)?;
+    estimate.price = price;
+    estimate.std_error = std_error;
+    estimate.variance_reduction =
+        (std_error > 0.0).then(|| raw_var / (std_error * std_error)).filter(|v| v.is_finite());
+    Ok(estimate)
 }
 
 /// Prices a compiled program, adding whole blocks of paths until the standard error is at
@@ -166,6 +247,9 @@ pub fn simulate_to_target(
 ) -> Result<(Estimate, bool), Diagnostic> {
     let started = Instant::now();
     settings.validate().and_then(|()| validate_max_paths(max_paths, settings.paths)).map_err(Diagnostic::new)?;
+    if settings.sampler == Sampler::Sobol {
+        return Err(Diagnostic::new("an error-bounded run needs the pseudo-random sampler: a Sobol run's error comes from randomisations of a point set fixed in advance"));
+    }
     let block = BLOCK as u64;
     let whole = |n: u64| n.div_ceil(block) * block;
     let max_paths = whole(max_paths);
@@ -203,6 +287,8 @@ struct Run<'a> {
     controls: Controls,
     total: BlockResult,
     paths: u64,
+    /// For a Sobol run: the sampler and this run's randomisation.
+    points: Option<(&'a sobol::Qmc, usize)>,
 }
 
 impl<'a> Run<'a> {
@@ -211,7 +297,7 @@ impl<'a> Run<'a> {
         let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
-        Run { program, settings, model, controls, total, paths: 0 }
+        Run { program, settings, model, controls, total, paths: 0, points: None }
     }
 
     /// Simulates the blocks that take the run from its current path count to `paths`.
@@ -219,6 +305,11 @@ impl<'a> Run<'a> {
     fn extend_to(&mut self, paths: u64) {
         debug_assert!(self.paths % BLOCK as u64 == 0, "a run can only grow from whole blocks");
         let (program, settings, model, controls) = (self.program, self.settings, &self.model, &self.controls);
+        let points = self.points;
+        // A Sobol run's blocks draw the rest of their numbers from streams no
+        // pseudo-random run's blocks use; its points run on from block to block.
+        let stream = |b: u64| points.map_or(b, |(_, r)| ((r as u64 + 1) << 40) | b);
+        let drawn = if settings.antithetic { BLOCK / 2 } else { BLOCK } as u64;
         let blocks = paths.div_ceil(BLOCK as u64);
         let mut next = self.paths / BLOCK as u64;
         while next < blocks {
@@ -229,7 +320,8 @@ impl<'a> Run<'a> {
                     || Workspace::new(program, model, controls),
                     |ws, b| {
                         let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
-                        ws.run_block(program, model, controls, settings, b, lanes)
+                        let at = points.map(|(qmc, r)| exec::Points { qmc, r, first: (b * drawn) as u32 });
+                        ws.run_block_from(program, model, controls, settings, stream(b), lanes, at)
                     },
                 )
                 .collect();

@@ -7,7 +7,7 @@ use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
 use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
-use crate::compile::{PathValue, Program};
+use crate::compile::{Op, PathValue, Program, Src, ALIVE};
 use crate::typing::Direction;
 
 /// Per-step constants of the risk-neutral dynamics
@@ -210,7 +210,10 @@ impl PathBuffers {
     }
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
-    /// (`h = lanes / 2`) with every normal negated.
+    /// (`h = lanes / 2`) with every normal negated. The normals are drawn from `rng`
+    /// unless `given` holds them, laid out `[((k − 1)·assets + a)·block + lane]` for step
+    /// `k` and asset `a` (a quasi-random sampler's).
+    #[allow(clippy::too_many_arguments)]
     pub fn generate(
         &mut self,
         p: &Program,
@@ -219,6 +222,7 @@ impl PathBuffers {
         lanes: usize,
         antithetic: bool,
         block: usize,
+        given: Option<&[f64]>,
     ) {
         let na = p.assets.len();
         let drawn = if antithetic { lanes / 2 } else { lanes };
@@ -242,9 +246,15 @@ impl PathBuffers {
         // normals runs as straight loops over lanes: draw (lane by lane, asset by asset
         // within a lane: the order is part of what a seed means), correlate, step the logs
         // of each path and its mirror, exponentiate.
+        let mut centre = model.log_spot.clone();
         for k in p.past + 1..p.grid.len() {
             let (drift, scale) = (&model.drift[k], &model.scale[k]);
-            if na == 1 {
+            if let Some(given) = given {
+                for a in 0..na {
+                    let from = &given[((k - 1) * na + a) * block..][..drawn];
+                    self.z[a * block..a * block + drawn].copy_from_slice(from);
+                }
+            } else if na == 1 {
                 for z in &mut self.z[..drawn] {
                     *z = rng.sample(StandardNormal);
                 }
@@ -287,9 +297,30 @@ impl PathBuffers {
                 }
             }
             for a in 0..na {
+                centre[a] += drift[a];
                 let cell = (k * na + a) * block;
                 let x = &self.x[a * block..a * block + lanes];
-                exp_into(&mut self.levels[cell..cell + lanes], x);
+                let levels = &mut self.levels[cell..cell + lanes];
+                if antithetic && drawn > 0 {
+                    // One exp per pair: a path and its mirror are symmetric about the
+                    // common centre c (the log spot plus the drifts so far), so the
+                    // mirror's level is e^{2c} / the path's level, a division for an exp.
+                    exp_into(&mut levels[..drawn], &x[..drawn]);
+                    let twice = (2.0 * centre[a]).exp();
+                    let (up, down) = levels.split_at_mut(drawn);
+                    let mut finite = true;
+                    for (d, u) in down[..drawn].iter_mut().zip(up.iter()) {
+                        *d = twice / u;
+                        finite &= d.is_finite() && *d != 0.0;
+                    }
+                    if !finite {
+                        // Beyond the range of doubles (or of e^{2c}): the mirror's own exp.
+                        exp_into(&mut down[..drawn], &x[drawn..2 * drawn]);
+                    }
+                    exp_into(&mut levels[2 * drawn..], &x[2 * drawn..]);
+                } else {
+                    exp_into(levels, x);
+                }
                 if self.keep_logs {
                     self.logs[cell..cell + lanes].copy_from_slice(x);
                 }
@@ -534,6 +565,21 @@ enum ControlKind {
     Geometric { asset: usize, fixings: Vec<usize> },
     /// A call on that geometric mean.
     GeometricCall { asset: usize, fixings: Vec<usize>, strike: f64 },
+    /// A stopped hedge: the gains of holding the asset, financed and with its dividends
+    /// passed on, from the valuation date until the product ends ([`Hedge`]).
+    Hedge { asset: usize, weight: HedgeWeight },
+}
+
+/// How many units of the asset the stopped hedge holds over each step, known at the
+/// step's start.
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum HedgeWeight {
+    /// One unit while the product is alive.
+    Alive,
+    /// One unit while alive and the asset has the lowest performance of all.
+    Worst,
+    /// While alive and the asset is the worst, as many units as its performance less one.
+    WorstScaled,
 }
 
 #[derive(Clone, Debug, PartialEq)]
@@ -553,6 +599,139 @@ struct Control {
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct Controls {
     list: Vec<Control>,
+    hedge: Option<Hedge>,
+}
+
+/// What the stopped-hedge controls need: when each `end` is known, and each asset's
+/// martingale scaling.
+///
+/// A product that can end early (an autocallable) pays a step function of the date it
+/// ends and of the levels then: the controls above, all read at the last date, barely
+/// see it. A stopped hedge does: with `M(t) = S(t)·e^{−(r−q)t}/S(0)` (the asset's
+/// discounted value with its dividends reinvested, a martingale under the pricing
+/// measure), the gain `Σₖ wₖ·(M(tₖ₊₁) − M(tₖ))` of any holding `wₖ` fixed at `tₖ` has
+/// expectation exactly zero (optional stopping; common practice for delta-hedge control
+/// variates). Holding while the product is alive, and more while an asset is the worst,
+/// mimics the product's own delta; the regression picks the amounts.
+#[derive(Clone, Debug, PartialEq)]
+struct Hedge {
+    /// Per operation: for an `End`, the grid index from which its outcome is known (the
+    /// latest date read by it or any operation before it, and its own date); else unused.
+    known_from: Vec<f64>,
+    /// `factor[k·assets + a]`: `M(tₖ)/S(tₖ)` for asset `a`, built from the model's own
+    /// steps so that `E[M(tₖ₊₁) | tₖ] = M(tₖ)` holds exactly for its drift.
+    factor: Vec<f64>,
+}
+
+impl Hedge {
+    /// The hedge of a program that can end before its last date; `None` for one that
+    /// cannot (a fixed maturity is what the other controls fit).
+    fn of(p: &Program, model: &Model) -> Option<Hedge> {
+        let early = p.ops.iter().any(|op| matches!(op, Op::End { mask, .. } if *mask != ALIVE));
+        if !early || p.grid.len() < 2 {
+            return None;
+        }
+        let na = p.assets.len().max(1);
+        let grid_of = |t: f64| p.grid.iter().position(|&g| (g - t).abs() < 1e-12);
+        let mut read = 0usize;
+        let mut known_from = Vec::with_capacity(p.ops.len());
+        for op in &p.ops {
+            // An exercise decision also reads the variables its rule regresses on.
+            let rule_reads: &[Src] = match op {
+                Op::Choose { site, .. } => &p.choices[*site as usize].using,
+                _ => &[],
+            };
+            for src in op_sources(op).chain(rule_reads.iter().copied()) {
+                match src {
+                    Src::Level(k) => read = read.max(k as usize / na),
+                    Src::Monitor(m) => read = read.max(p.monitors[m as usize].to),
+                    Src::Path(v) => {
+                        let to = match p.path_values[v as usize] {
+                            PathValue::HitDiscount { monitor } => p.monitors[monitor].to,
+                            PathValue::Extreme { to, .. } => to,
+                        };
+                        read = read.max(to);
+                    }
+                    Src::Reg(_) | Src::Const(_) => {}
+                }
+            }
+            let from = match op {
+                Op::End { slot, .. } => {
+                    // A date that is not on the grid: known only at the last date.
+                    let own = grid_of(p.events[*slot as usize].time).unwrap_or(p.grid.len() - 1);
+                    own.max(read)
+                }
+                _ => p.grid.len() - 1,
+            };
+            known_from.push(from as f64);
+        }
+        let mut factor = vec![0.0; p.grid.len() * p.assets.len()];
+        for (a, m) in p.assets.iter().enumerate() {
+            let mut f = 1.0 / m.spot;
+            factor[a] = f;
+            for k in 1..p.grid.len() {
+                let (d, s) = (model.drift[k][a], model.scale[k][a]);
+                f *= (-(d + 0.5 * s * s)).exp();
+                factor[k * p.assets.len() + a] = f;
+            }
+        }
+        Some(Hedge { known_from, factor })
+    }
+}
+
+/// One step of the three hedges of one asset over a block's lanes: `out` = (while alive,
+/// while worst, scaled by the worst), `x` = (level at the step's start, at its end, the
+/// worst performance at its start, the grid index the path stops at), `c` = (martingale
+/// factors at both ends, 1/spot, the step's grid index).
+fn hedge_step3(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been checked for AVX2.
+            unsafe { hedge_step3_avx2(out, x, c) };
+            return;
+        }
+    }
+    hedge_step3_generic(out, x, c);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn hedge_step3_avx2(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
+    hedge_step3_generic(out, x, c);
+}
+
+/// Additions, multiplications and selects only, never fused: the same bits with or
+/// without AVX2.
+#[inline(always)]
+fn hedge_step3_generic(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
+    let [alive, low, scaled] = out;
+    let [s0, s1, worst, stop] = x;
+    let [f0, f1, inv, now] = c;
+    let n = alive.len();
+    let (low, scaled, s0, s1, worst, stop) =
+        (&mut low[..n], &mut scaled[..n], &s0[..n], &s1[..n], &worst[..n], &stop[..n]);
+    for i in 0..n {
+        let step = s1[i] * f1 - s0[i] * f0;
+        let d = if now < stop[i] { step } else { 0.0 };
+        let w = if s0[i] * inv == worst[i] { d } else { 0.0 };
+        alive[i] += d;
+        low[i] += w;
+        scaled[i] += (worst[i] - 1.0) * w;
+    }
+}
+
+/// The operands an operation reads.
+fn op_sources(op: &Op) -> impl Iterator<Item = Src> {
+    let (a, b, c) = match *op {
+        Op::Bin { a, b, .. } | Op::Cmp { a, b, .. } => (Some(a), Some(b), None),
+        Op::Un { a, .. } => (Some(a), None, None),
+        Op::Select { cond, a, b, .. } => (Some(cond), Some(a), Some(b)),
+        Op::Acc { src, .. } | Op::Copy { src, .. } | Op::Assign { src, .. } => (Some(src), None, None),
+        Op::Pay { amount, .. } | Op::Choose { amount, .. } => (Some(amount), None, None),
+        Op::End { .. } => (None, None, None),
+    };
+    [a, b, c].into_iter().flatten()
 }
 
 impl Controls {
@@ -569,7 +748,7 @@ impl Controls {
         let last = p.grid.len() - 1;
         let t = p.grid[last];
         if t <= 0.0 {
-            return Controls { list };
+            return Controls { list, hedge: None };
         }
         if let Some(c) = &p.curves {
             return Controls { list: curve_controls(p, c) };
@@ -628,7 +807,165 @@ impl Controls {
                 scale: geometric_forward,
             });
         }
-        Controls { list }
+        let hedge = Hedge::of(p, &Model::new(p));
+        if hedge.is_some() {
+            let weights = if p.assets.len() > 1 {
+                &[HedgeWeight::Alive, HedgeWeight::Worst, HedgeWeight::WorstScaled][..]
+            } else {
+                // One asset is always the worst.
+                &[HedgeWeight::Alive, HedgeWeight::WorstScaled][..]
+            };
+            for (a, m) in p.assets.iter().enumerate() {
+                for &weight in weights {
+                    let what = match weight {
+                        HedgeWeight::Alive => "hedge while alive",
+                        HedgeWeight::Worst => "hedge while worst",
+                        HedgeWeight::WorstScaled => "hedge scaled by the worst",
+                    };
+                    list.push(Control {
+                        name: format!("{} {what}", m.name),
+                        kind: ControlKind::Hedge { asset: a, weight },
+                        discount: 1.0,
+                        mean: 0.0,
+                        scale: 1.0,
+                    });
+                }
+            }
+        }
+        Controls { list, hedge }
+    }
+
+    /// For the `End` at operation `op`, the grid index from which its outcome is known,
+    /// when the controls need to know where each path ends.
+    pub fn end_known_from(&self, op: usize) -> Option<f64> {
+        self.hedge.as_ref().map(|h| h.known_from[op])
+    }
+
+    /// Whether the controls need to know where each path ends ([`Controls::end_known_from`]).
+    pub fn tracks_ends(&self) -> bool {
+        self.hedge.is_some()
+    }
+
+    /// Writes every control's discounted value on each path into `columns[j]`; `stop`
+    /// holds, per lane, the grid index from which the path is known to have ended (read
+    /// only when [`Controls::tracks_ends`]).
+    pub fn fill(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been checked for AVX2.
+                unsafe { self.fill_avx2(p, paths, stop, lanes, block, columns) };
+                return;
+            }
+        }
+        self.fill_generic(p, paths, stop, lanes, block, columns);
+    }
+
+    /// Additions, multiplications, selects and `min` only, never fused: the same bits as
+    /// the baseline build.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn fill_avx2(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        self.fill_generic(p, paths, stop, lanes, block, columns);
+    }
+
+    #[inline(always)]
+    fn fill_generic(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        for (j, col) in columns.iter_mut().enumerate().take(self.list.len()) {
+            self.values(j, p, paths, lanes, block, col);
+        }
+        if let Some(h) = &self.hedge {
+            self.hedge_values(h, p, paths, stop, lanes, block, columns);
+        }
+    }
+
+    /// The stopped-hedge controls, all in one pass over the steps.
+    #[allow(clippy::too_many_arguments)]
+    #[inline(always)]
+    fn hedge_values(
+        &self,
+        h: &Hedge,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        let na = p.assets.len();
+        let first =
+            self.list.iter().position(|c| matches!(c.kind, ControlKind::Hedge { .. })).unwrap_or(self.list.len());
+        let per_asset = (self.list.len() - first) / na.max(1);
+        for col in &mut columns[first..self.list.len()] {
+            col[..lanes].fill(0.0);
+        }
+        if per_asset == 0 {
+            return;
+        }
+        let level = |k: usize, a: usize| &paths.levels[(k * na + a) * block..][..lanes];
+        let inv_spot: Vec<f64> = p.assets.iter().map(|m| 1.0 / m.spot).collect();
+        let stop = &stop[..lanes];
+        let mut worst = vec![0.0; lanes];
+        // From the valuation date: the steps before it are fixings, known on every path
+        // (their gains would be a constant, not a zero-mean control).
+        for k in p.past..p.grid.len() - 1 {
+            worst.fill(f64::INFINITY);
+            for (a, inv) in inv_spot.iter().enumerate() {
+                for (w, s) in worst.iter_mut().zip(level(k, a)) {
+                    *w = w.min(s * inv);
+                }
+            }
+            for (a, inv) in inv_spot.iter().enumerate() {
+                let (f0, f1) = (h.factor[k * na + a], h.factor[(k + 1) * na + a]);
+                let (s0, s1) = (level(k, a), level(k + 1, a));
+                let cols = &mut columns[first + a * per_asset..first + (a + 1) * per_asset];
+                let (s0, s1, worst) = (&s0[..lanes], &s1[..lanes], &worst[..lanes]);
+                let now = k as f64;
+                // Held while the path is alive at the step's start: its end is known from
+                // `stop` on, so `k < stop` is known at tₖ. Selects, not branches, so the
+                // loops vectorise.
+                let stop = &stop[..lanes];
+                if let [alive, low, scaled] = cols {
+                    hedge_step3(
+                        [&mut alive[..lanes], &mut low[..lanes], &mut scaled[..lanes]],
+                        [s0, s1, worst, stop],
+                        [f0, f1, *inv, now],
+                    );
+                } else if let [alive, scaled] = cols {
+                    let (alive, scaled) = (&mut alive[..lanes], &mut scaled[..lanes]);
+                    for i in 0..lanes {
+                        let step = s1[i] * f1 - s0[i] * f0;
+                        let d = if now < stop[i] { step } else { 0.0 };
+                        alive[i] += d;
+                        scaled[i] += (worst[i] - 1.0) * d;
+                    }
+                }
+            }
+        }
     }
 
     pub fn len(&self) -> usize {
@@ -659,7 +996,8 @@ impl Controls {
     }
 
     /// Writes control `j`'s discounted value on each path into `out`.
-    pub fn values(&self, j: usize, p: &Program, paths: &PathBuffers, lanes: usize, block: usize, out: &mut [f64]) {
+    #[inline(always)]
+    fn values(&self, j: usize, p: &Program, paths: &PathBuffers, lanes: usize, block: usize, out: &mut [f64]) {
         let c = &self.list[j];
         let na = p.assets.len();
         let last = p.grid.len() - 1;
@@ -677,6 +1015,8 @@ impl Controls {
                     *o = c.discount * (s - strike).max(0.0);
                 }
             }
+            // Filled for all assets at once by `hedge_values`.
+            ControlKind::Hedge { .. } => {}
             ControlKind::Geometric { asset, fixings } | ControlKind::GeometricCall { asset, fixings, .. } => {
                 let strike = match &c.kind {
                     ControlKind::GeometricCall { strike, .. } => Some(*strike),

@@ -73,6 +73,9 @@ pub struct Regression {
     pub std_error: f64,
     /// Indices of the controls used.
     pub kept: Vec<usize>,
+    /// The coefficient of each control used, in the order of `kept`: the estimate is the
+    /// payoff's mean less `Σ beta·(mean − expectation)`.
+    pub beta: Vec<f64>,
     /// The controls left out, and why.
     pub left_out: Vec<(usize, LeftOut)>,
     /// When the controlled estimate failed the guard: that estimate and its distance from
@@ -87,8 +90,14 @@ pub fn regress(m: &Moments, known: &[Known]) -> Regression {
     let mean_y = m.mean(0);
     let var_y = m.variance(0);
     let plain_se = if n < 2.0 { f64::NAN } else { (var_y / n).sqrt() };
-    let mut out =
-        Regression { price: mean_y, std_error: plain_se, kept: Vec::new(), left_out: Vec::new(), fell_back: None };
+    let mut out = Regression {
+        price: mean_y,
+        std_error: plain_se,
+        kept: Vec::new(),
+        beta: Vec::new(),
+        left_out: Vec::new(),
+        fell_back: None,
+    };
     if n < 2.0 || known.is_empty() {
         return out;
     }
@@ -175,6 +184,7 @@ pub fn regress(m: &Moments, known: &[Known]) -> Regression {
     }
     out.price = price;
     out.std_error = std_error;
+    out.beta = kept.iter().enumerate().map(|(a, &(_, sd))| w[a] / sd).collect();
     out.kept = kept.into_iter().map(|(j, _)| j).collect();
     out
 }
