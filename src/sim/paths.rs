@@ -679,6 +679,37 @@ impl Hedge {
     }
 }
 
+/// Appends the stopped hedges of a product that can end early ([`Hedge`]) to `list`:
+/// their gains have mean zero under any lognormal step the model makes (flat or on curves).
+fn add_hedges(p: &Program, list: &mut Vec<Control>) -> Option<Hedge> {
+    let hedge = Hedge::of(p, &Model::new(p));
+    if hedge.is_some() {
+        let weights = if p.assets.len() > 1 {
+            &[HedgeWeight::Alive, HedgeWeight::Worst, HedgeWeight::WorstScaled][..]
+        } else {
+            // One asset is always the worst.
+            &[HedgeWeight::Alive, HedgeWeight::WorstScaled][..]
+        };
+        for (a, m) in p.assets.iter().enumerate() {
+            for &weight in weights {
+                let what = match weight {
+                    HedgeWeight::Alive => "hedge while alive",
+                    HedgeWeight::Worst => "hedge while worst",
+                    HedgeWeight::WorstScaled => "hedge scaled by the worst",
+                };
+                list.push(Control {
+                    name: format!("{} {what}", m.name),
+                    kind: ControlKind::Hedge { asset: a, weight },
+                    discount: 1.0,
+                    mean: 0.0,
+                    scale: 1.0,
+                });
+            }
+        }
+    }
+    hedge
+}
+
 /// One step of the three hedges of one asset over a block's lanes: `out` = (while alive,
 /// while worst, scaled by the worst), `x` = (level at the step's start, at its end, the
 /// worst performance at its start, the grid index the path stops at), `c` = (martingale
@@ -751,7 +782,9 @@ impl Controls {
             return Controls { list, hedge: None };
         }
         if let Some(c) = &p.curves {
-            return Controls { list: curve_controls(p, c) };
+            let mut list = curve_controls(p, c);
+            let hedge = add_hedges(p, &mut list);
+            return Controls { list, hedge };
         }
         let discount = (-p.rate * t).exp();
         for (a, m) in p.assets.iter().enumerate() {
@@ -807,31 +840,7 @@ impl Controls {
                 scale: geometric_forward,
             });
         }
-        let hedge = Hedge::of(p, &Model::new(p));
-        if hedge.is_some() {
-            let weights = if p.assets.len() > 1 {
-                &[HedgeWeight::Alive, HedgeWeight::Worst, HedgeWeight::WorstScaled][..]
-            } else {
-                // One asset is always the worst.
-                &[HedgeWeight::Alive, HedgeWeight::WorstScaled][..]
-            };
-            for (a, m) in p.assets.iter().enumerate() {
-                for &weight in weights {
-                    let what = match weight {
-                        HedgeWeight::Alive => "hedge while alive",
-                        HedgeWeight::Worst => "hedge while worst",
-                        HedgeWeight::WorstScaled => "hedge scaled by the worst",
-                    };
-                    list.push(Control {
-                        name: format!("{} {what}", m.name),
-                        kind: ControlKind::Hedge { asset: a, weight },
-                        discount: 1.0,
-                        mean: 0.0,
-                        scale: 1.0,
-                    });
-                }
-            }
-        }
+        let hedge = add_hedges(p, &mut list);
         Controls { list, hedge }
     }
 
