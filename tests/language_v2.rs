@@ -28,6 +28,9 @@ fn bits(v: &serde_json::Value) -> (String, String) {
 
 const SEED: [&str; 4] = ["--paths", "20000", "--seed", "11"];
 
+/// [`SEED`] without control variates: for equivalences of writings whose control sets differ.
+const SEED_PLAIN: [&str; 5] = ["--paths", "20000", "--seed", "11", "--no-control"];
+
 /// Prices a payoff against the validation market (BOOKA: S = 100, σ = 25%, r = 8%, q = 4%;
 /// BOOKB: the same with σ = 30%).
 fn textbook(name: &str, body: &str, paths: &str) -> (f64, f64) {
@@ -47,6 +50,8 @@ const DAYS: &str = "dates days = business days from 2026-12-02 to 2027-12-01\n";
 #[test]
 fn a_daily_knock_out_checked_since_the_previous_date_prices_as_the_single_window() {
     // Up-and-out call on ZPHX, barrier 130% watched continuously, 5% rebate paid at the touch.
+    // The same paths and payments, so the same bits; without control variates, since a
+    // loop with an `end` also gets the stopped hedges, which the single window has no use for.
     let since_previous = demo(
         "since_previous.payoff",
         &format!(
@@ -59,7 +64,7 @@ fn a_daily_knock_out_checked_since_the_previous_date_prices_as_the_single_window
 }}
 "
         ),
-        &SEED,
+        &SEED_PLAIN,
     );
     let from_start = demo(
         "from_start.payoff",
@@ -73,7 +78,7 @@ fn a_daily_knock_out_checked_since_the_previous_date_prices_as_the_single_window
 }}
 "
         ),
-        &SEED,
+        &SEED_PLAIN,
     );
     let single = demo(
         "single.payoff",
@@ -87,7 +92,7 @@ fn a_daily_knock_out_checked_since_the_previous_date_prices_as_the_single_window
 }}
 "
         ),
-        &SEED,
+        &SEED_PLAIN,
     );
     assert_eq!(bits(&since_previous), bits(&single));
     assert_eq!(bits(&from_start), bits(&single));

@@ -215,3 +215,61 @@ fn a_barrier_bridge_ends_before_a_dividend_drop() {
     let (y, _) = run(&pb, &b);
     assert!((x - y).abs() <= 0.05 * se, "with the dividend {x} ± {se}, written out {y}");
 }
+
+/// A market where OSMP's path is all but certain (volatility 0.01%) and the rate curve is
+/// not flat: zero rates 2% at 1y (365 days) and 6% at 3y (1,096 days, over a 29 February),
+/// linear in log discount factor between the pillars ([`rate_integral`]).
+fn all_but_certain(dir: &Scratch, extra: &str) -> std::path::PathBuf {
+    let text = format!(
+        "valuation_date = 2026-12-01\n[rates]\nUSD = {{ 1y = 0.02, 3y = 0.06 }}\n[underlyings.OSMP]\ncurrency = \"USD\"\nspot = 100.0\nvolatility = 0.0001\n{extra}"
+    );
+    let path = dir.join("certain.toml");
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+/// `∫₀ᵗ r` of [`all_but_certain`]'s curve, by hand from its two pillars.
+fn rate_integral(t: f64) -> f64 {
+    let (t1, t3) = (1.0, 1096.0 / 365.0);
+    interpolate(&[(t1, 0.02 * t1), (t3, 0.06 * t3)], t)
+}
+
+fn price_on(dir: &Scratch, market: &std::path::Path, body: &str) -> (f64, f64) {
+    let text = format!(
+        "product \"All but certain\"\ncurrency USD\nnotional 1\nunderlyings OSMP\nat 2029-11-30 {{\n    {body}\n}}\n"
+    );
+    let payoff = dir.join("certain.payoff");
+    std::fs::write(&payoff, text).unwrap();
+    price_se(&price(payoff.to_str().unwrap(), &["--market", market.to_str().unwrap(), "--paths", "4096"]))
+}
+
+#[test]
+fn a_rebate_paid_at_the_touch_is_discounted_on_the_curve_from_the_moment_of_the_touch() {
+    // Regression (merge of curves with payments at the touch): the hit time's discount
+    // must come from the curve. With no dividend the level grows as e^{∫r}, so the
+    // barrier 100·e^{0.1} is reached when ∫₀ᵗ r = 0.1 (about two years in), worth e^{−0.1}
+    // whenever that is (identity of the deterministic path; discounting at the curve's
+    // first-year rate would give about e^{−0.04}).
+    let dir = Scratch::dir("touch-on-curve");
+    let market = all_but_certain(&dir, "");
+    let barrier = 100.0 * 0.1f64.exp();
+    let (p, se) =
+        price_on(&dir, &market, &format!("pay 1 on first touch(level(OSMP) >= {barrier:.6} from start to 2029-11-30)"));
+    let reference = (-0.1f64).exp();
+    assert!((p - reference).abs() < 2e-4 + 4.0 * se, "rebate {p} ± {se} against e^-0.1 = {reference}");
+}
+
+#[test]
+fn a_running_highest_sees_the_level_before_a_dividend_drops_it() {
+    // Regression (merge of curves with continuous extremes): the bridge of the step
+    // ending on an ex-date runs to the level before the drop. The all-but-certain path
+    // peaks just before the 10% dividend goes ex on 2028-11-30: 100·e^{∫₀ r} at that date,
+    // and pays it at 3y, discounted by e^{−0.18} (identity of the deterministic path).
+    let dir = Scratch::dir("highest-on-curve");
+    let market = all_but_certain(&dir, "proportional_dividends = { 2028-11-30 = 0.10 }\n");
+    let (p, se) = price_on(&dir, &market, "pay highest(level(OSMP) from start to 2029-11-30)");
+    let t_ex = 730.0 / 365.0;
+    let peak = 100.0 * rate_integral(t_ex).exp();
+    let reference = peak * (-rate_integral(1095.0 / 365.0)).exp();
+    assert!((p - reference).abs() < 2e-3 * reference + 4.0 * se, "highest {p} ± {se} against {reference}");
+}
