@@ -1141,6 +1141,21 @@ impl Checker {
         Some(TExpr { kind: TKind::Binary(op, Box::new(a), Box::new(b)), ty: out, span })
     }
 
+    /// Checks that `arg` of function `f` is the date of the enclosing `for each` loop;
+    /// `more` ends the fix.
+    fn loop_date_arg(&mut self, arg: &syntax::Expr, f: &str, more: &str) -> Option<()> {
+        let ok = matches!(&arg.kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
+        if !ok {
+            self.error(
+                arg.span,
+                format!("`{f}` takes the date of the enclosing `for each` loop"),
+                format!("write `{f}(t)` inside `for each t in SCHEDULE {{ ... }}`{more}"),
+            );
+            return None;
+        }
+        Some(())
+    }
+
     fn call(&mut self, name: &Name, args: &[syntax::Expr], span: Span) -> Option<TExpr> {
         let f = name.text.as_str();
         let arity = |c: &mut Checker, lo: usize, hi: usize, usage: &str| -> bool {
@@ -1245,32 +1260,18 @@ impl Checker {
                 if !arity(self, 1, 1, "position(t)") {
                     return None;
                 }
-                let ok =
-                    matches!(&args[0].kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
-                if !ok {
-                    self.error(
-                        args[0].span,
-                        "`position` takes the date of the enclosing `for each` loop",
-                        "write `position(t)` inside `for each t in SCHEDULE { ... }`",
-                    );
-                    return None;
-                }
+                self.loop_date_arg(&args[0], "position", "")?;
                 number(TKind::Position)
             }
             "previous" => {
                 if !arity(self, 1, 1, "previous(t)") {
                     return None;
                 }
-                let ok =
-                    matches!(&args[0].kind, ExprKind::Name(n) if self.loop_var.as_ref().is_some_and(|(v, _)| v == n));
-                if !ok {
-                    self.error(
-                        args[0].span,
-                        "`previous` takes the date of the enclosing `for each` loop",
-                        "write `previous(t)` inside `for each t in SCHEDULE { ... }`: the loop's date before t (the start date on its first date)",
-                    );
-                    return None;
-                }
+                self.loop_date_arg(
+                    &args[0],
+                    "previous",
+                    ": the loop's date before t (the start date on its first date)",
+                )?;
                 Some(TExpr { kind: TKind::Date(DateRef::Previous), ty: Ty::Date, span })
             }
             "years" => {
