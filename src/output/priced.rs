@@ -190,8 +190,14 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     writeln!(out, "  95% interval      {} to {} {ccy}", group(lo, d), group(hi, d))?;
     let pairs = if e.antithetic { " in antithetic pairs" } else { "" };
     writeln!(out, "  paths             {}{pairs}, seed {}", group(e.paths as f64, 0), e.seed)?;
-    let controls = if e.controls.is_empty() { "none".to_string() } else { e.controls.join(", ") };
-    writeln!(out, "  control variates  {controls}")?;
+    if e.controls.is_empty() {
+        writeln!(out, "  control variates  none")?;
+    }
+    // Many controls (a stopped hedge per underlying and weight) wrap under their label.
+    for (i, line) in wrap_list(&e.controls, 70).iter().enumerate() {
+        let label = if i == 0 { "control variates" } else { "" };
+        writeln!(out, "  {label:<16}  {line}")?;
+    }
     match e.variance_reduction {
         Some(v) => writeln!(out, "  variance cut      {v:.1} times (against plain Monte Carlo on as many paths)")?,
         None => writeln!(out, "  variance cut      not measurable (no variance left)")?,
@@ -253,4 +259,39 @@ pub fn write_table(out: &mut dyn Write, p: &Priced) -> io::Result<()> {
     }
     writeln!(out)?;
     writeln!(out, "{CAUTION}")
+}
+
+/// The items joined with `, ` into lines of at most `width` characters (an item longer
+/// than that has a line of its own); a line that goes on ends with the comma.
+fn wrap_list(items: &[String], width: usize) -> Vec<String> {
+    let mut lines: Vec<String> = Vec::new();
+    let mut line = String::new();
+    for (i, item) in items.iter().enumerate() {
+        let piece = if i + 1 < items.len() { format!("{item},") } else { item.clone() };
+        if !line.is_empty() && line.chars().count() + 1 + piece.chars().count() > width {
+            lines.push(std::mem::take(&mut line));
+        }
+        if !line.is_empty() {
+            line.push(' ');
+        }
+        line.push_str(&piece);
+    }
+    if !line.is_empty() {
+        lines.push(line);
+    }
+    lines
+}
+
+#[cfg(test)]
+mod wrap_tests {
+    use super::wrap_list;
+
+    #[test]
+    fn a_long_list_wraps_at_its_commas() {
+        let items: Vec<String> = ["ZPHX forward", "ZPHX call", "QMEN forward", "QMEN call"].map(String::from).to_vec();
+        assert_eq!(wrap_list(&items, 30), ["ZPHX forward, ZPHX call,", "QMEN forward, QMEN call"]);
+        assert_eq!(wrap_list(&items, 200), ["ZPHX forward, ZPHX call, QMEN forward, QMEN call"]);
+        assert_eq!(wrap_list(&items[..1], 5), ["ZPHX forward"]);
+        assert!(wrap_list(&[], 10).is_empty());
+    }
 }
