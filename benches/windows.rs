@@ -78,7 +78,7 @@ fn file_name(form: &str, n: u32) -> String {
 }
 
 fn price(file: &Path) -> f64 {
-    let settings = Settings { paths: PATHS, seed: 1, antithetic: true, control_variates: false };
+    let settings = Settings { paths: PATHS, seed: 1, antithetic: true, control_variates: false, ..Settings::default() };
     price_file(file, None, &[], &settings).expect("the benchmark payoff prices").estimate.price
 }
 
