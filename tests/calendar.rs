@@ -98,3 +98,14 @@ fn a_lag_of_zero_business_days_is_the_date_rolled_following() {
     assert_eq!(payment_dates(&rolled), payment_dates(&lag));
     assert_eq!(price_se(&lag).0.to_bits(), price_se(&rolled).0.to_bits());
 }
+
+#[test]
+fn a_lagged_payment_of_a_past_observation_is_owed_until_its_payment_date() {
+    // Observed Tuesday 2026-09-01, valued 2026-12-01 (common practice: a payment is owed
+    // until its payment date). 2 business days later (2026-09-03) is paid already; 65 later
+    // (weekends only: 21 in September after the 1st, 22 in October, 21 in November, then
+    // Tuesday 2026-12-01) falls on the valuation date, discounted by 1.
+    let v = price("tests/calendar/lagged_seasoned.payoff", &["--paths", "2000"]);
+    assert_eq!(payment_dates(&v), ["2026-12-01"]);
+    assert_eq!(price_se(&v).0, 1.0);
+}
