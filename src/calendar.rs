@@ -155,6 +155,23 @@ pub fn roll(d: Date, roll: Roll, holidays: &BTreeSet<Date>) -> Option<Date> {
     }
 }
 
+/// The payment date `days` business days after `d` (the first business day after `d` is
+/// one): with 0, `d` itself rolled following. `None` past the supported years.
+pub fn business_days_after(d: Date, days: u32, holidays: &BTreeSet<Date>) -> Option<Date> {
+    if days == 0 {
+        return roll(d, Roll::Following, holidays);
+    }
+    let mut x = d;
+    let mut left = days;
+    while left > 0 {
+        x = x.add_days(1)?;
+        if is_business_day(x, holidays) {
+            left -= 1;
+        }
+    }
+    Some(x)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -179,6 +196,30 @@ mod tests {
         assert_eq!(roll(d("2027-07-30"), Roll::ModifiedFollowing, &holidays), Some(d("2027-07-30")));
         // Within the month, modified following is following.
         assert_eq!(roll(d("2027-05-15"), Roll::ModifiedFollowing, &holidays), Some(d("2027-05-17")));
+    }
+
+    #[test]
+    fn payment_lags_count_business_days_after_the_date() {
+        // A lag of N business days: the N-th business day after the date, weekends and the
+        // calendar's holidays skipped; a lag of 0 is the date rolled following (common
+        // practice for "payment date: N business days after the observation date").
+        let holidays: BTreeSet<Date> = [d("2026-12-25"), d("2027-01-01")].into_iter().collect();
+        // Thursday 2026-12-24: Friday 25th is a holiday, then the weekend; Monday 28th is
+        // the first business day after, Tuesday 29th the second.
+        assert_eq!(business_days_after(d("2026-12-24"), 1, &holidays), Some(d("2026-12-28")));
+        assert_eq!(business_days_after(d("2026-12-24"), 2, &holidays), Some(d("2026-12-29")));
+        // Wednesday 2026-12-30, 2 days: Thursday 31st, then (Friday 1st a holiday, the
+        // weekend) Monday 2027-01-04.
+        assert_eq!(business_days_after(d("2026-12-30"), 2, &holidays), Some(d("2027-01-04")));
+        // From a Saturday, the first business day after is the Monday.
+        assert_eq!(business_days_after(d("2027-01-02"), 1, &holidays), Some(d("2027-01-04")));
+        // 0 days: a business day stays, a holiday or a weekend rolls following.
+        assert_eq!(business_days_after(d("2026-12-24"), 0, &holidays), Some(d("2026-12-24")));
+        assert_eq!(business_days_after(d("2026-12-25"), 0, &holidays), Some(d("2026-12-28")));
+        // Without holidays only weekends skip: Friday 2026-12-25 is then a business day.
+        let none = BTreeSet::new();
+        assert_eq!(business_days_after(d("2026-12-24"), 1, &none), Some(d("2026-12-25")));
+        assert_eq!(business_days_after(d("2026-12-24"), 2, &none), Some(d("2026-12-28")));
     }
 
     #[test]

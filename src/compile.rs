@@ -596,7 +596,7 @@ impl<'p> Compiler<'p> {
                             } else {
                                 let mut out = Vec::new();
                                 let mut d = Some(a);
-                                let holidays = self.holidays(&def.schedule.rolling);
+                                let holidays = self.holidays(def.schedule.rolling.calendar.as_ref());
                                 while let Some(day) = d.filter(|day| *day <= b) {
                                     if day.is_weekday() && !holidays.as_ref().is_some_and(|h| h.contains(&day)) {
                                         out.push((self.valuation.years_until(day), Some(day)));
@@ -662,8 +662,8 @@ impl<'p> Compiler<'p> {
 
     /// The holidays of a schedule's `calendar NAME`, or `None` (with an error if the name
     /// or the calendars file is missing).
-    fn holidays(&mut self, rolling: &crate::syntax::Rolling) -> Option<std::collections::BTreeSet<Date>> {
-        let (name, span) = rolling.calendar.as_ref()?;
+    fn holidays(&mut self, calendar: Option<&(String, Span)>) -> Option<std::collections::BTreeSet<Date>> {
+        let (name, span) = calendar?;
         match self.calendars.map(|c| (c.holidays(name), c)) {
             Some((Some(h), _)) => Some(h.clone()),
             Some((None, c)) => {
@@ -687,6 +687,48 @@ impl<'p> Compiler<'p> {
         }
     }
 
+    /// The payment date of `pay ... on N business days after DATE calendar NAME`: `w` (the
+    /// date, written at `span`) moved by the lag on the calendar's business days.
+    fn lagged(&mut self, w: When_, lag: &typing::PayLag, span: Span) -> Option<When_> {
+        // A loop runs this once per date: each problem is told once.
+        let told = self.errors.len();
+        let keep_first = |c: &mut Self| {
+            if let Some(new) = c.errors.get(told) {
+                if c.errors[..told].iter().any(|e| e.span == new.span && e.message == new.message) {
+                    c.errors.truncate(told);
+                }
+            }
+        };
+        let Some(d) = w.1 else {
+            self.error(
+                span,
+                "this date is a year offset, which has no weekday to count business days from",
+                "write the date as a calendar date (2027-12-01), or loop over a schedule of calendar dates",
+            );
+            keep_first(self);
+            return None;
+        };
+        let holidays = match &lag.calendar {
+            Some(c) => {
+                let holidays = self.holidays(Some(c));
+                keep_first(self);
+                holidays?
+            }
+            None => std::collections::BTreeSet::new(),
+        };
+        match crate::calendar::business_days_after(d, lag.days, &holidays) {
+            Some(p) => Some((self.valuation.years_until(p), Some(p))),
+            None => {
+                self.error(
+                    lag.span,
+                    format!("{} business days after {d} is past the last date pathfold handles", lag.days),
+                    "use an earlier date or a shorter lag",
+                );
+                None
+            }
+        }
+    }
+
     /// A schedule's dates moved by its `rolled ...` convention onto business days (of its
     /// calendar, or Monday to Friday without one).
     fn rolled(&mut self, def: &typing::ScheduleDef, dates: Vec<When_>) -> Vec<When_> {
@@ -703,7 +745,7 @@ impl<'p> Compiler<'p> {
             }
             return dates;
         };
-        let holidays = self.holidays(rolling).unwrap_or_default();
+        let holidays = self.holidays(rolling.calendar.as_ref()).unwrap_or_default();
         let mut out = Vec::with_capacity(dates.len());
         for (t, d) in dates {
             let Some(d) = d else {
@@ -1003,10 +1045,18 @@ impl<'p> Compiler<'p> {
                 }
                 ends
             }
-            TStmt::Pay { amount, on, span } => {
+            TStmt::Pay { amount, on, lag, span } => {
                 let pay_at = match on {
-                    Some((d, dspan)) => match self.resolve(*d, *dspan, Some(&now)) {
-                        Some(w) if w.0 + TIME_EPS < now.event.0 => {
+                    Some((d, dspan)) => {
+                        let Some(w) = self.resolve(*d, *dspan, Some(&now)) else { return false };
+                        let w = match lag {
+                            Some(lag) => match self.lagged(w, lag, *dspan) {
+                                Some(w) => w,
+                                None => return false,
+                            },
+                            None => w,
+                        };
+                        if w.0 + TIME_EPS < now.event.0 {
                             self.error(
                                 *dspan,
                                 format!(
@@ -1018,9 +1068,8 @@ impl<'p> Compiler<'p> {
                             );
                             return false;
                         }
-                        Some(w) => w,
-                        None => return false,
-                    },
+                        w
+                    }
                     None => now.event,
                 };
                 if pay_at.0 < -TIME_EPS {

@@ -117,8 +117,9 @@ pub enum Stmt {
     Assign(Name, Expr),
     /// `if cond { ... } else { ... }`
     If { cond: Expr, then: Vec<Stmt>, otherwise: Vec<Stmt>, span: Span },
-    /// `pay amount` or `pay amount on 2030-01-03`
-    Pay { amount: Expr, on: Option<Expr>, span: Span },
+    /// `pay amount`, `pay amount on 2030-01-03`, or `pay amount on 2 business days after t
+    /// calendar ZEX` (`on` is then the date after which the lag counts).
+    Pay { amount: Expr, on: Option<Expr>, lag: Option<Lag>, span: Span },
     /// `end`: the product ends on this path; nothing later happens.
     End(Span),
     /// `pay amount on first touch(perf(X) >= 130% from start to t)`: paid at the moment
@@ -129,6 +130,20 @@ pub enum Stmt {
     /// least-squares regression on `using` (default: every underlying's `perf` and every
     /// state).
     Choice { party: Party, amount: Expr, using: Vec<Expr>, span: Span },
+}
+
+/// A payment lag: `2 business days after t calendar ZEX` (the date itself is the `on` of
+/// its `pay`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Lag {
+    /// The number of business days, as written (`2`, a parameter); checked to be whole and
+    /// not negative when typed.
+    pub days: Expr,
+    /// The holiday calendar, by the name the market's calendars file gives it; without it
+    /// only weekends are skipped.
+    pub calendar: Option<(String, Span)>,
+    /// From the count to the end of the clause.
+    pub span: Span,
 }
 
 /// Who holds an early-exercise right.
@@ -686,8 +701,15 @@ impl Lowering {
             }
             Rule::pay_stmt => {
                 let amount = self.expr(inner.next().unwrap());
-                let on = inner.next().map(|p| self.expr(p));
-                Stmt::Pay { amount, on, span }
+                let (on, lag) = match inner.next() {
+                    Some(p) if p.as_rule() == Rule::lagged_date => {
+                        let (on, lag) = self.lagged_date(p);
+                        (Some(on), Some(lag))
+                    }
+                    Some(p) => (Some(self.expr(p)), None),
+                    None => (None, None),
+                };
+                Stmt::Pay { amount, on, lag, span }
             }
             Rule::end_stmt => Stmt::End(span),
             Rule::pay_hit_stmt => {
@@ -710,6 +732,24 @@ impl Lowering {
 
     fn expr(&mut self, pair: Pair<'_, Rule>) -> Expr {
         self.expr_depth(pair).0
+    }
+
+    /// `2 business days after t calendar ZEX`: the date `t` and the lag.
+    fn lagged_date(&mut self, pair: Pair<'_, Rule>) -> (Expr, Lag) {
+        let span = span_of(&pair);
+        let mut inner = children(pair);
+        let count = inner.next().unwrap();
+        let count_span = span_of(&count);
+        let negative = count.as_str().starts_with('-');
+        let value = self.primary(count.into_inner().next().unwrap()).0;
+        let days = if negative {
+            Expr { kind: ExprKind::Unary(UnaryOp::Neg, Box::new(value)), span: count_span }
+        } else {
+            value
+        };
+        let on = self.expr(inner.next().unwrap());
+        let calendar = inner.next().and_then(|c| c.into_inner().nth(1)).map(|w| (w.as_str().to_string(), span_of(&w)));
+        (on, Lag { days, calendar, span })
     }
 
     /// An expression with the depth of its tree. A tree deeper than
@@ -905,6 +945,7 @@ fn is_keyword(rule: Rule) -> bool {
             | Rule::kw_steps
             | Rule::kw_business
             | Rule::kw_days
+            | Rule::kw_after
             | Rule::kw_over
             | Rule::kw_touched
             | Rule::kw_first
@@ -1325,6 +1366,26 @@ mod tests {
         // `calendar` and `rolled` are words of fixed places, not reserved: a schedule may be
         // called `calendar`.
         assert_eq!(rolling(3), Rolling::default());
+    }
+
+    #[test]
+    fn payment_lags() {
+        let text = "for each t in s {\n  pay 1 on 2 business days after t calendar ZEX\n  pay 2 on lag business days after last(s)\n\
+            pay 3 on -1 business days after t\n  pay 4 on maturity\n  after = 1\n}";
+        let file = parse(text).unwrap();
+        let Item::Each { body, .. } = &file.items[0] else { panic!("{:?}", file.items[0]) };
+        let lag = |i: usize| match &body[i] {
+            Stmt::Pay { on, lag, .. } => {
+                (on.as_ref().map(show), lag.as_ref().map(|l| (show(&l.days), l.calendar.clone().map(|c| c.0))))
+            }
+            other => panic!("{other:?}"),
+        };
+        assert_eq!(lag(0), (Some("t".to_string()), Some(("2".to_string(), Some("ZEX".to_string())))));
+        assert_eq!(lag(1), (Some("(last s)".to_string()), Some(("lag".to_string(), None))));
+        assert_eq!(lag(2).1.map(|l| l.0), Some("(- 1)".to_string()));
+        // Without `business days after`, `on` takes a date as before; `after` is no reserved word.
+        assert_eq!(lag(3), (Some("maturity".to_string()), None));
+        assert!(matches!(&body[4], Stmt::Assign(n, _) if n.text == "after"));
     }
 
     #[test]

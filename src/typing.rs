@@ -48,6 +48,20 @@ pub enum DateRef {
     Previous,
 }
 
+/// A checked payment lag: `2 business days after t calendar ZEX`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct PayLag {
+    /// Whole business days, at most [`MAX_LAG_DAYS`]; 0 is the date itself rolled following.
+    pub days: u32,
+    /// The holiday calendar's name, checked against the market's calendars file by `compile`.
+    pub calendar: Option<(String, Span)>,
+    /// The lag clause, for messages.
+    pub span: Span,
+}
+
+/// The longest payment lag, in business days (about four years).
+pub const MAX_LAG_DAYS: u32 = 1_000;
+
 /// A function of numbers.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Func {
@@ -144,6 +158,8 @@ pub enum TStmt {
     Pay {
         amount: TExpr,
         on: Option<(DateRef, Span)>,
+        /// `N business days after` the `on` date (`pay x on 2 business days after t`).
+        lag: Option<PayLag>,
         span: Span,
     },
     End(Span),
@@ -821,14 +837,18 @@ impl Checker {
                 let c = self.expect(c?, Ty::Flag, "the condition of `if`")?;
                 Some(TStmt::If { cond: c, then, otherwise })
             }
-            Stmt::Pay { amount, on, span } => {
+            Stmt::Pay { amount, on, lag, span } => {
                 let a = self.expr(amount);
                 let on = match on {
                     Some(d) => Some((self.date(d)?, d.span)),
                     None => None,
                 };
+                let lag = match lag {
+                    Some(l) => Some(self.lag(l)?),
+                    None => None,
+                };
                 let a = self.expect(a?, Ty::Number, "the amount of `pay`")?;
-                Some(TStmt::Pay { amount: a, on, span: *span })
+                Some(TStmt::Pay { amount: a, on, lag, span: *span })
             }
             Stmt::End(span) => Some(TStmt::End(*span)),
             Stmt::PayAtHit { amount, condition, from, to, span } => {
@@ -928,6 +948,38 @@ impl Checker {
             self.error(e.span, format!("{what} must be {}, but this is {}", ty.describe(), e.ty.describe()), fix);
             None
         }
+    }
+
+    /// A payment lag: its count of business days, a whole number from 0 to
+    /// [`MAX_LAG_DAYS`] known before simulation.
+    fn lag(&mut self, lag: &syntax::Lag) -> Option<PayLag> {
+        let e = self.expr(&lag.days)?;
+        let e = self.expect(e, Ty::Number, "the number of business days of a payment lag")?;
+        let TKind::Const(v) = e.kind else {
+            self.error(
+                lag.days.span,
+                "the number of business days of a payment lag must be known before simulation",
+                "write a whole number or a parameter, e.g. `pay coupon on 2 business days after t`",
+            );
+            return None;
+        };
+        if v >= 0.0 && v.fract() == 0.0 && v <= f64::from(MAX_LAG_DAYS) {
+            return Some(PayLag { days: v as u32, calendar: lag.calendar.clone(), span: lag.span });
+        }
+        if v > f64::from(MAX_LAG_DAYS) && v.fract() == 0.0 {
+            self.error(
+                lag.days.span,
+                format!("a payment lag of {v} business days is too long"),
+                format!("a payment lag is at most {MAX_LAG_DAYS} business days"),
+            );
+        } else {
+            self.error(
+                lag.days.span,
+                format!("a payment lag of {v} business days is not a whole number of days, 0 or more"),
+                "write for example `2 business days after t`; 0 pays on the date itself, or on the next business day when it is not one",
+            );
+        }
+        None
     }
 
     /// A date-typed expression.

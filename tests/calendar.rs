@@ -53,3 +53,59 @@ fn modified_following_stays_in_the_month() {
         ]
     );
 }
+
+/// The dates of a priced file's payments (the profile's rows that pay).
+fn payment_dates(v: &serde_json::Value) -> Vec<String> {
+    v["profile"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|r| r["expected_pv"].as_f64().unwrap() != 0.0)
+        .map(|r| r["date"].as_str().unwrap().to_string())
+        .collect()
+}
+
+#[test]
+fn a_lagged_payment_is_paid_business_days_later_and_discounted_from_then() {
+    // `pay 250 on 2 business days after t calendar ZEX`: the second business day after
+    // each date, weekends and ZEX holidays skipped (common practice for "payment date: 2
+    // business days after the observation date").
+    // - Wednesday 2026-12-23: Thursday 24th is one; Friday 25th is a ZEX holiday, then the
+    //   weekend, so Monday 2026-12-28 is two.
+    // - Wednesday 2026-12-30: Thursday 31st; Friday 2027-01-01 a holiday, the weekend;
+    //   Monday 2027-01-04.
+    // - Friday 2027-01-15: the weekend, Monday 18th a holiday; Tuesday 19th, Wednesday 20th.
+    let v = price("tests/calendar/lagged.payoff", &["--paths", "2000"]);
+    let paid = ["2026-12-28", "2027-01-04", "2027-01-20"];
+    assert_eq!(payment_dates(&v), paid);
+    // A fixed amount is worth the amount times the discount factor of its payment date
+    // (identity: a deterministic payment), here on the market's flat 3.8% (ACT/365).
+    let reference: f64 = paid.iter().map(|d| 250.0 * (-0.038 * years(d)).exp()).sum();
+    let (p, se) = price_se(&v);
+    assert!(se < 1e-9, "a fixed amount has no standard error: {se}");
+    assert!((p - reference).abs() < 1e-9, "{p} against {reference}");
+}
+
+#[test]
+fn a_lag_of_zero_business_days_is_the_date_rolled_following() {
+    // Two writings of one product: paying 0 business days after each date, and paying on
+    // the dates rolled following (common practice: a lag of 0 pays on the date itself, or
+    // the next business day). Friday 2026-12-25 (holiday) → Monday 28th; Saturday
+    // 2027-01-02 → Monday 4th; Monday 2027-01-18 (holiday) → Tuesday 19th.
+    let lag = price("tests/calendar/lag_zero.payoff", &["--paths", "2000"]);
+    let rolled = price("tests/calendar/rolled_following.payoff", &["--paths", "2000"]);
+    assert_eq!(payment_dates(&lag), ["2026-12-28", "2027-01-04", "2027-01-19"]);
+    assert_eq!(payment_dates(&rolled), payment_dates(&lag));
+    assert_eq!(price_se(&lag).0.to_bits(), price_se(&rolled).0.to_bits());
+}
+
+#[test]
+fn a_lagged_payment_of_a_past_observation_is_owed_until_its_payment_date() {
+    // Observed Tuesday 2026-09-01, valued 2026-12-01 (common practice: a payment is owed
+    // until its payment date). 2 business days later (2026-09-03) is paid already; 65 later
+    // (weekends only: 21 in September after the 1st, 22 in October, 21 in November, then
+    // Tuesday 2026-12-01) falls on the valuation date, discounted by 1.
+    let v = price("tests/calendar/lagged_seasoned.payoff", &["--paths", "2000"]);
+    assert_eq!(payment_dates(&v), ["2026-12-01"]);
+    assert_eq!(price_se(&v).0, 1.0);
+}

@@ -422,7 +422,16 @@ impl Gen<'_, '_> {
         match self.tape.pick(8) {
             0 | 1 => {
                 let amount = self.num(scope, 2);
-                let on = if self.tape.chance(15) { Some(self.tape.one(&["2y", "2029-01-05"])) } else { None };
+                let on = if self.tape.chance(15) {
+                    Some(self.tape.one(&[
+                        "2y",
+                        "2029-01-05",
+                        "3 business days after 2029-01-05",
+                        "0 business days after 2029-01-06",
+                    ]))
+                } else {
+                    None
+                };
                 Stmt::Pay(amount, on)
             }
             2 => {
