@@ -51,16 +51,18 @@ pub fn run(args: &CompareArgs) -> ExitCode {
         args.files.clone()
     };
     let files = batch::collect_files(&inputs);
-    if let Err(code) = checked_output(p.output.as_deref(), &files, &[p.market.as_deref(), Some(&args.prices)]) {
+    if let Err(code) =
+        checked_output(p.shared.output.as_deref(), &files, &[p.shared.market.as_deref(), Some(&args.prices)])
+    {
         return code;
     }
-    let rows = match price_inputs(files, &request, p.threads, true) {
+    let rows = match price_inputs(files, &request, p.shared.threads, true) {
         Ok(rows) => rows,
         Err(code) => return code,
     };
-    let output = output_after_pricing(p.output.as_deref(), &rows);
+    let output = output_after_pricing(p.shared.output.as_deref(), &rows);
     let lines = comparison::compare(&list, &rows, args.max_z);
-    if let Err(code) = emit(output.unwrap_or(None), |w| output::comparison::write(w, &lines, p.format)) {
+    if let Err(code) = emit(output.unwrap_or(None), |w| output::comparison::write(w, &lines, p.shared.format)) {
         return code;
     }
     if output.is_err() {

@@ -68,9 +68,9 @@ pub fn run(args: &LadderArgs) -> ExitCode {
             return ExitCode::from(2);
         }
     }
-    let result = match a
-        .on_threads(|| ladder_file(&a.file, a.market.as_deref(), &overrides, &settings, axes, args.only.as_deref()))
-    {
+    let result = match a.on_threads(|| {
+        ladder_file(&a.file, a.shared.market.as_deref(), &overrides, &settings, axes, args.only.as_deref())
+    }) {
         Ok(r) => r,
         Err(code) => return code,
     };
@@ -88,7 +88,7 @@ pub fn run(args: &LadderArgs) -> ExitCode {
             return ExitCode::from(1);
         }
     }
-    match emit(a.output.as_deref(), |w| write_ladder(w, &ladder, a.format)) {
+    match emit(a.shared.output.as_deref(), |w| write_ladder(w, &ladder, a.shared.format)) {
         Ok(()) => ExitCode::SUCCESS,
         Err(code) => code,
     }

@@ -35,15 +35,12 @@ pub enum SamplerArg {
     Sobol,
 }
 
-/// The pricing options `compare` shares with `price`.
+/// The options every command that prices one or more files shares.
 #[derive(Debug, Args)]
-pub struct PricingArgs {
+pub struct SharedArgs {
     /// Market data (TOML); default: the file each payoff names with `market "..."`.
     #[arg(long, value_name = "FILE")]
     pub market: Option<PathBuf>,
-    /// Number of paths.
-    #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
-    pub paths: u64,
     /// Random seed.
     #[arg(long, default_value_t = sim::DEFAULT_SEED)]
     pub seed: u64,
@@ -53,6 +50,23 @@ pub struct PricingArgs {
     /// Do not pair each path with its antithetic mirror.
     #[arg(long)]
     pub no_antithetic: bool,
+    /// Worker threads, 1 to 1024 (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+    /// Write the result to this file (replaced whole, never left half-written).
+    #[arg(long, value_name = "FILE")]
+    pub output: Option<PathBuf>,
+}
+
+/// The pricing options `compare` shares with `price`.
+#[derive(Debug, Args)]
+pub struct PricingArgs {
+    /// Number of paths.
+    #[arg(long, default_value_t = sim::DEFAULT_PATHS)]
+    pub paths: u64,
     /// Do not use control variates.
     #[arg(long)]
     pub no_control: bool,
@@ -60,21 +74,14 @@ pub struct PricingArgs {
     /// (Sobol points, randomised 16 times, through a Brownian bridge).
     #[arg(long, value_enum, default_value_t = SamplerArg::Random)]
     pub sampler: SamplerArg,
-    /// Worker threads, 1 to 1024 (default: all cores).
-    #[arg(long, value_name = "N")]
-    pub threads: Option<usize>,
-    /// Output format.
-    #[arg(long, value_enum, default_value_t = Format::Table)]
-    pub format: Format,
     /// Add paths until the standard error is at most this (amount or `X%` of notional).
     #[arg(long, value_name = "SE")]
     pub target_se: Option<String>,
     /// The most paths an error-bounded run may use.
     #[arg(long, value_name = "N", default_value_t = pricing::DEFAULT_MAX_PATHS)]
     pub max_paths: u64,
-    /// Write the result to this file (replaced whole, never left half-written).
-    #[arg(long, value_name = "FILE")]
-    pub output: Option<PathBuf>,
+    #[command(flatten)]
+    pub shared: SharedArgs,
 }
 
 /// The most worker threads `--threads` accepts: far more than any machine pathfold runs on
@@ -113,12 +120,17 @@ fn checked_request(args: &PricingArgs) -> Result<Request, ExitCode> {
 }
 
 fn request(args: &PricingArgs) -> Result<Request, String> {
-    let overrides: Vec<Override> =
-        args.set.iter().map(|s| Override::parse(s)).collect::<Result<_, Diagnostic>>().map_err(|d| d.render(None))?;
+    let overrides: Vec<Override> = args
+        .shared
+        .set
+        .iter()
+        .map(|s| Override::parse(s))
+        .collect::<Result<_, Diagnostic>>()
+        .map_err(|d| d.render(None))?;
     let settings = Settings {
         paths: args.paths,
-        seed: args.seed,
-        antithetic: !args.no_antithetic,
+        seed: args.shared.seed,
+        antithetic: !args.shared.no_antithetic,
         control_variates: !args.no_control,
         sampler: match args.sampler {
             SamplerArg::Random => Sampler::Random,
@@ -126,7 +138,7 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
         },
     };
     settings.validate().map_err(|e| e + "\n")?;
-    check_threads(args.threads).map_err(|e| e + "\n")?;
+    check_threads(args.shared.threads).map_err(|e| e + "\n")?;
     let target = match &args.target_se {
         Some(t) => Some(Target::parse(t).map_err(|e| format!("--target-se {t}: {e}\n"))?),
         None => None,
@@ -137,7 +149,7 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
     if target.is_some() || args.max_paths != pricing::DEFAULT_MAX_PATHS {
         sim::validate_max_paths(args.max_paths, settings.paths).map_err(|e| e + "\n")?;
     }
-    Ok(Request { market: args.market.clone(), overrides, settings, target, max_paths: args.max_paths })
+    Ok(Request { market: args.shared.market.clone(), overrides, settings, target, max_paths: args.max_paths })
 }
 
 /// Writes a report to stdout, or atomically to `--output`; returns the exit status on failure.

@@ -40,21 +40,21 @@ pub fn run(args: &PriceArgs) -> ExitCode {
     };
     let single = args.files.len() == 1 && !args.files[0].is_dir();
     let files = batch::collect_files(&args.files);
-    if let Err(code) = checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]) {
+    if let Err(code) = checked_output(p.shared.output.as_deref(), &files, &[p.shared.market.as_deref()]) {
         return code;
     }
-    let rows = match price_inputs(files, &request, p.threads, !single) {
+    let rows = match price_inputs(files, &request, p.shared.threads, !single) {
         Ok(rows) => rows,
         Err(code) => return code,
     };
-    let output = output_after_pricing(p.output.as_deref(), &rows);
-    let written = if single && p.format != Format::Csv {
+    let output = output_after_pricing(p.shared.output.as_deref(), &rows);
+    let written = if single && p.shared.format != Format::Csv {
         match &rows[0].outcome {
-            Ok(priced) => emit(output.unwrap_or(None), |w| output::write_one(w, priced, p.format)),
+            Ok(priced) => emit(output.unwrap_or(None), |w| output::write_one(w, priced, p.shared.format)),
             Err(_) => Ok(()),
         }
     } else {
-        emit(output.unwrap_or(None), |w| rows::write_rows(w, &rows, p.format))
+        emit(output.unwrap_or(None), |w| rows::write_rows(w, &rows, p.shared.format))
     };
     if let Err(code) = written {
         return code;
@@ -113,14 +113,14 @@ fn price_part_inner(args: &PriceArgs, part: &str) -> Result<ExitCode, String> {
 /// Part K of N of one payoff's blocks, written as a partial result.
 fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Result<ExitCode, String> {
     let p = &args.pricing;
-    if p.format != Format::Table {
+    if p.shared.format != Format::Table {
         return Err("--format does not apply to a part of one payoff: it always writes a partial result (JSON) for `pathfold merge`, whose --format applies to the merged result".into());
     }
     let file = &args.files[0];
     let files = batch::collect_files(std::slice::from_ref(file));
     check_part_count(&request.settings, part)?;
-    checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]).map_err(|_| String::new())?;
-    let result = with_threads(p.threads, || {
+    checked_output(p.shared.output.as_deref(), &files, &[p.shared.market.as_deref()]).map_err(|_| String::new())?;
+    let result = with_threads(p.shared.threads, || {
         run_part(file, request.market.as_deref(), &request.overrides, &request.settings, part)
     })??;
     let record = match result {
@@ -130,7 +130,7 @@ fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Re
             return Ok(ExitCode::from(if f.internal { 1 } else { 2 }));
         }
     };
-    match emit(p.output.as_deref(), |w| {
+    match emit(p.shared.output.as_deref(), |w| {
         serde_json::to_writer_pretty(&mut *w, &record)?;
         writeln!(w)
     }) {
@@ -142,18 +142,18 @@ fn price_file_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Re
 /// Part K of N of a library's files, written as CSV (the header by part 1 only).
 fn price_library_part(args: &PriceArgs, request: &batch::Request, part: Part) -> Result<ExitCode, String> {
     let p = &args.pricing;
-    if p.format != Format::Csv {
+    if p.shared.format != Format::Csv {
         return Err("--part on a folder or several files needs --format csv: the parts' CSV outputs, concatenated in part order, are the single batch's CSV (part 1 alone writes the header)".into());
     }
     let files = batch::collect_files(&args.files);
     let share = part.share(files.len());
     let files: Vec<_> = files.into_iter().skip(share.start).take(share.end - share.start).collect();
-    checked_output(p.output.as_deref(), &files, &[p.market.as_deref()]).map_err(|_| String::new())?;
-    let rows = match price_inputs(files, request, p.threads, true) {
+    checked_output(p.shared.output.as_deref(), &files, &[p.shared.market.as_deref()]).map_err(|_| String::new())?;
+    let rows = match price_inputs(files, request, p.shared.threads, true) {
         Ok(rows) => rows,
         Err(code) => return Ok(code),
     };
-    let output = output_after_pricing(p.output.as_deref(), &rows);
+    let output = output_after_pricing(p.shared.output.as_deref(), &rows);
     let header = part.k == 1;
     let written = emit(output.unwrap_or(None), |w| {
         let mut csv = Vec::new();

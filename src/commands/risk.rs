@@ -6,11 +6,11 @@ use std::process::ExitCode;
 
 use clap::Args;
 
-use super::{checked_output, emit, with_threads};
+use super::{checked_output, emit, with_threads, SharedArgs};
 use crate::diagnostic::Diagnostic;
 use crate::output::{risk, Format};
 use crate::risk::{risk_file, Bumps};
-use crate::sim::{self, Settings};
+use crate::sim::Settings;
 use crate::typing::Override;
 
 /// The options of `risk`, `solve` and `ladder`: one file priced on common paths.
@@ -19,36 +19,18 @@ pub struct ScenarioArgs {
     /// The payoff file.
     #[arg(value_name = "FILE")]
     pub file: PathBuf,
-    /// Market data (TOML); default: the file the payoff names with `market "..."`.
-    #[arg(long, value_name = "FILE")]
-    pub market: Option<PathBuf>,
     /// Number of paths (every scenario runs on these same paths).
     #[arg(long, default_value_t = 100_000)]
     pub paths: u64,
-    /// Random seed.
-    #[arg(long, default_value_t = sim::DEFAULT_SEED)]
-    pub seed: u64,
-    /// Override a parameter: `--set coupon=2.5%` (repeatable).
-    #[arg(long = "set", value_name = "NAME=VALUE")]
-    pub set: Vec<String>,
-    /// Do not pair each path with its antithetic mirror.
-    #[arg(long)]
-    pub no_antithetic: bool,
-    /// Worker threads, 1 to 1024 (default: all cores).
-    #[arg(long, value_name = "N")]
-    pub threads: Option<usize>,
-    /// Output format.
-    #[arg(long, value_enum, default_value_t = Format::Table)]
-    pub format: Format,
-    /// Write the result to this file (replaced whole, never left half-written).
-    #[arg(long, value_name = "FILE")]
-    pub output: Option<PathBuf>,
+    #[command(flatten)]
+    pub shared: SharedArgs,
 }
 
 impl ScenarioArgs {
     /// The overrides and settings, or the message for a bad option.
     pub fn checked(&self) -> Result<(Vec<Override>, Settings), String> {
         let overrides: Vec<Override> = self
+            .shared
             .set
             .iter()
             .map(|s| Override::parse(s))
@@ -56,8 +38,8 @@ impl ScenarioArgs {
             .map_err(|d| d.render(None))?;
         let settings = Settings {
             paths: self.paths,
-            seed: self.seed,
-            antithetic: !self.no_antithetic,
+            seed: self.shared.seed,
+            antithetic: !self.shared.no_antithetic,
             control_variates: false,
             ..Settings::default()
         };
@@ -71,13 +53,13 @@ impl ScenarioArgs {
             eprint!("{e}");
             ExitCode::from(2)
         })?;
-        checked_output(self.output.as_deref(), &[Ok(self.file.clone())], &[self.market.as_deref()])?;
+        checked_output(self.shared.output.as_deref(), &[Ok(self.file.clone())], &[self.shared.market.as_deref()])?;
         Ok(checked)
     }
 
     /// Runs `f` on the thread pool asked for.
     pub fn on_threads<T: Send>(&self, f: impl FnOnce() -> T + Send) -> Result<T, ExitCode> {
-        with_threads(self.threads, f).map_err(|e| {
+        with_threads(self.shared.threads, f).map_err(|e| {
             eprintln!("{e}");
             ExitCode::from(2)
         })
@@ -107,19 +89,19 @@ pub fn run(args: &RiskArgs) -> ExitCode {
         Ok(x) => x,
         Err(code) => return code,
     };
-    let result = match a.on_threads(|| risk_file(&a.file, a.market.as_deref(), &overrides, &settings, &bumps)) {
+    let result = match a.on_threads(|| risk_file(&a.file, a.shared.market.as_deref(), &overrides, &settings, &bumps)) {
         Ok(r) => r,
         Err(code) => return code,
     };
     match result {
         Ok(r) => {
             // The table lists them; CSV has no place for them, JSON has `notes`.
-            if a.format != Format::Table {
+            if a.shared.format != Format::Table {
                 for n in &r.notes {
                     eprintln!("note: {n}");
                 }
             }
-            match emit(a.output.as_deref(), |w| risk::write_risk(w, &r, a.format)) {
+            match emit(a.shared.output.as_deref(), |w| risk::write_risk(w, &r, a.shared.format)) {
                 Ok(()) => ExitCode::SUCCESS,
                 Err(code) => code,
             }

@@ -48,13 +48,13 @@ pub fn run(args: &SolveArgs) -> ExitCode {
         Err(code) => return code,
     };
     let result = match a.on_threads(|| {
-        solve_file(&a.file, a.market.as_deref(), &overrides, &settings, &args.parameter, target, between)
+        solve_file(&a.file, a.shared.market.as_deref(), &overrides, &settings, &args.parameter, target, between)
     }) {
         Ok(r) => r,
         Err(code) => return code,
     };
     match result {
-        Ok(s) => match emit(a.output.as_deref(), |w| write_solved(w, &s, a.format)) {
+        Ok(s) => match emit(a.shared.output.as_deref(), |w| write_solved(w, &s, a.shared.format)) {
             Ok(()) => ExitCode::SUCCESS,
             Err(code) => code,
         },
