@@ -61,6 +61,25 @@ pub struct SharedArgs {
     pub output: Option<PathBuf>,
 }
 
+impl SharedArgs {
+    /// The `--set` overrides, or the message for a bad one.
+    pub fn overrides(&self) -> Result<Vec<Override>, String> {
+        self.set.iter().map(|s| Override::parse(s)).collect::<Result<_, Diagnostic>>().map_err(|d| d.render(None))
+    }
+
+    /// The settings of a run of `paths` paths on these options (no control variates, the
+    /// default sampler: the pricing options add theirs).
+    pub fn settings(&self, paths: u64) -> Settings {
+        Settings {
+            paths,
+            seed: self.seed,
+            antithetic: !self.no_antithetic,
+            control_variates: false,
+            ..Settings::default()
+        }
+    }
+}
+
 /// The pricing options `compare` shares with `price`.
 #[derive(Debug, Args)]
 pub struct PricingArgs {
@@ -120,22 +139,14 @@ fn checked_request(args: &PricingArgs) -> Result<Request, ExitCode> {
 }
 
 fn request(args: &PricingArgs) -> Result<Request, String> {
-    let overrides: Vec<Override> = args
-        .shared
-        .set
-        .iter()
-        .map(|s| Override::parse(s))
-        .collect::<Result<_, Diagnostic>>()
-        .map_err(|d| d.render(None))?;
+    let overrides = args.shared.overrides()?;
     let settings = Settings {
-        paths: args.paths,
-        seed: args.shared.seed,
-        antithetic: !args.shared.no_antithetic,
         control_variates: !args.no_control,
         sampler: match args.sampler {
             SamplerArg::Random => Sampler::Random,
             SamplerArg::Sobol => Sampler::Sobol,
         },
+        ..args.shared.settings(args.paths)
     };
     settings.validate().map_err(|e| e + "\n")?;
     check_threads(args.shared.threads).map_err(|e| e + "\n")?;

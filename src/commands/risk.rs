@@ -7,7 +7,6 @@ use std::process::ExitCode;
 use clap::Args;
 
 use super::{checked_output, emit, with_threads, SharedArgs};
-use crate::diagnostic::Diagnostic;
 use crate::output::{risk, Format};
 use crate::risk::{risk_file, Bumps};
 use crate::sim::Settings;
@@ -29,20 +28,8 @@ pub struct ScenarioArgs {
 impl ScenarioArgs {
     /// The overrides and settings, or the message for a bad option.
     pub fn checked(&self) -> Result<(Vec<Override>, Settings), String> {
-        let overrides: Vec<Override> = self
-            .shared
-            .set
-            .iter()
-            .map(|s| Override::parse(s))
-            .collect::<Result<_, Diagnostic>>()
-            .map_err(|d| d.render(None))?;
-        let settings = Settings {
-            paths: self.paths,
-            seed: self.shared.seed,
-            antithetic: !self.shared.no_antithetic,
-            control_variates: false,
-            ..Settings::default()
-        };
+        let overrides = self.shared.overrides()?;
+        let settings = self.shared.settings(self.paths);
         settings.validate().map_err(|e| e + "\n")?;
         Ok((overrides, settings))
     }
