@@ -15,7 +15,7 @@
 //! USD = 0.038
 //!
 //! [underlyings.ZPHX]
-//! currency = "USD"                      # ISO 4217 code the underlying is quoted in
+//! currency = "USD"                      # ISO 4217 code; may be left out when [rates] has one
 //! spot = 4250.0
 //! volatility = 0.18                     # annual, lognormal
 //! dividend_yield = 0.019                # continuous; 0 when absent
@@ -582,8 +582,11 @@ impl Reader<'_> {
         let valuation_date = sections.get("valuation_date").and_then(|node| self.valuation_date(node));
         self.valuation = valuation_date;
         let rates = sections.get("rates").map(|node| self.rates(node)).unwrap_or_default();
+        // With one currency in [rates] an underlying's currency can only be that one: no
+        // quanto is possible, so the line may be left out.
+        let only_currency = (rates.len() == 1).then(|| rates.keys().next().cloned()).flatten();
         let (underlyings, declared) = match sections.get("underlyings") {
-            Some(node) => self.underlyings(node),
+            Some(node) => self.underlyings(node, only_currency.as_deref()),
             None => (Vec::new(), Vec::new()),
         };
         let (correlations, correlation_rows) = match sections.get("correlations") {
@@ -700,7 +703,7 @@ impl Reader<'_> {
 
     /// The valid underlyings, and every name declared (valid or not), so that correlations
     /// naming a broken underlying aren't reported a second time as naming an unknown one.
-    fn underlyings(&mut self, node: &Node) -> (Vec<(String, Underlying)>, Vec<String>) {
+    fn underlyings(&mut self, node: &Node, only_currency: Option<&str>) -> (Vec<(String, Underlying)>, Vec<String>) {
         let mut valid = Vec::new();
         let mut declared = Vec::new();
         let Some(entries) = self.table(node, "underlyings", "[underlyings.NAME] sections") else {
@@ -717,14 +720,14 @@ impl Reader<'_> {
                 continue;
             }
             declared.push(name.clone());
-            if let Some(underlying) = self.underlying(key, node) {
+            if let Some(underlying) = self.underlying(key, node, only_currency) {
                 valid.push((name.clone(), underlying));
             }
         }
         (valid, declared)
     }
 
-    fn underlying(&mut self, key: &Key, node: &Node) -> Option<Underlying> {
+    fn underlying(&mut self, key: &Key, node: &Node, only_currency: Option<&str>) -> Option<Underlying> {
         let name = &key.name;
         let example = format!("[underlyings.{name}] with currency, spot, volatility and dividend_yield lines");
         let entries = self.table(node, &format!("underlyings.{name}"), &example)?;
@@ -733,6 +736,7 @@ impl Reader<'_> {
         let mut dividend_yield = Some(Curve::Flat(0.0));
         let mut currency = None;
         let mut dividends = Vec::new();
+        let defaulted = only_currency.map(str::to_string);
         let mut fx_correlations = BTreeMap::new();
         let mut broken = false;
         // A misspelt key is already reported; don't report its field as missing too.
@@ -802,6 +806,9 @@ impl Reader<'_> {
                     broken = true;
                 }
             }
+        }
+        if currency.is_none() && !entries.iter().any(|(k, _)| k.name == "currency") {
+            currency = defaulted;
         }
         let given = [
             ("currency", currency.is_some(), "currency = \"USD\""),
@@ -1633,7 +1640,11 @@ VNTL = { OSMP = 0.50 }
         assert_eq!(errs[0].span, Some(Span::new(0, 0)));
         assert!(errs[0].render(Some(DEMO)).starts_with("market.toml:1:1: missing valuation_date"));
 
+        // With one currency in [rates], an underlying without a currency line is quoted in it.
         let text = DEMO.replacen("[underlyings.QMEN]\ncurrency = \"USD\"\n", "[underlyings.QMEN]\n", 1);
+        assert_eq!(Market::from_toml(&text, file()).unwrap().underlying("QMEN").unwrap().currency, "USD");
+        // With two it must be named.
+        let text = text.replacen("USD = 0.038\n", "USD = 0.038\nEUR = 0.02\n", 1);
         let (d, at) = only_error(&text);
         assert_eq!(d.message, "underlyings.QMEN has no currency");
         assert_eq!(d.fix.unwrap(), "add a line such as `currency = \"USD\"` under [underlyings.QMEN]");
