@@ -79,3 +79,92 @@ fn a_worst_of_autocall_on_two_assets_matches_its_closed_form() {
     assert!(controls(&v).iter().any(|c| c == "PAIRB hedge while worst"), "{v}");
     assert_within("two-asset worst-of autocall", p, se, reference, 4.0);
 }
+
+// Without antithetic pairs, a path that has ended is no longer simulated: the paths still
+// running are stepped date by date as the payoff reads them, and a path that ended gets its
+// last-date level by one exact step only when a control reads it. The same references must
+// hold, with and without controls.
+
+#[test]
+fn paths_that_stop_when_they_end_keep_the_two_date_closed_form() {
+    // The bivariate closed form of the two-date autocall above (common practice).
+    let body = "dates obs = 0.25y, 0.5y, 0.75y, 1y\nfor each t in obs {\n if t != first(obs) and t != 0.75y and perf(BOOKA) >= 1 {\n  pay 100 + 5 * position(t) / 2\n  end\n }\n}\n";
+    let (sigma, q) = (0.25, 0.04);
+    let mu = R - q - 0.5 * sigma * sigma;
+    let a = |t: f64| mu * t.sqrt() / sigma;
+    let reference = 105.0 * (-0.5 * R).exp() * norm_cdf(a(0.5))
+        + 110.0 * (-R).exp() * bivariate_norm_cdf(-a(0.5), a(1.0), -(0.5f64).sqrt());
+    for extra in [&["--no-antithetic"][..], &["--no-antithetic", "--no-control"]] {
+        let mut args = vec!["--paths", "200000"];
+        args.extend_from_slice(extra);
+        let v = price_text("stopping_two_dates.payoff", "BOOKA", body, &args);
+        let (p, se) = price_se(&v);
+        if extra.len() == 1 {
+            // A control whose paths missed its closed-form mean would be left out.
+            let names = controls(&v);
+            assert!(names.iter().any(|n| n == "BOOKA forward") && names.iter().any(|n| n == "BOOKA call"), "{v}");
+        }
+        assert_within(&format!("two-date autocall, {extra:?}"), p, se, reference, 4.0);
+    }
+}
+
+#[test]
+fn paths_that_stop_when_they_end_keep_the_worst_of_closed_form_and_every_control() {
+    // The two-asset worst-of closed form above (common practice), now with a date after
+    // the redemption date so that paths which end are stopped before the last date; the
+    // forward and call controls read the last date, so stopped paths get their last
+    // level by one correlated step. Had that step the wrong law, the regression would
+    // leave those controls out (their average would miss the closed form), with a warning.
+    let body = "dates obs = 0.5y, 0.75y, 1y\nfor each t in obs {\n if t == first(obs) and min(perf(PAIRA), perf(PAIRB)) >= 1 {\n  pay 104\n  end\n }\n if t == last(obs) {\n  pay 100\n }\n}\n";
+    let a = |sigma: f64, q: f64| (R - q - 0.5 * sigma * sigma) * 0.5f64.sqrt() / sigma;
+    let p_up = bivariate_norm_cdf(a(0.20, 0.01), a(0.30, 0.03), 0.5);
+    let reference = 104.0 * (-0.5 * R).exp() * p_up + 100.0 * (-R).exp() * (1.0 - p_up);
+    let v = price_text("stopping_worst_of.payoff", "PAIRA, PAIRB", body, &["--paths", "200000", "--no-antithetic"]);
+    let (p, se) = price_se(&v);
+    let names = controls(&v);
+    for c in ["PAIRA forward", "PAIRB call", "PAIRB hedge while worst"] {
+        assert!(names.iter().any(|n| n == c), "{c} missing: {v}");
+    }
+    assert_within("two-asset worst-of autocall, stopped paths", p, se, reference, 4.0);
+}
+
+#[test]
+fn the_asset_paid_when_a_stopped_path_ends_is_still_worth_its_spot() {
+    // Optional stopping, as in the first test (common practice): the stopped hedge makes
+    // the controlled estimate 100 up to rounding.
+    let body = "dates obs = 4 steps from start to 1y\nfor each t in obs {\n if perf(BOOKA) >= 1.05 or t == last(obs) {\n  pay level(BOOKA) * exp(0.04 * years(t))\n  end\n }\n}\n";
+    let v = price_text("stopped_lanes.payoff", "BOOKA", body, &["--paths", "20000", "--no-antithetic"]);
+    let (p, se) = price_se(&v);
+    assert!((p - 100.0).abs() <= 4.0 * se + 1e-9, "{p} ± {se} vs 100");
+}
+
+#[test]
+fn an_autocall_written_with_end_agrees_with_its_writing_without() {
+    // Two writings of one three-asset worst-of autocall: one ends the product (its paths
+    // stop being simulated), the other keeps a flag and simulates every path to the end.
+    // They share the stream until the first path ends; the prices must agree within four
+    // combined standard errors.
+    let with_end = "dates q = 8 steps from start to 2y\nfor each t in q {\n let worst = min(perf(PAIRA), perf(PAIRB))\n if worst >= 1.02 {\n  pay 100 + 3 * position(t)\n  end\n }\n if t == last(q) {\n  pay if worst >= 0.7 then 100 else 100 * worst\n }\n}\n";
+    let with_flag = "state called = 0\ndates q = 8 steps from start to 2y\nfor each t in q {\n let worst = min(perf(PAIRA), perf(PAIRB))\n if called == 0 and worst >= 1.02 {\n  pay 100 + 3 * position(t)\n  called = 1\n }\n if t == last(q) and called == 0 {\n  pay if worst >= 0.7 then 100 else 100 * worst\n }\n}\n";
+    let args = ["--paths", "100000", "--no-antithetic", "--no-control"];
+    let (p1, se1) = price_se(&price_text("written_with_end.payoff", "PAIRA, PAIRB", with_end, &args));
+    let (p2, se2) = price_se(&price_text("written_with_flag.payoff", "PAIRA, PAIRB", with_flag, &args));
+    let combined = (se1 * se1 + se2 * se2).sqrt();
+    assert!((p1 - p2).abs() <= 4.0 * combined, "with end {p1} ± {se1}, with a flag {p2} ± {se2}");
+    assert_ne!(p1, p2, "the writing with `end` should stop its ended paths (different draws)");
+}
+
+#[test]
+fn stopped_paths_give_the_same_bits_on_any_thread_count() {
+    let body = "dates q = 8 steps from start to 2y\nfor each t in q {\n if min(perf(PAIRA), perf(PAIRB)) >= 1 {\n  pay 100 + position(t)\n  end\n }\n if t == last(q) {\n  pay 100\n }\n}\n";
+    let run = |threads: &str| {
+        let v = price_text(
+            "stopped_threads.payoff",
+            "PAIRA, PAIRB",
+            body,
+            &["--paths", "30000", "--no-antithetic", "--threads", threads],
+        );
+        (v["price"].as_f64().unwrap().to_bits(), v["std_error"].as_f64().unwrap().to_bits())
+    };
+    assert_eq!(run("1"), run("2"));
+}

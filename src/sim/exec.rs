@@ -7,7 +7,7 @@
 
 use rand_pcg::Pcg64;
 
-use super::paths::{Controls, Model, PathBuffers};
+use super::paths::{op_sources, Controls, Model, PathBuffers};
 use super::rule;
 use super::sobol::Qmc;
 use super::stats::{sum, BlockResult, Moments};
@@ -34,6 +34,32 @@ pub struct Workspace {
     /// first use).
     given: Vec<f64>,
     qmc_scratch: Vec<f64>,
+    /// Whether the block's paths are stepped date by date as the operations read them,
+    /// only while they run ([`stops_early`]); and per operation, the last grid index it
+    /// reads.
+    stops_early: bool,
+    reads_to: Vec<usize>,
+}
+
+/// Whether a program's paths can stop being simulated once they end: it has an `end` that
+/// can come before its last date, and nothing reads a path between dates or after its end
+/// (no continuously monitored window, value along the path, early-exercise rule, log
+/// levels, or control other than the stopped hedges and the last date's levels, which a
+/// stopped path is given by one exact step).
+pub fn stops_early(p: &Program, controls: &Controls) -> bool {
+    let ends_early = p.ops.iter().any(|op| matches!(op, Op::End { mask, .. } if *mask != ALIVE));
+    ends_early
+        && p.monitors.is_empty()
+        && p.path_values.is_empty()
+        && p.choices.is_empty()
+        && !controls.needs_logs()
+        && p.grid.len() > 1
+}
+
+/// What stepping the paths as the operations read them needs.
+struct Stepping<'a, 'r> {
+    model: &'a Model,
+    rng: &'r mut Pcg64,
 }
 
 /// Where a block's normals come from when they are quasi-random: randomisation `r` of a
@@ -67,6 +93,20 @@ impl Workspace {
             stop: vec![0.0; BLOCK],
             given: Vec::new(),
             qmc_scratch: Vec::new(),
+            stops_early: stops_early(p, controls),
+            reads_to: p
+                .ops
+                .iter()
+                .map(|op| {
+                    op_sources(op)
+                        .filter_map(|src| match src {
+                            Src::Level(k) => Some(k as usize / p.assets.len().max(1)),
+                            _ => None,
+                        })
+                        .max()
+                        .unwrap_or(0)
+                })
+                .collect(),
         }
     }
 
@@ -119,11 +159,18 @@ impl Workspace {
             }
             None => None,
         };
-        self.paths.generate(p, model, &mut rng, lanes, settings.antithetic, BLOCK, given);
-        self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
-        if !p.path_values.is_empty() {
-            let antithetic = settings.antithetic;
-            self.paths.path_values(p, model, &mut rng, lanes, antithetic, BLOCK, &mut self.path_values);
+        let antithetic = settings.antithetic;
+        // Antithetic pairs seldom both end early (the mirror of a path that redeems
+        // tends not to), so pairs are simulated to the end.
+        let early = self.stops_early && given.is_none() && !antithetic;
+        if early {
+            self.paths.start(p, model, lanes, BLOCK);
+        } else {
+            self.paths.generate(p, model, &mut rng, lanes, antithetic, BLOCK, given);
+            self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
+            if !p.path_values.is_empty() {
+                self.paths.path_values(p, model, &mut rng, lanes, antithetic, BLOCK, &mut self.path_values);
+            }
         }
         // Only the per-date tallies are allocated here; the moments are built below
         // (moments of no dimension allocate nothing).
@@ -135,7 +182,18 @@ impl Workspace {
             bad_paths: Vec::new(),
             largest: (0.0, 0),
         };
-        self.execute(p, controls, lanes, &mut result);
+        let stepping = early.then_some(Stepping { model, rng: &mut rng });
+        self.execute(p, controls, lanes, &mut result, stepping);
+        if early {
+            // The paths still running go on to the last date; the others get their last
+            // level by one step when a control reads it.
+            let last = p.grid.len() - 1;
+            let alive = &self.regs[ALIVE as usize][..lanes];
+            self.paths.step_running_to(p, model, &mut rng, last, alive, lanes, BLOCK);
+            if controls.reads_last_date() {
+                self.paths.jump_stopped_to_last(p, model, &mut rng, lanes, BLOCK);
+            }
+        }
         // Paths still alive after the last operation end on the last run date.
         if let Some(last) = p.events.len().checked_sub(1) {
             result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
@@ -168,7 +226,14 @@ impl Workspace {
         result
     }
 
-    fn execute(&mut self, p: &Program, controls: &Controls, lanes: usize, result: &mut BlockResult) {
+    fn execute(
+        &mut self,
+        p: &Program,
+        controls: &Controls,
+        lanes: usize,
+        result: &mut BlockResult,
+        mut stepping: Option<Stepping<'_, '_>>,
+    ) {
         self.regs[ALIVE as usize][..lanes].fill(1.0);
         if controls.tracks_ends() {
             self.stop[..lanes].fill((p.grid.len() - 1) as f64);
@@ -179,6 +244,13 @@ impl Workspace {
         self.pv[..lanes].fill(0.0);
         self.choice.recorded = false;
         for (index, op) in p.ops.iter().enumerate() {
+            if let Some(st) = &mut stepping {
+                let to = self.reads_to[index];
+                if to > self.paths.stepped() {
+                    let alive = &self.regs[ALIVE as usize][..lanes];
+                    self.paths.step_running_to(p, st.model, st.rng, to, alive, lanes, BLOCK);
+                }
+            }
             match *op {
                 Op::Bin { op, dst, a, b } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
@@ -192,9 +264,14 @@ impl Workspace {
                     binary(op, &mut out[..lanes], a, b);
                     // A comparison with a value that is not a number has no answer; count
                     // the paths so the run is refused instead of taking the `else` side.
+                    // A path that has ended is not counted: nothing it decides is paid
+                    // (and once ended it may not be simulated further).
                     let bad = not_a_number(a, lanes) | not_a_number(b, lanes);
                     if bad {
-                        let count = (0..lanes).filter(|&i| at(a, i).is_nan() || at(b, i).is_nan()).count() as u64;
+                        let alive = &self.regs[ALIVE as usize][..lanes];
+                        let count = (0..lanes)
+                            .filter(|&i| alive[i] != 0.0 && (at(a, i).is_nan() || at(b, i).is_nan()))
+                            .count() as u64;
                         if result.bad_paths.is_empty() {
                             result.bad_paths = vec![0; p.pay_sites.len() + p.condition_sites.len()];
                         }

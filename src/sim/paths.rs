@@ -26,6 +26,10 @@ pub struct Model {
     pub uncorrelated: bool,
     /// Assets watched by a barrier, whose bridge uniforms are drawn.
     pub watched: Vec<usize>,
+    /// `total_drift[k][a]`, `total_variance[k][a]`: the sums of the drifts and of the
+    /// squared scales of the steps up to grid index `k`, for one step over several.
+    pub total_drift: Vec<Vec<f64>>,
+    pub total_variance: Vec<Vec<f64>>,
 }
 
 impl Model {
@@ -63,7 +67,17 @@ impl Model {
             .iter()
             .enumerate()
             .all(|(i, row)| row.iter().enumerate().all(|(j, &c)| c == if i == j { 1.0 } else { 0.0 }));
+        let mut total_drift = vec![vec![0.0; p.assets.len()]; n];
+        let mut total_variance = vec![vec![0.0; p.assets.len()]; n];
+        for k in 1..n {
+            for a in 0..p.assets.len() {
+                total_drift[k][a] = total_drift[k - 1][a] + drift[k][a];
+                total_variance[k][a] = total_variance[k - 1][a] + scale[k][a] * scale[k][a];
+            }
+        }
         Model {
+            total_drift,
+            total_variance,
             drift,
             scale,
             log_spot: p.assets.iter().map(|a| a.spot.ln()).collect(),
@@ -131,6 +145,23 @@ fn exp_into_generic(out: &mut [f64], x: &[f64]) {
     }
 }
 
+/// `exp(x)` for one value, with the same bits as [`exp_into`].
+#[inline]
+fn exp_one(x: f64) -> f64 {
+    if x.abs() <= EXP_RANGE {
+        exp_poly(x)
+    } else {
+        x.exp()
+    }
+}
+
+/// Fills `out` with standard normals from `rng`, in order.
+fn draw_normals(rng: &mut Pcg64, out: &mut [f64]) {
+    for z in out {
+        *z = rng.sample(StandardNormal);
+    }
+}
+
 /// Where `exp_poly` is exact to a couple of ulps and its result a normal number.
 const EXP_RANGE: f64 = 708.0;
 
@@ -185,13 +216,23 @@ pub struct PathBuffers {
     pub uniforms: Vec<f64>,
     /// One step's normals, `[asset · BLOCK + lane]`, then correlated in place.
     z: Vec<f64>,
-    /// One lane-row of the correlation product.
+    /// One lane-row of the correlation product, or a step's normals as drawn.
     w: Vec<f64>,
     /// The draws of one first-passage time per lane: a normal, then a uniform.
     hit_draws: Vec<f64>,
     /// Current log levels `[asset · BLOCK + lane]`.
     x: Vec<f64>,
     keep_logs: bool,
+    /// Per asset, the log spot plus the drifts so far: a path and its mirror are
+    /// symmetric about it.
+    centre: Vec<f64>,
+    /// The last grid index simulated (for some lanes, when stepping lanes still running).
+    stepped: usize,
+    /// Per lane, the last grid index it was stepped to; and the lanes a step simulates.
+    unit_last: Vec<u32>,
+    running: Vec<u32>,
+    /// The running lanes' log levels, then their levels, packed.
+    packed: Vec<f64>,
 }
 
 impl PathBuffers {
@@ -202,10 +243,15 @@ impl PathBuffers {
             logs: if keep_logs { vec![0.0; cells] } else { Vec::new() },
             uniforms: vec![0.0; model.watched.len() * p.grid.len() * block],
             z: vec![0.0; p.assets.len() * block],
-            w: vec![0.0; block],
+            w: vec![0.0; p.assets.len().max(1) * block],
             hit_draws: if p.path_values.is_empty() { Vec::new() } else { vec![0.0; 2 * block] },
             x: vec![0.0; p.assets.len() * block],
             keep_logs,
+            centre: vec![0.0; p.assets.len()],
+            stepped: 0,
+            unit_last: vec![0; block],
+            running: Vec::with_capacity(block),
+            packed: vec![0.0; 2 * block],
         }
     }
 
@@ -224,11 +270,19 @@ impl PathBuffers {
         block: usize,
         given: Option<&[f64]>,
     ) {
+        self.start(p, model, lanes, block);
+        for k in p.past + 1..p.grid.len() {
+            self.step(p, model, rng, k, lanes, antithetic, block, given);
+        }
+        self.draw_uniforms(model, rng, lanes, antithetic, block, p.grid.len());
+    }
+
+    /// Puts every lane at the valuation date: past dates hold their fixings, the
+    /// valuation date the spot.
+    pub fn start(&mut self, p: &Program, model: &Model, lanes: usize, block: usize) {
         let na = p.assets.len();
-        let drawn = if antithetic { lanes / 2 } else { lanes };
         for a in 0..na {
             self.x[a * block..a * block + lanes].fill(model.log_spot[a]);
-            // Past dates hold their fixings; the valuation date the spot.
             for k in 0..=p.past {
                 let cell = (k * na + a) * block;
                 let (level, log) = if k == p.past {
@@ -242,91 +296,123 @@ impl PathBuffers {
                 }
             }
         }
-        // Each step works in passes over the block so that everything except drawing the
-        // normals runs as straight loops over lanes: draw (lane by lane, asset by asset
-        // within a lane: the order is part of what a seed means), correlate, step the logs
-        // of each path and its mirror, exponentiate.
-        let mut centre = model.log_spot.clone();
-        for k in p.past + 1..p.grid.len() {
-            let (drift, scale) = (&model.drift[k], &model.scale[k]);
-            if let Some(given) = given {
+        self.centre.copy_from_slice(&model.log_spot);
+        self.stepped = p.past;
+        self.unit_last.fill(p.past as u32);
+    }
+
+    /// Steps every lane to grid index `k` (the next one).
+    ///
+    /// The step works in passes over the block so that everything except drawing the
+    /// normals runs as straight loops over lanes: draw (lane by lane, asset by asset
+    /// within a lane: the order is part of what a seed means), correlate, step the logs
+    /// of each path and its mirror, exponentiate.
+    #[allow(clippy::too_many_arguments)]
+    fn step(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        k: usize,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        given: Option<&[f64]>,
+    ) {
+        let na = p.assets.len();
+        let drawn = if antithetic { lanes / 2 } else { lanes };
+        let (drift, scale) = (&model.drift[k], &model.scale[k]);
+        if let Some(given) = given {
+            for a in 0..na {
+                let from = &given[((k - 1) * na + a) * block..][..drawn];
+                self.z[a * block..a * block + drawn].copy_from_slice(from);
+            }
+        } else if na == 1 {
+            for z in &mut self.z[..drawn] {
+                *z = rng.sample(StandardNormal);
+            }
+        } else {
+            for lane in 0..drawn {
                 for a in 0..na {
-                    let from = &given[((k - 1) * na + a) * block..][..drawn];
-                    self.z[a * block..a * block + drawn].copy_from_slice(from);
-                }
-            } else if na == 1 {
-                for z in &mut self.z[..drawn] {
-                    *z = rng.sample(StandardNormal);
-                }
-            } else {
-                for lane in 0..drawn {
-                    for a in 0..na {
-                        self.z[a * block + lane] = rng.sample(StandardNormal);
-                    }
-                }
-            }
-            if !model.uncorrelated {
-                // Row a of the factor needs normals 0..=a only: go from the last row up and
-                // overwrite in place. Sums run in ascending j, as a matrix product would.
-                for a in (0..na).rev() {
-                    let w = &mut self.w[..drawn];
-                    w.fill(0.0);
-                    for (j, &c) in model.cholesky[a].iter().enumerate() {
-                        let zj = &self.z[j * block..j * block + drawn];
-                        for (w, z) in w.iter_mut().zip(zj) {
-                            *w += c * z;
-                        }
-                    }
-                    self.z[a * block..a * block + drawn].copy_from_slice(w);
-                }
-            }
-            for a in 0..na {
-                let (d, s) = (drift[a], scale[a]);
-                let z = &self.z[a * block..a * block + drawn];
-                if antithetic {
-                    let (up, down) = self.x[a * block..a * block + 2 * drawn].split_at_mut(drawn);
-                    for ((u, v), z) in up.iter_mut().zip(down.iter_mut()).zip(z) {
-                        let step = s * z;
-                        *u += d + step;
-                        *v += d - step;
-                    }
-                } else {
-                    for (u, z) in self.x[a * block..a * block + drawn].iter_mut().zip(z) {
-                        *u += d + s * z;
-                    }
-                }
-            }
-            for a in 0..na {
-                centre[a] += drift[a];
-                let cell = (k * na + a) * block;
-                let x = &self.x[a * block..a * block + lanes];
-                let levels = &mut self.levels[cell..cell + lanes];
-                if antithetic && drawn > 0 {
-                    // One exp per pair: a path and its mirror are symmetric about the
-                    // common centre c (the log spot plus the drifts so far), so the
-                    // mirror's level is e^{2c} / the path's level, a division for an exp.
-                    exp_into(&mut levels[..drawn], &x[..drawn]);
-                    let twice = (2.0 * centre[a]).exp();
-                    let (up, down) = levels.split_at_mut(drawn);
-                    let mut finite = true;
-                    for (d, u) in down[..drawn].iter_mut().zip(up.iter()) {
-                        *d = twice / u;
-                        finite &= d.is_finite() && *d != 0.0;
-                    }
-                    if !finite {
-                        // Beyond the range of doubles (or of e^{2c}): the mirror's own exp.
-                        exp_into(&mut down[..drawn], &x[drawn..2 * drawn]);
-                    }
-                    exp_into(&mut levels[2 * drawn..], &x[2 * drawn..]);
-                } else {
-                    exp_into(levels, x);
-                }
-                if self.keep_logs {
-                    self.logs[cell..cell + lanes].copy_from_slice(x);
+                    self.z[a * block + lane] = rng.sample(StandardNormal);
                 }
             }
         }
-        let steps = p.grid.len();
+        if !model.uncorrelated {
+            // Row a of the factor needs normals 0..=a only: go from the last row up and
+            // overwrite in place. Sums run in ascending j, as a matrix product would.
+            for a in (0..na).rev() {
+                let w = &mut self.w[..drawn];
+                w.fill(0.0);
+                for (j, &c) in model.cholesky[a].iter().enumerate() {
+                    let zj = &self.z[j * block..j * block + drawn];
+                    for (w, z) in w.iter_mut().zip(zj) {
+                        *w += c * z;
+                    }
+                }
+                self.z[a * block..a * block + drawn].copy_from_slice(w);
+            }
+        }
+        for a in 0..na {
+            let (d, s) = (drift[a], scale[a]);
+            let z = &self.z[a * block..a * block + drawn];
+            if antithetic {
+                let (up, down) = self.x[a * block..a * block + 2 * drawn].split_at_mut(drawn);
+                for ((u, v), z) in up.iter_mut().zip(down.iter_mut()).zip(z) {
+                    let step = s * z;
+                    *u += d + step;
+                    *v += d - step;
+                }
+            } else {
+                for (u, z) in self.x[a * block..a * block + drawn].iter_mut().zip(z) {
+                    *u += d + s * z;
+                }
+            }
+        }
+        for a in 0..na {
+            self.centre[a] += drift[a];
+            let cell = (k * na + a) * block;
+            let x = &self.x[a * block..a * block + lanes];
+            let levels = &mut self.levels[cell..cell + lanes];
+            if antithetic && drawn > 0 {
+                // One exp per pair: a path and its mirror are symmetric about the
+                // common centre c (the log spot plus the drifts so far), so the
+                // mirror's level is e^{2c} / the path's level, a division for an exp.
+                exp_into(&mut levels[..drawn], &x[..drawn]);
+                let twice = (2.0 * self.centre[a]).exp();
+                let (up, down) = levels.split_at_mut(drawn);
+                let mut finite = true;
+                for (d, u) in down[..drawn].iter_mut().zip(up.iter()) {
+                    *d = twice / u;
+                    finite &= d.is_finite() && *d != 0.0;
+                }
+                if !finite {
+                    // Beyond the range of doubles (or of e^{2c}): the mirror's own exp.
+                    exp_into(&mut down[..drawn], &x[drawn..2 * drawn]);
+                }
+                exp_into(&mut levels[2 * drawn..], &x[2 * drawn..]);
+            } else {
+                exp_into(levels, x);
+            }
+            if self.keep_logs {
+                self.logs[cell..cell + lanes].copy_from_slice(x);
+            }
+        }
+        self.stepped = k;
+        self.unit_last[..drawn].fill(k as u32);
+    }
+
+    /// The bridge uniforms of the watched assets, drawn after every normal of the paths.
+    fn draw_uniforms(
+        &mut self,
+        model: &Model,
+        rng: &mut Pcg64,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        steps: usize,
+    ) {
+        let drawn = if antithetic { lanes / 2 } else { lanes };
         for slot in 0..model.watched.len() {
             for k in 1..steps {
                 let base = (slot * steps + k) * block;
@@ -338,6 +424,133 @@ impl PathBuffers {
                     }
                 }
             }
+        }
+    }
+
+    /// The last grid index simulated so far.
+    pub fn stepped(&self) -> usize {
+        self.stepped
+    }
+
+    /// Steps the paths still running (`alive` set) to grid index `k`, one grid date at a
+    /// time, without antithetic pairs. The others keep their last level on later dates
+    /// (nothing reads it: they have ended) and draw nothing. While more than three
+    /// quarters of the lanes run, a step is exactly [`Self::step`], every lane included.
+    #[allow(clippy::too_many_arguments)]
+    pub fn step_running_to(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        k: usize,
+        alive: &[f64],
+        lanes: usize,
+        block: usize,
+    ) {
+        while self.stepped < k {
+            let next = self.stepped + 1;
+            // Without a branch per lane (which way it goes is random): write every
+            // index, advance past the running ones.
+            self.running.resize(lanes, 0);
+            let mut m = 0;
+            for (lane, a) in alive[..lanes].iter().enumerate() {
+                self.running[m] = lane as u32;
+                m += usize::from(*a != 0.0);
+            }
+            self.running.truncate(m);
+            // Packing the running lanes costs more than it saves while most still run.
+            if 4 * m > 3 * lanes {
+                self.step(p, model, rng, next, lanes, false, block, None);
+            } else {
+                self.step_some(p, model, rng, next, lanes, block);
+            }
+        }
+    }
+
+    /// [`Self::step`] for the lanes in `self.running` only, with the same arithmetic per
+    /// lane; every other lane's level is carried over from the previous date.
+    fn step_some(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, k: usize, lanes: usize, block: usize) {
+        let na = p.assets.len();
+        let m = self.running.len();
+        let (drift, scale) = (&model.drift[k], &model.scale[k]);
+        // The normals of the running lanes, lane by lane, asset by asset within a lane,
+        // laid out `z[a·block + j]` for the j-th running lane and correlated as in a step.
+        draw_normals(rng, &mut self.w[..na * m]);
+        for j in 0..m {
+            for a in 0..na {
+                self.z[a * block + j] = self.w[j * na + a];
+            }
+        }
+        if !model.uncorrelated {
+            for a in (0..na).rev() {
+                let w = &mut self.w[..m];
+                w.fill(0.0);
+                for (j, &c) in model.cholesky[a].iter().enumerate() {
+                    let zj = &self.z[j * block..j * block + m];
+                    for (w, z) in w.iter_mut().zip(zj) {
+                        *w += c * z;
+                    }
+                }
+                self.z[a * block..a * block + m].copy_from_slice(w);
+            }
+        }
+        // Each asset's running lanes gathered into `packed`, stepped and exponentiated in
+        // straight loops, and put back.
+        for a in 0..na {
+            self.centre[a] += drift[a];
+            let (d, s) = (drift[a], scale[a]);
+            let cell = (k * na + a) * block;
+            let previous = ((k - 1) * na + a) * block;
+            self.levels.copy_within(previous..previous + lanes, cell);
+            let x = &mut self.x[a * block..a * block + lanes];
+            let (packed, packed_levels) = self.packed.split_at_mut(block);
+            let (packed, packed_levels) = (&mut packed[..m], &mut packed_levels[..m]);
+            let z = &self.z[a * block..a * block + m];
+            for ((x_new, &lane), z) in packed.iter_mut().zip(&self.running).zip(z) {
+                *x_new = x[lane as usize] + (d + s * z);
+            }
+            exp_into(packed_levels, packed);
+            let levels = &mut self.levels[cell..cell + lanes];
+            for ((&lane, &x_new), &level) in self.running.iter().zip(&*packed).zip(&*packed_levels) {
+                x[lane as usize] = x_new;
+                levels[lane as usize] = level;
+            }
+        }
+        for &lane in &self.running {
+            self.unit_last[lane as usize] = k as u32;
+        }
+        self.stepped = k;
+    }
+
+    /// Puts the last-date level of every lane that stopped running before the last date,
+    /// by one exact step from where it stopped: the law of each asset's last level is
+    /// then the model's, as controls read at the last date need. Draws the normals lane by
+    /// lane (asset by asset within one) after every step's. Across assets the step has
+    /// the model's correlation; its covariance is exact when the assets' volatilities keep
+    /// their ratios over the step (flat volatilities), and the controls need only each
+    /// asset's own law.
+    pub fn jump_stopped_to_last(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
+        let na = p.assets.len();
+        let last = p.grid.len() - 1;
+        let mut row = vec![0.0; na];
+        for lane in 0..lanes {
+            let from = self.unit_last[lane] as usize;
+            if from >= last {
+                continue;
+            }
+            draw_normals(rng, &mut row);
+            for a in 0..na {
+                let mut z = 0.0;
+                for (c, r) in model.cholesky[a].iter().zip(&row) {
+                    z += c * r;
+                }
+                let drift = model.total_drift[last][a] - model.total_drift[from][a];
+                let sd = (model.total_variance[last][a] - model.total_variance[from][a]).max(0.0).sqrt();
+                let x = &mut self.x[a * block + lane];
+                *x += drift + sd * z;
+                self.levels[(last * na + a) * block + lane] = exp_one(*x);
+            }
+            self.unit_last[lane] = last as u32;
         }
     }
 
@@ -753,7 +966,7 @@ fn hedge_step3_generic(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
 }
 
 /// The operands an operation reads.
-fn op_sources(op: &Op) -> impl Iterator<Item = Src> {
+pub(crate) fn op_sources(op: &Op) -> impl Iterator<Item = Src> {
     let (a, b, c) = match *op {
         Op::Bin { a, b, .. } | Op::Cmp { a, b, .. } => (Some(a), Some(b), None),
         Op::Un { a, .. } => (Some(a), None, None),
@@ -997,6 +1210,12 @@ impl Controls {
     /// randomness from rounding.
     pub fn scale(&self, j: usize) -> f64 {
         self.list[j].scale
+    }
+
+    /// Whether any control reads the levels of the last date (which a path that stopped
+    /// early must then be given, [`PathBuffers::jump_stopped_to_last`]).
+    pub fn reads_last_date(&self) -> bool {
+        self.list.iter().any(|c| matches!(c.kind, ControlKind::Terminal { .. } | ControlKind::Call { .. }))
     }
 
     /// Whether any control needs log levels.
