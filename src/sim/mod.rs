@@ -11,12 +11,14 @@
 pub mod exec;
 pub mod exercise;
 pub mod joint;
+pub mod normals;
 pub mod partial;
 pub mod paths;
 pub mod regress;
 pub mod rule;
 pub mod sobol;
 pub mod stats;
+mod ziggurat;
 
 use std::time::{Duration, Instant};
 

@@ -6,6 +6,7 @@ use rand::Rng;
 use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
+use super::normals;
 use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
 use crate::compile::{Op, PathValue, Program, Src, ALIVE};
 use crate::typing::Direction;
@@ -152,13 +153,6 @@ fn exp_one(x: f64) -> f64 {
         exp_poly(x)
     } else {
         x.exp()
-    }
-}
-
-/// Fills `out` with standard normals from `rng`, in order.
-fn draw_normals(rng: &mut Pcg64, out: &mut [f64]) {
-    for z in out {
-        *z = rng.sample(StandardNormal);
     }
 }
 
@@ -328,13 +322,14 @@ impl PathBuffers {
                 self.z[a * block..a * block + drawn].copy_from_slice(from);
             }
         } else if na == 1 {
-            for z in &mut self.z[..drawn] {
-                *z = rng.sample(StandardNormal);
-            }
+            normals::fill(rng, &mut self.z[..drawn]);
         } else {
-            for lane in 0..drawn {
-                for a in 0..na {
-                    self.z[a * block + lane] = rng.sample(StandardNormal);
+            // Drawn lane by lane, asset by asset within a lane, then laid out by asset.
+            let drawn_z = &mut self.w[..na * drawn];
+            normals::fill(rng, drawn_z);
+            for (lane, row) in drawn_z.chunks_exact(na).enumerate() {
+                for (a, &z) in row.iter().enumerate() {
+                    self.z[a * block + lane] = z;
                 }
             }
         }
@@ -475,7 +470,7 @@ impl PathBuffers {
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
         // The normals of the running lanes, lane by lane, asset by asset within a lane,
         // laid out `z[a·block + j]` for the j-th running lane and correlated as in a step.
-        draw_normals(rng, &mut self.w[..na * m]);
+        normals::fill(rng, &mut self.w[..na * m]);
         for j in 0..m {
             for a in 0..na {
                 self.z[a * block + j] = self.w[j * na + a];
@@ -538,7 +533,7 @@ impl PathBuffers {
             if from >= last {
                 continue;
             }
-            draw_normals(rng, &mut row);
+            normals::fill(rng, &mut row);
             for a in 0..na {
                 let mut z = 0.0;
                 for (c, r) in model.cholesky[a].iter().zip(&row) {
