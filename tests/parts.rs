@@ -281,3 +281,27 @@ fn a_run_that_fails_fails_the_same_way_when_merged() {
         assert_eq!(merged, single.1, "{file}: reference: the single run's error");
     }
 }
+
+/// A run of more blocks than are in flight at once (256) reuses the first chunk's block
+/// results and workspaces for every later chunk; the blocks simulated one by one into fresh
+/// results and replayed in order must give the same estimate bit for bit (the reference:
+/// the single run, as for every merge here). With pairs and controls, and without either
+/// and an uneven last block.
+#[test]
+fn reused_block_storage_gives_the_bits_of_fresh_blocks() {
+    use pathfold::sim::partial::{blocks_run, simulate_blocks, Replay};
+    use pathfold::sim::{simulate, Settings};
+    let compiled = pathfold::pricing::compile_file(Path::new(AUTOCALL), None, &[]).expect("the demo autocall compiles");
+    let program = &compiled.program;
+    let plain = Settings { paths: 600 * 256 + 37, antithetic: false, control_variates: false, ..Settings::default() };
+    for settings in [Settings { paths: 520 * 256, seed: 11, ..Settings::default() }, plain] {
+        let single = simulate(program, &settings).expect("the single run prices");
+        let mut replay = Replay::new(program, &settings);
+        for block in &simulate_blocks(program, &settings, 0..blocks_run(&settings)) {
+            replay.add(block);
+        }
+        let mut replayed = replay.finish(std::time::Instant::now()).expect("the replay prices");
+        replayed.elapsed = single.elapsed;
+        assert_eq!(replayed, single, "paths {}, antithetic {}", settings.paths, settings.antithetic);
+    }
+}

@@ -146,6 +146,26 @@ impl Workspace {
         lanes: usize,
         points: Option<Points<'_>>,
     ) -> BlockResult {
+        let mut result = BlockResult::new(0, 0, 0);
+        self.run_block_into(p, model, controls, settings, index, lanes, points, &mut result);
+        result
+    }
+
+    /// [`Workspace::run_block_from`], writing the block's statistics over `result`
+    /// (whatever it held): the same bits, and no allocation once `result` has held a
+    /// block of this program.
+    #[allow(clippy::too_many_arguments)]
+    pub fn run_block_into(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        controls: &Controls,
+        settings: &Settings,
+        index: u64,
+        lanes: usize,
+        points: Option<Points<'_>>,
+        result: &mut BlockResult,
+    ) {
         let mut rng = block_rng(settings.seed, index);
         let drawn = if settings.antithetic { lanes / 2 } else { lanes };
         let given = match points {
@@ -172,18 +192,9 @@ impl Workspace {
                 self.paths.path_values(p, model, &mut rng, lanes, antithetic, BLOCK, &mut self.path_values);
             }
         }
-        // Only the per-date tallies are allocated here; the moments are built below
-        // (moments of no dimension allocate nothing).
-        let mut result = BlockResult {
-            moments: Moments::new(0),
-            raw: Moments::new(0),
-            ended: vec![0.0; p.events.len()],
-            paid: vec![0.0; p.payments.len()],
-            bad_paths: Vec::new(),
-            largest: (0.0, 0),
-        };
+        result.reset(self.columns.len(), p.events.len(), p.payments.len());
         let stepping = early.then_some(Stepping { model, rng: &mut rng });
-        self.execute(p, controls, lanes, &mut result, stepping);
+        self.execute(p, controls, lanes, result, stepping);
         if early {
             // The paths still running go on to the last date; the others get their last
             // level by one step when a control reads it.
@@ -198,32 +209,46 @@ impl Workspace {
         if let Some(last) = p.events.len().checked_sub(1) {
             result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
         }
-        result.raw = Moments::of_columns(&[&self.pv[..lanes]]);
         controls.fill(p, &self.paths, &self.stop, lanes, BLOCK, &mut self.columns[1..]);
-        self.columns[0][..lanes].copy_from_slice(&self.pv[..lanes]);
         // An antithetic pair is one sample: the mean of its two paths.
         let units = if settings.antithetic { lanes / 2 } else { lanes };
         if settings.antithetic {
-            for col in &mut self.columns {
+            // The payoff's column is read from the lanes directly: no copy first.
+            let (first, mirror) = self.pv[..2 * units].split_at(units);
+            for ((x, a), b) in self.columns[0][..units].iter_mut().zip(first).zip(mirror) {
+                *x = 0.5 * (a + b);
+            }
+            for col in &mut self.columns[1..] {
                 let (first, mirror) = col[..2 * units].split_at_mut(units);
                 for (x, y) in first.iter_mut().zip(&*mirror) {
                     *x = 0.5 * (*x + y);
                 }
             }
+        } else {
+            self.columns[0][..lanes].copy_from_slice(&self.pv[..lanes]);
         }
         // The column slices, on the stack unless there are many controls.
         const ON_STACK: usize = 8;
-        if self.columns.len() <= ON_STACK {
-            let mut cols: [&[f64]; ON_STACK] = [&[]; ON_STACK];
-            for (c, col) in cols.iter_mut().zip(&self.columns) {
+        let mut on_stack: [&[f64]; ON_STACK] = [&[]; ON_STACK];
+        let on_heap: Vec<&[f64]>;
+        let cols = if self.columns.len() <= ON_STACK {
+            for (c, col) in on_stack.iter_mut().zip(&self.columns) {
                 *c = &col[..units];
             }
-            result.moments = Moments::of_columns(&cols[..self.columns.len()]);
+            &on_stack[..self.columns.len()]
         } else {
-            let cols: Vec<&[f64]> = self.columns.iter().map(|c| &c[..units]).collect();
-            result.moments = Moments::of_columns(&cols);
+            on_heap = self.columns.iter().map(|c| &c[..units]).collect();
+            &on_heap[..]
+        };
+        if settings.antithetic {
+            // The raw moments are over the paths, the others over the pairs: two batches.
+            Moments::fill_two(&mut result.moments, cols, &mut result.raw, &[&self.pv[..lanes]]);
+        } else {
+            // Without pairs a sample is a path: the payoff's column holds the lanes, and
+            // its moments are the raw moments, computed by the same sums.
+            result.moments.fill_from_columns(cols);
+            result.raw.copy_first(&result.moments);
         }
-        result
     }
 
     fn execute(
@@ -272,10 +297,8 @@ impl Workspace {
                         let count = (0..lanes)
                             .filter(|&i| alive[i] != 0.0 && (at(a, i).is_nan() || at(b, i).is_nan()))
                             .count() as u64;
-                        if result.bad_paths.is_empty() {
-                            result.bad_paths = vec![0; p.pay_sites.len() + p.condition_sites.len()];
-                        }
-                        result.bad_paths[p.pay_sites.len() + site as usize] += count;
+                        let sites = p.pay_sites.len() + p.condition_sites.len();
+                        result.note_bad(p.pay_sites.len() + site as usize, sites, count);
                     }
                     self.regs[dst as usize] = out;
                 }
@@ -351,10 +374,8 @@ impl Workspace {
                     if !total.is_finite() {
                         let bad = paid[..lanes].iter().filter(|v| !v.is_finite()).count() as u64;
                         if bad > 0 {
-                            if result.bad_paths.is_empty() {
-                                result.bad_paths = vec![0; p.pay_sites.len() + p.condition_sites.len()];
-                            }
-                            result.bad_paths[site as usize] += bad;
+                            let sites = p.pay_sites.len() + p.condition_sites.len();
+                            result.note_bad(site as usize, sites, bad);
                         }
                     }
                     (self.paid, self.pv) = (paid, pvs);

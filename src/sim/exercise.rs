@@ -28,6 +28,7 @@ use rayon::prelude::*;
 use super::exec::Workspace;
 use super::paths::{Controls, Model};
 use super::rule::{basis_len, Normal};
+use super::stats::BlockResult;
 use super::{Settings, BLOCK};
 use crate::compile::{Program, Rule};
 use crate::syntax::Party;
@@ -63,9 +64,9 @@ pub fn prepare<'a>(program: &'a Program, settings: &Settings) -> Cow<'a, Program
         let blocks: Vec<Normal> = (0..FIT_BLOCKS)
             .into_par_iter()
             .map_init(
-                || Workspace::new(prog, &model, &none),
-                |ws, b| {
-                    ws.run_block(prog, &model, &none, &plain, FIT_STREAM + b, BLOCK);
+                || (Workspace::new(prog, &model, &none), BlockResult::new(0, 0, 0)),
+                |(ws, r), b| {
+                    ws.run_block_into(prog, &model, &none, &plain, FIT_STREAM + b, BLOCK, None, r);
                     Normal::of_block(&prog.choices[site], ws.recorded(), ws.payoffs(), BLOCK)
                 },
             )

@@ -89,12 +89,12 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
                 || {
                     let spaces: Vec<Workspace> =
                         programs.iter().zip(&models).map(|(p, m)| Workspace::new(p, m, &none)).collect();
-                    (spaces, vec![vec![0.0; BLOCK]; k])
+                    (spaces, vec![vec![0.0; BLOCK]; k], BlockResult::new(0, 0, 0))
                 },
-                |(spaces, columns), b| {
+                |(spaces, columns, r), b| {
                     let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
                     for (j, ((p, m), ws)) in programs.iter().zip(&models).zip(spaces.iter_mut()).enumerate() {
-                        let r: BlockResult = ws.run_block(p, m, &none, &plain, b, lanes);
+                        ws.run_block_into(p, m, &none, &plain, b, lanes, None, r);
                         if !r.is_finite() {
                             return Err(j);
                         }

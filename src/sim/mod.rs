@@ -20,6 +20,7 @@ pub mod sobol;
 pub mod stats;
 mod ziggurat;
 
+use std::sync::Mutex;
 use std::time::{Duration, Instant};
 
 use rayon::prelude::*;
@@ -291,6 +292,36 @@ struct Run<'a> {
     paths: u64,
     /// For a Sobol run: the sampler and this run's randomisation.
     points: Option<(&'a sobol::Qmc, usize)>,
+    /// The results of the blocks in flight, overwritten chunk after chunk.
+    slots: Vec<BlockResult>,
+    /// Workers' buffers between chunks, so a long run sets them up only once.
+    spare: Mutex<Vec<Workspace>>,
+}
+
+/// A workspace taken from a run's spares (or new when there is none), handed back when
+/// the worker is done with it.
+struct Lease<'s> {
+    spare: &'s Mutex<Vec<Workspace>>,
+    ws: Option<Workspace>,
+}
+
+impl<'s> Lease<'s> {
+    fn take(spare: &'s Mutex<Vec<Workspace>>, new: impl FnOnce() -> Workspace) -> Self {
+        let ws = spare.lock().ok().and_then(|mut v| v.pop()).unwrap_or_else(new);
+        Lease { spare, ws: Some(ws) }
+    }
+
+    fn get(&mut self) -> &mut Workspace {
+        self.ws.as_mut().expect("a lease holds its workspace until dropped")
+    }
+}
+
+impl Drop for Lease<'_> {
+    fn drop(&mut self) {
+        if let (Some(ws), Ok(mut spare)) = (self.ws.take(), self.spare.lock()) {
+            spare.push(ws);
+        }
+    }
 }
 
 impl<'a> Run<'a> {
@@ -299,7 +330,17 @@ impl<'a> Run<'a> {
         let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
-        Run { program, settings, model, controls, total, paths: 0, points: None }
+        Run {
+            program,
+            settings,
+            model,
+            controls,
+            total,
+            paths: 0,
+            points: None,
+            slots: Vec::new(),
+            spare: Mutex::new(Vec::new()),
+        }
     }
 
     /// Simulates the blocks that take the run from its current path count to `paths`.
@@ -314,20 +355,24 @@ impl<'a> Run<'a> {
         let drawn = if settings.antithetic { BLOCK / 2 } else { BLOCK } as u64;
         let blocks = paths.div_ceil(BLOCK as u64);
         let mut next = self.paths / BLOCK as u64;
+        let spare = &self.spare;
         while next < blocks {
             let end = (next + BLOCKS_IN_FLIGHT as u64).min(blocks);
-            let results: Vec<BlockResult> = (next..end)
-                .into_par_iter()
-                .map_init(
-                    || Workspace::new(program, model, controls),
-                    |ws, b| {
-                        let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
-                        let at = points.map(|(qmc, r)| exec::Points { qmc, r, first: (b * drawn) as u32 });
-                        ws.run_block_from(program, model, controls, settings, stream(b), lanes, at)
-                    },
-                )
-                .collect();
-            for r in &results {
+            let count = (end - next) as usize;
+            if self.slots.len() < count {
+                self.slots.resize_with(count, || BlockResult::new(0, 0, 0));
+            }
+            let first = next;
+            self.slots[..count].par_iter_mut().enumerate().for_each_init(
+                || Lease::take(spare, || Workspace::new(program, model, controls)),
+                |lease, (i, slot)| {
+                    let b = first + i as u64;
+                    let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
+                    let at = points.map(|(qmc, r)| exec::Points { qmc, r, first: (b * drawn) as u32 });
+                    lease.get().run_block_into(program, model, controls, settings, stream(b), lanes, at, slot);
+                },
+            );
+            for r in &self.slots[..count] {
                 self.total.merge(r);
             }
             next = end;
