@@ -294,6 +294,8 @@ struct Run<'a> {
     points: Option<(&'a sobol::Qmc, usize)>,
     /// The results of the blocks in flight, overwritten chunk after chunk.
     slots: Vec<BlockResult>,
+    /// The last chunk's block results, waiting to be merged.
+    done: Vec<BlockResult>,
     /// Workers' buffers between chunks, so a long run sets them up only once.
     spare: Mutex<Vec<Workspace>>,
 }
@@ -339,6 +341,7 @@ impl<'a> Run<'a> {
             paths: 0,
             points: None,
             slots: Vec::new(),
+            done: Vec::new(),
             spare: Mutex::new(Vec::new()),
         }
     }
@@ -356,25 +359,37 @@ impl<'a> Run<'a> {
         let blocks = paths.div_ceil(BLOCK as u64);
         let mut next = self.paths / BLOCK as u64;
         let spare = &self.spare;
-        while next < blocks {
+        // Chunk by chunk; a chunk's results are merged (in block order, on one thread)
+        // while the next chunk is simulated, so the merge does not leave a core idle.
+        let mut waiting = 0;
+        while next < blocks || waiting > 0 {
             let end = (next + BLOCKS_IN_FLIGHT as u64).min(blocks);
             let count = (end - next) as usize;
             if self.slots.len() < count {
                 self.slots.resize_with(count, || BlockResult::new(0, 0, 0));
             }
             let first = next;
-            self.slots[..count].par_iter_mut().enumerate().for_each_init(
-                || Lease::take(spare, || Workspace::new(program, model, controls)),
-                |lease, (i, slot)| {
-                    let b = first + i as u64;
-                    let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
-                    let at = points.map(|(qmc, r)| exec::Points { qmc, r, first: (b * drawn) as u32 });
-                    lease.get().run_block_into(program, model, controls, settings, stream(b), lanes, at, slot);
+            let (slots, done, total) = (&mut self.slots, &self.done, &mut self.total);
+            rayon::join(
+                || {
+                    slots[..count].par_iter_mut().enumerate().for_each_init(
+                        || Lease::take(spare, || Workspace::new(program, model, controls)),
+                        |lease, (i, slot)| {
+                            let b = first + i as u64;
+                            let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
+                            let at = points.map(|(qmc, r)| exec::Points { qmc, r, first: (b * drawn) as u32 });
+                            lease.get().run_block_into(program, model, controls, settings, stream(b), lanes, at, slot);
+                        },
+                    )
+                },
+                || {
+                    for r in &done[..waiting] {
+                        total.merge(r);
+                    }
                 },
             );
-            for r in &self.slots[..count] {
-                self.total.merge(r);
-            }
+            std::mem::swap(&mut self.slots, &mut self.done);
+            waiting = count;
             next = end;
         }
         self.paths = self.paths.max(paths);
