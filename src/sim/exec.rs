@@ -35,17 +35,21 @@ pub struct Workspace {
     given: Vec<f64>,
     qmc_scratch: Vec<f64>,
     /// Whether the block's paths are stepped date by date as the operations read them,
-    /// only while they run ([`stops_early`]); and per operation, the last grid index it
-    /// reads.
+    /// only while they run ([`stops_early`]); per operation, the last grid index it reads
+    /// and, for an `end`, the grid index of its own date; per lane, the grid index of the
+    /// date it ended on (infinite while it runs).
     stops_early: bool,
     reads_to: Vec<usize>,
+    end_dates: Vec<usize>,
+    ended_at: Vec<f64>,
 }
 
 /// Whether a program's paths can stop being simulated once they end: it has an `end` that
-/// can come before its last date, and nothing reads a path between dates or after its end
+/// can come before its last date, nothing reads a path between dates or after its end
 /// (no continuously monitored window, value along the path, early-exercise rule, log
 /// levels, or control other than the stopped hedges and the last date's levels, which a
-/// stopped path is given by one exact step).
+/// stopped path is given by one exact step), and no operation before an `end` reads a
+/// date after the `end`'s own ([`end_dates`]).
 pub fn stops_early(p: &Program, controls: &Controls) -> bool {
     let ends_early = p.ops.iter().any(|op| matches!(op, Op::End { mask, .. } if *mask != ALIVE));
     ends_early
@@ -54,6 +58,53 @@ pub fn stops_early(p: &Program, controls: &Controls) -> bool {
         && p.choices.is_empty()
         && !controls.needs_logs()
         && p.grid.len() > 1
+        && end_dates(p).is_some()
+}
+
+/// The last grid index each operation reads (0 when it reads no level).
+fn reads_to(p: &Program) -> Vec<usize> {
+    let na = p.assets.len().max(1);
+    p.ops
+        .iter()
+        .map(|op| {
+            op_sources(op)
+                .filter_map(|src| match src {
+                    Src::Level(k) => Some(k as usize / na),
+                    _ => None,
+                })
+                .max()
+                .unwrap_or(0)
+        })
+        .collect()
+}
+
+/// Per operation, for an `end`, the grid index of its own date (0 for other operations);
+/// `None` when an operation before an `end` reads a later date than the `end`'s.
+///
+/// Then every `end` of a date before `t` comes before every read of `t` or later, so the
+/// paths stepped to `t` are exactly those that did not end on an earlier date, whatever
+/// the order the operations are written in: two writings of one payoff draw the same.
+fn end_dates(p: &Program) -> Option<Vec<usize>> {
+    let reads = reads_to(p);
+    let last = p.grid.len().saturating_sub(1);
+    let mut read = 0;
+    let mut dates = Vec::with_capacity(p.ops.len());
+    for (op, &to) in p.ops.iter().zip(&reads) {
+        read = read.max(to);
+        let date = match op {
+            Op::End { slot, .. } => {
+                let time = p.events[*slot as usize].time;
+                let own = p.grid.iter().position(|&g| (g - time).abs() < 1e-12).unwrap_or(last);
+                if read > own {
+                    return None;
+                }
+                own
+            }
+            _ => 0,
+        };
+        dates.push(date);
+    }
+    Some(dates)
 }
 
 /// What stepping the paths as the operations read them needs.
@@ -94,19 +145,9 @@ impl Workspace {
             given: Vec::new(),
             qmc_scratch: Vec::new(),
             stops_early: stops_early(p, controls),
-            reads_to: p
-                .ops
-                .iter()
-                .map(|op| {
-                    op_sources(op)
-                        .filter_map(|src| match src {
-                            Src::Level(k) => Some(k as usize / p.assets.len().max(1)),
-                            _ => None,
-                        })
-                        .max()
-                        .unwrap_or(0)
-                })
-                .collect(),
+            reads_to: reads_to(p),
+            end_dates: end_dates(p).unwrap_or_default(),
+            ended_at: vec![f64::INFINITY; BLOCK],
         }
     }
 
@@ -199,8 +240,8 @@ impl Workspace {
             // The paths still running go on to the last date; the others get their last
             // level by one step when a control reads it.
             let last = p.grid.len() - 1;
-            let alive = &self.regs[ALIVE as usize][..lanes];
-            self.paths.step_running_to(p, model, &mut rng, last, alive, lanes, BLOCK);
+            let ended_at = &self.ended_at[..lanes];
+            self.paths.step_running_to(p, model, &mut rng, last, ended_at, lanes, BLOCK);
             if controls.reads_last_date() {
                 self.paths.jump_stopped_to_last(p, model, &mut rng, lanes, BLOCK);
             }
@@ -268,12 +309,16 @@ impl Workspace {
         }
         self.pv[..lanes].fill(0.0);
         self.choice.recorded = false;
+        let early = stepping.is_some();
+        if early {
+            self.ended_at[..lanes].fill(f64::INFINITY);
+        }
         for (index, op) in p.ops.iter().enumerate() {
             if let Some(st) = &mut stepping {
                 let to = self.reads_to[index];
                 if to > self.paths.stepped() {
-                    let alive = &self.regs[ALIVE as usize][..lanes];
-                    self.paths.step_running_to(p, st.model, st.rng, to, alive, lanes, BLOCK);
+                    let ended_at = &self.ended_at[..lanes];
+                    self.paths.step_running_to(p, st.model, st.rng, to, ended_at, lanes, BLOCK);
                 }
             }
             match *op {
@@ -385,6 +430,14 @@ impl Workspace {
                     let ended;
                     if mask == ALIVE {
                         ended = sum(&alive[..lanes]);
+                        if early {
+                            let own = self.end_dates[index] as f64;
+                            for (e, a) in self.ended_at[..lanes].iter_mut().zip(&alive[..lanes]) {
+                                if *a != 0.0 {
+                                    *e = own;
+                                }
+                            }
+                        }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, a) in self.stop[..lanes].iter_mut().zip(&alive[..lanes]) {
                                 if *a != 0.0 {
@@ -402,6 +455,14 @@ impl Workspace {
                             *a = if end { 0.0 } else { *a };
                         }
                         ended = sum(gone);
+                        if early {
+                            let own = self.end_dates[index] as f64;
+                            for (e, g) in self.ended_at[..lanes].iter_mut().zip(&*gone) {
+                                if *g != 0.0 {
+                                    *e = own;
+                                }
+                            }
+                        }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
                                 if *g != 0.0 {

@@ -427,9 +427,10 @@ impl PathBuffers {
         self.stepped
     }
 
-    /// Steps the paths still running (`alive` set) to grid index `k`, one grid date at a
-    /// time, without antithetic pairs. The others keep their last level on later dates
-    /// (nothing reads it: they have ended) and draw nothing. While more than three
+    /// Steps the paths still running to grid index `k`, one grid date at a time, without
+    /// antithetic pairs: a path is stepped to a date unless it ended on an earlier one
+    /// (`ended_at`, the grid index of its end, infinite while it runs). The others keep
+    /// their last level on later dates (nothing reads it: they have ended) and draw nothing. While more than three
     /// quarters of the lanes run, a step is exactly [`Self::step`], every lane included.
     #[allow(clippy::too_many_arguments)]
     pub fn step_running_to(
@@ -438,7 +439,7 @@ impl PathBuffers {
         model: &Model,
         rng: &mut Pcg64,
         k: usize,
-        alive: &[f64],
+        ended_at: &[f64],
         lanes: usize,
         block: usize,
     ) {
@@ -448,9 +449,10 @@ impl PathBuffers {
             // index, advance past the running ones.
             self.running.resize(lanes, 0);
             let mut m = 0;
-            for (lane, a) in alive[..lanes].iter().enumerate() {
+            let date = next as f64;
+            for (lane, e) in ended_at[..lanes].iter().enumerate() {
                 self.running[m] = lane as u32;
-                m += usize::from(*a != 0.0);
+                m += usize::from(*e >= date);
             }
             self.running.truncate(m);
             // Packing the running lanes costs more than it saves while most still run.
