@@ -33,7 +33,9 @@ fuzz_target!(|data: &[u8]| {
     if program.choices.len() * program.grid.len() > 100 {
         return;
     }
-    let settings = Settings { paths: 16, ..Settings::default() };
+    // One block, the fewest paths a run may use (fewer is refused before simulating);
+    // every other input without antithetic pairs, so paths that end early stop too.
+    let settings = Settings { paths: sim::MIN_PATHS, antithetic: data.len() % 2 == 0, ..Settings::default() };
     if let Ok(e) = sim::simulate(&program, &settings) {
         assert!(e.price.is_finite() && e.std_error.is_finite(), "price {} ± {}", e.price, e.std_error);
     }
