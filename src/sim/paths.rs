@@ -313,6 +313,49 @@ impl PathBuffers {
         block: usize,
         given: Option<&[f64]>,
     ) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been checked for AVX2.
+                unsafe { self.step_avx2(p, model, rng, k, lanes, antithetic, block, given) };
+                return;
+            }
+        }
+        self.step_generic(p, model, rng, k, lanes, antithetic, block, given);
+    }
+
+    /// Additions, multiplications, divisions and selects only, never fused: the same bits
+    /// as the baseline build.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    #[allow(clippy::too_many_arguments)]
+    unsafe fn step_avx2(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        k: usize,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        given: Option<&[f64]>,
+    ) {
+        self.step_generic(p, model, rng, k, lanes, antithetic, block, given);
+    }
+
+    #[inline(always)]
+    #[allow(clippy::too_many_arguments)]
+    fn step_generic(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        k: usize,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        given: Option<&[f64]>,
+    ) {
         let na = p.assets.len();
         let drawn = if antithetic { lanes / 2 } else { lanes };
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
@@ -467,6 +510,34 @@ impl PathBuffers {
     /// [`Self::step`] for the lanes in `self.running` only, with the same arithmetic per
     /// lane; every other lane's level is carried over from the previous date.
     fn step_some(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, k: usize, lanes: usize, block: usize) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been checked for AVX2.
+                unsafe { self.step_some_avx2(p, model, rng, k, lanes, block) };
+                return;
+            }
+        }
+        self.step_some_generic(p, model, rng, k, lanes, block);
+    }
+
+    /// The same bits as the baseline build, as for [`Self::step`].
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn step_some_avx2(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        rng: &mut Pcg64,
+        k: usize,
+        lanes: usize,
+        block: usize,
+    ) {
+        self.step_some_generic(p, model, rng, k, lanes, block);
+    }
+
+    #[inline(always)]
+    fn step_some_generic(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, k: usize, lanes: usize, block: usize) {
         let na = p.assets.len();
         let m = self.running.len();
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
