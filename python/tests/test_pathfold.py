@@ -123,3 +123,20 @@ def test_a_pool_forked_after_a_call_still_prices(cli):
         futures = [pool.submit(pathfold.price_part, AUTOCALL, (k, 4), paths=8192) for k in range(1, 5)]
         parts = [f.result(timeout=120) for f in futures]
     assert without_time(pathfold.merge(parts)) == without_time(single)
+
+
+@pytest.mark.parametrize("payoff, extra", [
+    # Early exercise: the issuer's call fitted by Longstaff-Schwartz before pricing.
+    ("payoffs/callable_autocall.payoff", []),
+    # A seasoned trade on curves: past fixings, a calendar, term structures.
+    ("payoffs/seasoned_worst_of_autocall.payoff", []),
+    # An autocallable without antithetic pairs: its paths stop being simulated when they end.
+    (AUTOCALL, ["--no-antithetic"]),
+    # Payments at the touch and continuous extremes, drawn between grid dates.
+    ("payoffs/knock_out_note.payoff", []),
+])
+def test_the_newer_features_price_as_on_the_command_line(cli, payoff, extra):
+    antithetic = "--no-antithetic" not in extra
+    mine = pathfold.price(payoff, paths=20_000, seed=5, antithetic=antithetic)
+    theirs = run_cli(cli, "price", payoff, "--paths", "20000", "--seed", "5", "--format", "json", *extra)
+    assert without_time(mine) == without_time(theirs)
