@@ -295,6 +295,38 @@ impl PathBuffers {
         self.unit_last.fill(p.past as u32);
     }
 
+    /// Moves the normals of `n` lanes drawn into `w` lane by lane (asset by asset within
+    /// a lane) to `z`, laid out by asset: `z[a·block + lane]`.
+    #[inline(always)]
+    fn lay_out_by_asset(&mut self, na: usize, n: usize, block: usize) {
+        for (lane, row) in self.w[..na * n].chunks_exact(na).enumerate() {
+            for (a, &z) in row.iter().enumerate() {
+                self.z[a * block + lane] = z;
+            }
+        }
+    }
+
+    /// Correlates the first `n` lanes of `z` in place by the model's Cholesky factor.
+    #[inline(always)]
+    fn correlate(&mut self, model: &Model, na: usize, n: usize, block: usize) {
+        if model.uncorrelated {
+            return;
+        }
+        // Row a of the factor needs normals 0..=a only: go from the last row up and
+        // overwrite in place. Sums run in ascending j, as a matrix product would.
+        for a in (0..na).rev() {
+            let w = &mut self.w[..n];
+            w.fill(0.0);
+            for (j, &c) in model.cholesky[a].iter().enumerate() {
+                let zj = &self.z[j * block..j * block + n];
+                for (w, z) in w.iter_mut().zip(zj) {
+                    *w += c * z;
+                }
+            }
+            self.z[a * block..a * block + n].copy_from_slice(w);
+        }
+    }
+
     /// Steps every lane to grid index `k` (the next one).
     ///
     /// The step works in passes over the block so that everything except drawing the
@@ -368,29 +400,10 @@ impl PathBuffers {
             normals::fill(rng, &mut self.z[..drawn]);
         } else {
             // Drawn lane by lane, asset by asset within a lane, then laid out by asset.
-            let drawn_z = &mut self.w[..na * drawn];
-            normals::fill(rng, drawn_z);
-            for (lane, row) in drawn_z.chunks_exact(na).enumerate() {
-                for (a, &z) in row.iter().enumerate() {
-                    self.z[a * block + lane] = z;
-                }
-            }
+            normals::fill(rng, &mut self.w[..na * drawn]);
+            self.lay_out_by_asset(na, drawn, block);
         }
-        if !model.uncorrelated {
-            // Row a of the factor needs normals 0..=a only: go from the last row up and
-            // overwrite in place. Sums run in ascending j, as a matrix product would.
-            for a in (0..na).rev() {
-                let w = &mut self.w[..drawn];
-                w.fill(0.0);
-                for (j, &c) in model.cholesky[a].iter().enumerate() {
-                    let zj = &self.z[j * block..j * block + drawn];
-                    for (w, z) in w.iter_mut().zip(zj) {
-                        *w += c * z;
-                    }
-                }
-                self.z[a * block..a * block + drawn].copy_from_slice(w);
-            }
-        }
+        self.correlate(model, na, drawn, block);
         for a in 0..na {
             let (d, s) = (drift[a], scale[a]);
             let z = &self.z[a * block..a * block + drawn];
@@ -544,24 +557,8 @@ impl PathBuffers {
         // The normals of the running lanes, lane by lane, asset by asset within a lane,
         // laid out `z[a·block + j]` for the j-th running lane and correlated as in a step.
         normals::fill(rng, &mut self.w[..na * m]);
-        for j in 0..m {
-            for a in 0..na {
-                self.z[a * block + j] = self.w[j * na + a];
-            }
-        }
-        if !model.uncorrelated {
-            for a in (0..na).rev() {
-                let w = &mut self.w[..m];
-                w.fill(0.0);
-                for (j, &c) in model.cholesky[a].iter().enumerate() {
-                    let zj = &self.z[j * block..j * block + m];
-                    for (w, z) in w.iter_mut().zip(zj) {
-                        *w += c * z;
-                    }
-                }
-                self.z[a * block..a * block + m].copy_from_slice(w);
-            }
-        }
+        self.lay_out_by_asset(na, m, block);
+        self.correlate(model, na, m, block);
         // Each asset's running lanes gathered into `packed`, stepped and exponentiated in
         // straight loops, and put back.
         for a in 0..na {
