@@ -99,6 +99,21 @@ pub enum Op {
     Choose { site: u32, mask: u32, amount: Src, discount: f64, dst: u32 },
 }
 
+impl Op {
+    /// The operands the operation reads.
+    pub fn sources(&self) -> impl Iterator<Item = Src> {
+        let (a, b, c) = match *self {
+            Op::Bin { a, b, .. } | Op::Cmp { a, b, .. } => (Some(a), Some(b), None),
+            Op::Un { a, .. } => (Some(a), None, None),
+            Op::Select { cond, a, b, .. } => (Some(cond), Some(a), Some(b)),
+            Op::Acc { src, .. } | Op::Copy { src, .. } | Op::Assign { src, .. } => (Some(src), None, None),
+            Op::Pay { amount, .. } | Op::Choose { amount, .. } => (Some(amount), None, None),
+            Op::End { .. } => (None, None, None),
+        };
+        [a, b, c].into_iter().flatten()
+    }
+}
+
 /// What is known of a continuously monitored window when the block runs.
 enum Watch {
     /// It lies before the valuation date, or was touched then: decided from the fixings.

@@ -7,7 +7,7 @@
 
 use rand_pcg::Pcg64;
 
-use super::paths::{op_sources, Controls, Model, PathBuffers};
+use super::paths::{Controls, Model, PathBuffers};
 use super::rule;
 use super::sobol::Qmc;
 use super::stats::{sum, BlockResult, Moments};
@@ -67,7 +67,7 @@ fn reads_to(p: &Program) -> Vec<usize> {
     p.ops
         .iter()
         .map(|op| {
-            op_sources(op)
+            op.sources()
                 .filter_map(|src| match src {
                     Src::Level(k) => Some(k as usize / na),
                     _ => None,

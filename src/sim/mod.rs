@@ -8,6 +8,7 @@
 //! same seed gives the same bits on any number of threads. Memory is bounded by the
 //! blocks in flight, not by the path count.
 
+pub mod digital;
 pub mod exec;
 pub mod exercise;
 pub mod joint;

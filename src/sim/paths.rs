@@ -7,7 +7,9 @@ use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
 use super::normals;
-use crate::closed_form::{black_scholes, geometric_asian_discrete, geometric_average_forward, OptionKind};
+use crate::closed_form::{
+    black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
+};
 use crate::compile::{Op, PathValue, Program, Src, ALIVE};
 use crate::typing::Direction;
 
@@ -846,6 +848,9 @@ enum ControlKind {
     /// A stopped hedge: the gains of holding the asset, financed and with its dividends
     /// passed on, from the valuation date until the product ends ([`Hedge`]).
     Hedge { asset: usize, weight: HedgeWeight },
+    /// 1 when every listed asset's last level is at or above its threshold (`above`),
+    /// or every one is below it; 0 otherwise ([`super::digital`]).
+    Digital { thresholds: Vec<(usize, f64)>, above: bool },
 }
 
 /// How many units of the asset the stopped hedge holds over each step, known at the
@@ -919,7 +924,7 @@ impl Hedge {
                 Op::Choose { site, .. } => &p.choices[*site as usize].using,
                 _ => &[],
             };
-            for src in op_sources(op).chain(rule_reads.iter().copied()) {
+            for src in op.sources().chain(rule_reads.iter().copied()) {
                 match src {
                     Src::Level(k) => read = read.max(k as usize / na),
                     Src::Monitor(m) => read = read.max(p.monitors[m as usize].to),
@@ -955,6 +960,101 @@ impl Hedge {
         }
         Some(Hedge { known_from, factor })
     }
+}
+
+/// The discount factor of the last grid date.
+fn discount_to_last(p: &Program) -> f64 {
+    let last = p.grid.len() - 1;
+    match &p.curves {
+        Some(c) => c.discount[last],
+        None => (-p.rate * p.grid[last]).exp(),
+    }
+}
+
+/// Appends the digitals of the comparisons the product makes on its last date
+/// ([`super::digital`]), each with its exact expectation: the log levels at the last date
+/// are jointly normal with the model's step drifts and variances summed, and covariances
+/// `ρₐᵦ·Σₖ sₖₐ·sₖᵦ` from the per-step scales, so the event's probability is a normal
+/// orthant probability. An event whose probability has no closed form here (a degenerate
+/// correlation, an asset without variance) gets no control.
+fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
+    let events = super::digital::last_date_events(p);
+    if events.is_empty() {
+        return;
+    }
+    let model = Model::new(p);
+    let last = p.grid.len() - 1;
+    let na = p.assets.len();
+    // The correlation matrix of the normals each step draws: L·Lᵀ.
+    let rho = |a: usize, b: usize| -> f64 {
+        let (ra, rb) = (&model.cholesky[a], &model.cholesky[b]);
+        ra.iter().zip(rb).map(|(x, y)| x * y).sum()
+    };
+    for e in events {
+        let mut bounds = Vec::with_capacity(e.thresholds.len());
+        let mut sd = Vec::with_capacity(e.thresholds.len());
+        for &(a, h) in &e.thresholds {
+            let mean = model.log_spot[a] + model.total_drift[last][a];
+            let v = model.total_variance[last][a];
+            if !(v > 0.0 && h > 0.0 && a < na) {
+                bounds.clear();
+                break;
+            }
+            let z = (h.ln() - mean) / v.sqrt();
+            bounds.push(if e.above { -z } else { z });
+            sd.push(v.sqrt());
+        }
+        if bounds.len() != e.thresholds.len() {
+            continue;
+        }
+        let corr: Vec<Vec<f64>> = e
+            .thresholds
+            .iter()
+            .enumerate()
+            .map(|(i, &(a, _))| {
+                e.thresholds
+                    .iter()
+                    .enumerate()
+                    .map(|(j, &(b, _))| {
+                        if i == j {
+                            return 1.0;
+                        }
+                        let cov: f64 =
+                            (1..=last).map(|k| model.scale[k][a] * model.scale[k][b]).sum::<f64>() * rho(a, b);
+                        (cov / (sd[i] * sd[j])).clamp(-1.0, 1.0)
+                    })
+                    .collect()
+            })
+            .collect();
+        let Some(probability) = normal_orthant(&bounds, &corr) else { continue };
+        let names: Vec<&str> = e.thresholds.iter().map(|&(a, _)| p.assets[a].name.as_str()).collect();
+        let side = if e.above { "at or above" } else { "below" };
+        let level = |&(a, h): &(usize, f64)| 100.0 * h / p.assets[a].spot;
+        let same = e.thresholds.iter().all(|t| (level(t) - level(&e.thresholds[0])).abs() < 1e-9);
+        let name = match (names.len(), same) {
+            (1, _) => format!("{} {side} {}% of spot", names[0], round_percent(level(&e.thresholds[0]))),
+            (_, true) => format!("{} all {side} {}% of spot", names.join(", "), round_percent(level(&e.thresholds[0]))),
+            (_, false) => format!(
+                "{} all {side} {}% of spot",
+                names.join(", "),
+                e.thresholds.iter().map(|t| round_percent(level(t))).collect::<Vec<_>>().join(" / ")
+            ),
+        };
+        list.push(Control {
+            name,
+            kind: ControlKind::Digital { thresholds: e.thresholds, above: e.above },
+            discount,
+            mean: discount * probability,
+            scale: discount,
+        });
+    }
+}
+
+/// A percentage for a control's name: at most four decimals, without trailing zeros.
+fn round_percent(x: f64) -> String {
+    let s = format!("{x:.4}");
+    let s = s.trim_end_matches('0').trim_end_matches('.');
+    s.to_string()
 }
 
 /// Appends the stopped hedges of a product that can end early ([`Hedge`]) to `list`:
@@ -1030,19 +1130,6 @@ fn hedge_step3_generic(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
     }
 }
 
-/// The operands an operation reads.
-pub(crate) fn op_sources(op: &Op) -> impl Iterator<Item = Src> {
-    let (a, b, c) = match *op {
-        Op::Bin { a, b, .. } | Op::Cmp { a, b, .. } => (Some(a), Some(b), None),
-        Op::Un { a, .. } => (Some(a), None, None),
-        Op::Select { cond, a, b, .. } => (Some(cond), Some(a), Some(b)),
-        Op::Acc { src, .. } | Op::Copy { src, .. } | Op::Assign { src, .. } => (Some(src), None, None),
-        Op::Pay { amount, .. } | Op::Choose { amount, .. } => (Some(amount), None, None),
-        Op::End { .. } => (None, None, None),
-    };
-    [a, b, c].into_iter().flatten()
-}
-
 impl Controls {
     pub fn none() -> Self {
         Controls::default()
@@ -1061,6 +1148,7 @@ impl Controls {
         }
         if let Some(c) = &p.curves {
             let mut list = curve_controls(p, c);
+            add_digitals(p, discount_to_last(p), &mut list);
             let hedge = add_hedges(p, &mut list);
             return Controls { list, hedge };
         }
@@ -1118,6 +1206,7 @@ impl Controls {
                 scale: geometric_forward,
             });
         }
+        add_digitals(p, discount_to_last(p), &mut list);
         let hedge = add_hedges(p, &mut list);
         Controls { list, hedge }
     }
@@ -1280,7 +1369,9 @@ impl Controls {
     /// Whether any control reads the levels of the last date (which a path that stopped
     /// early must then be given, [`PathBuffers::jump_stopped_to_last`]).
     pub fn reads_last_date(&self) -> bool {
-        self.list.iter().any(|c| matches!(c.kind, ControlKind::Terminal { .. } | ControlKind::Call { .. }))
+        self.list.iter().any(|c| {
+            matches!(c.kind, ControlKind::Terminal { .. } | ControlKind::Call { .. } | ControlKind::Digital { .. })
+        })
     }
 
     /// Whether any control needs log levels.
@@ -1310,6 +1401,17 @@ impl Controls {
             }
             // Filled for all assets at once by `hedge_values`.
             ControlKind::Hedge { .. } => {}
+            ControlKind::Digital { thresholds, above } => {
+                let out = &mut out[..lanes];
+                out.fill(c.discount);
+                for &(a, h) in thresholds {
+                    let s = &paths.levels[cell(last, a)..][..lanes];
+                    for (o, &s) in out.iter_mut().zip(s) {
+                        let keep = if *above { s >= h } else { s < h };
+                        *o = if keep { *o } else { 0.0 };
+                    }
+                }
+            }
             ControlKind::Geometric { asset, fixings } | ControlKind::GeometricCall { asset, fixings, .. } => {
                 let strike = match &c.kind {
                     ControlKind::GeometricCall { strike, .. } => Some(*strike),

@@ -1,0 +1,145 @@
+//! Comparisons of levels on the last date get digital control variates whose expectations
+//! are normal orthant probabilities (src/sim/digital.rs). These tests check the controls'
+//! expectations through prices with exact references, and that a controlled price agrees
+//! with the plain one on a product the controls only approximate.
+
+mod common;
+
+use common::{assert_within, price_se, run, years};
+use pathfold::closed_form::bivariate_norm_cdf;
+
+/// Three invented underlyings with equal correlations, valued on the date `years` counts from.
+const MARKET: &str = "valuation_date = 2026-12-01\n\n[rates]\nUSD = 0.05\n\n\
+[underlyings.TRIA]\ncurrency = \"USD\"\nspot = 100.0\nvolatility = 0.20\ndividend_yield = 0.02\n\n\
+[underlyings.TRIB]\ncurrency = \"USD\"\nspot = 80.0\nvolatility = 0.25\ndividend_yield = 0.01\n\n\
+[underlyings.TRIC]\ncurrency = \"USD\"\nspot = 120.0\nvolatility = 0.30\ndividend_yield = 0.0\n\n\
+[correlations]\nTRIA = { TRIB = 0.5, TRIC = 0.5 }\nTRIB = { TRIC = 0.5 }\n";
+const R: f64 = 0.05;
+/// (volatility, dividend yield) of TRIA, TRIB, TRIC.
+const ASSETS: [(f64, f64); 3] = [(0.20, 0.02), (0.25, 0.01), (0.30, 0.0)];
+
+fn price_with(tag: &str, underlyings: &str, body: &str, market: Option<&str>, extra: &[&str]) -> serde_json::Value {
+    price_seeded(tag, underlyings, body, market, "17", extra)
+}
+
+fn price_seeded(
+    tag: &str,
+    underlyings: &str,
+    body: &str,
+    market: Option<&str>,
+    seed: &str,
+    extra: &[&str],
+) -> serde_json::Value {
+    let text = format!("product \"{tag}\"\ncurrency USD\nnotional 100\nunderlyings {underlyings}\n{body}");
+    let file = common::Scratch::file(&format!("digital-controls-{tag}"), "product.payoff", &text);
+    let market_path = file.join("market.toml");
+    let market_arg = match market {
+        Some(m) => {
+            std::fs::write(&market_path, m).unwrap();
+            market_path.to_str().unwrap().to_string()
+        }
+        None => "payoffs/validation/market.toml".to_string(),
+    };
+    let mut args = vec!["price", file.to_str().unwrap(), "--market", &market_arg, "--format", "json", "--seed", seed];
+    args.extend_from_slice(extra);
+    let (stdout, stderr, code) = run(&args);
+    assert_eq!(code, Some(0), "{stderr}");
+    serde_json::from_str(&stdout).unwrap()
+}
+
+fn controls(v: &serde_json::Value) -> Vec<String> {
+    v["controls"].as_array().expect("controls").iter().map(|c| c.as_str().unwrap().to_string()).collect()
+}
+
+#[test]
+fn a_worst_of_digital_struck_at_the_medians_is_worth_a_quarter() {
+    // Pays 100 at 1y if every asset ends at or above its median level
+    // S₀·exp((r − q − σ²/2)T). The log levels are then centred normals with correlation
+    // 0.5, and P(all three above the centre) = 1/8 + 3·asin(0.5)/(4π) = 1/4 (the orthant
+    // probability of three equicorrelated normals; Tong, "The Multivariate Normal
+    // Distribution" (1990), from memory): the price is 25·e^{−rT}, whatever the
+    // volatilities.
+    let t = years("2027-12-01");
+    let median = |(sigma, q): (f64, f64)| ((R - q - 0.5 * sigma * sigma) * t).exp();
+    let k: Vec<String> = ASSETS.iter().map(|&a| format!("{:.17}", median(a))).collect();
+    let body = format!(
+        "dates obs = 1y\nfor each t in obs {{\n pay if min(perf(TRIA) / {}, perf(TRIB) / {}, perf(TRIC) / {}) >= 1 then 100 else 0\n}}\n",
+        k[0], k[1], k[2]
+    );
+    let exact = 25.0 * (-R * t).exp();
+    let plain = price_with("median", "TRIA, TRIB, TRIC", &body, Some(MARKET), &["--paths", "400000", "--no-control"]);
+    let (p0, se0) = price_se(&plain);
+    assert_within("worst-of digital at the medians, plain", p0, se0, exact, 4.0);
+    // With controls the payoff is its own digital control: the estimate is the control's
+    // closed-form mean, exact to the trivariate function's accuracy.
+    let v = price_with("median", "TRIA, TRIB, TRIC", &body, Some(MARKET), &["--paths", "20000"]);
+    let (p, se) = price_se(&v);
+    assert!(controls(&v).iter().any(|c| c.starts_with("TRIA, TRIB, TRIC all at or above")), "{v}");
+    assert!((p - exact).abs() < 1e-6, "{p} ± {se} vs {exact}");
+}
+
+#[test]
+fn a_best_of_digital_below_a_barrier_matches_the_bivariate_closed_form() {
+    // Pays 100 at 1y if both PAIRA and PAIRB end below 90% of their spots, i.e. unless
+    // the better one is at or above 90%: P = M(b_A, b_B; ρ) with b = (ln 0.9 − μT)/(σ√T),
+    // μ = r − q − σ²/2 (common practice: the joint law of two correlated log-levels; M is
+    // checked against published values in src/closed_form).
+    let t = years("2027-12-01");
+    let b = |sigma: f64, q: f64| ((0.9f64).ln() - (0.08 - q - 0.5 * sigma * sigma) * t) / (sigma * t.sqrt());
+    let exact = 100.0 * (-0.08 * t).exp() * bivariate_norm_cdf(b(0.20, 0.01), b(0.30, 0.03), 0.5);
+    let body = "dates obs = 1y\nfor each t in obs {\n if max(perf(PAIRA), perf(PAIRB)) < 0.9 {\n  pay 100\n }\n}\n";
+    let plain = price_with("best", "PAIRA, PAIRB", body, None, &["--paths", "400000", "--no-control"]);
+    let (p0, se0) = price_se(&plain);
+    assert_within("best-of digital below 90%, plain", p0, se0, exact, 4.0);
+    let v = price_with("best", "PAIRA, PAIRB", body, None, &["--paths", "20000"]);
+    let (p, se) = price_se(&v);
+    assert!(controls(&v).iter().any(|c| c == "PAIRA, PAIRB all below 90% of spot"), "{v}");
+    assert!((p - exact).abs() < 1e-6, "{p} ± {se} vs {exact}");
+}
+
+#[test]
+fn a_worst_of_autocall_prices_alike_with_and_without_its_digitals() {
+    // A three-asset worst-of autocall with a 60% barrier at maturity: no closed form, so
+    // the controlled estimate (digitals at 100% and 60% on the last date among them) is
+    // checked against the plain estimate on other paths, within 4 combined standard
+    // errors: a wrong digital expectation would shift it (an equivalence, common
+    // practice for control variates).
+    let body = "dates obs = 4 steps from start to 1y\nfor each t in obs {\n let worst = min(perf(TRIA), perf(TRIB), perf(TRIC))\n if worst >= 1 {\n  pay 100 + 2 * position(t)\n  end\n }\n if t == last(obs) {\n  pay if worst >= 0.6 then 100 else 100 * worst\n }\n}\n";
+    let v = price_with("autocall", "TRIA, TRIB, TRIC", body, Some(MARKET), &["--paths", "200000"]);
+    let names = controls(&v);
+    for want in ["TRIA, TRIB, TRIC all at or above 100% of spot", "TRIA, TRIB, TRIC all at or above 60% of spot"] {
+        assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
+    }
+    let plain =
+        price_seeded("autocall", "TRIA, TRIB, TRIC", body, Some(MARKET), "18", &["--paths", "400000", "--no-control"]);
+    let ((p, se), (p0, se0)) = (price_se(&v), price_se(&plain));
+    assert_within("worst-of autocall, controlled vs plain", p, (se * se + se0 * se0).sqrt(), p0, 4.0);
+    assert!(se < se0, "controlled {se} vs plain {se0}");
+}
+
+#[test]
+fn only_last_date_comparisons_of_fixed_thresholds_become_digitals() {
+    // An early date's comparison, a comparison of two levels and a forward-starting
+    // performance (divided by a level still to come) give no digital; the last date's
+    // comparison of a level with a constant does.
+    let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == first(obs) {\n  if perf(BOOKA) >= 1.1 {\n   pay 5\n  }\n }\n if t == last(obs) and level(BOOKA) > level(BOOKB) {\n  pay 3\n }\n if t == last(obs) and level(BOOKB) / level(BOOKB, first(obs)) >= 1 {\n  pay 2\n }\n}\n";
+    let v = price_with("only-last", "BOOKA, BOOKB", body, None, &["--paths", "2000"]);
+    assert!(!controls(&v).iter().any(|c| c.contains("of spot")), "{:?}", controls(&v));
+    let body =
+        "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == last(obs) and level(BOOKB) < 95 {\n  pay 2\n }\n}\n";
+    let v = price_with("level", "BOOKA, BOOKB", body, None, &["--paths", "2000"]);
+    assert!(controls(&v).iter().any(|c| c == "BOOKB at or above 95% of spot"), "{:?}", controls(&v));
+}
+
+#[test]
+fn a_comparison_nothing_pays_on_makes_no_digital() {
+    // A fold kept in a state that no payment reads compares PAIRA with 100% on the last
+    // date: it is no part of the payoff, and the same payoff without it must get the same
+    // controls (found by the aggregate-as-fold property: the two writings priced apart).
+    let unused = "state g = 0\ndates obs = 0.5y, 1y\nfor each t in obs {\n g = max(g, if perf(PAIRA) < 100% then 1 else 0)\n if t == last(obs) {\n  pay 100\n }\n}\n";
+    let without = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == last(obs) {\n  pay 100\n }\n}\n";
+    let a = price_with("unused", "PAIRA", unused, None, &["--paths", "2000"]);
+    let b = price_with("without", "PAIRA", without, None, &["--paths", "2000"]);
+    assert_eq!(controls(&a), controls(&b));
+    assert!(!controls(&a).iter().any(|c| c.contains("of spot")), "{:?}", controls(&a));
+}
