@@ -107,7 +107,11 @@ fn a_worst_of_autocall_prices_alike_with_and_without_its_digitals() {
     let body = "dates obs = 4 steps from start to 1y\nfor each t in obs {\n let worst = min(perf(TRIA), perf(TRIB), perf(TRIC))\n if worst >= 1 {\n  pay 100 + 2 * position(t)\n  end\n }\n if t == last(obs) {\n  pay if worst >= 0.6 then 100 else 100 * worst\n }\n}\n";
     let v = price_with("autocall", "TRIA, TRIB, TRIC", body, Some(MARKET), &["--paths", "200000"]);
     let names = controls(&v);
-    for want in ["TRIA, TRIB, TRIC all at or above 100% of spot", "TRIA, TRIB, TRIC all at or above 60% of spot"] {
+    for want in [
+        "TRIA, TRIB, TRIC all at or above 100% of spot",
+        "TRIA, TRIB, TRIC all at or above 60% of spot",
+        "TRIC at or above 60% of spot, valued when the product ends",
+    ] {
         assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
     }
     let plain =
@@ -142,4 +146,34 @@ fn a_comparison_nothing_pays_on_makes_no_digital() {
     let b = price_with("without", "PAIRA", without, None, &["--paths", "2000"]);
     assert_eq!(controls(&a), controls(&b));
     assert!(!controls(&a).iter().any(|c| c.contains("of spot")), "{:?}", controls(&a));
+}
+
+#[test]
+fn a_one_asset_autocall_with_a_barrier_at_maturity_matches_its_bivariate_closed_form() {
+    // At 0.5y it pays 100 and ends if BOOKA is at or above 110% of its initial level;
+    // else at 1y it pays 100 if BOOKA is at or above 90%. With x(t) = ln S(t)/S(0) ~
+    // N(μt, σ²t), μ = r − q − σ²/2: price = 100·e^{−0.5r}·P(x(0.5) ≥ ln 1.1)
+    // + 100·e^{−r}·P(x(0.5) < ln 1.1, x(1) ≥ ln 0.9), the second a bivariate normal
+    // probability with correlation √0.5 (common practice: the joint law of a Brownian
+    // motion at two dates). The controls include the digital at 90% at 1y and the same
+    // digital valued when the product ends: a wrong mean for either would show here.
+    let (r, q, sigma) = (0.08, 0.04, 0.25);
+    let mu = r - q - 0.5 * sigma * sigma;
+    let z = |level: f64, t: f64| (level.ln() - mu * t) / (sigma * t.sqrt());
+    let early = 1.0 - pathfold::closed_form::norm_cdf(z(1.1, 0.5));
+    // P(x(0.5) < ln 1.1, x(1) ≥ ln 0.9) = M(z₁, −z₂; −√0.5).
+    let late = bivariate_norm_cdf(z(1.1, 0.5), -z(0.9, 1.0), -(0.5f64).sqrt());
+    let exact = 100.0 * (-0.5 * r).exp() * early + 100.0 * (-r).exp() * late;
+    let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == first(obs) and perf(BOOKA) >= 110% {\n  pay 100\n  end\n }\n if t == last(obs) and perf(BOOKA) >= 90% {\n  pay 100\n }\n}\n";
+    let v = price_with("one-asset", "BOOKA", body, None, &["--paths", "200000"]);
+    let names = controls(&v);
+    for want in ["BOOKA at or above 90% of spot", "BOOKA at or above 90% of spot, valued when the product ends"] {
+        assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
+    }
+    let (p, se) = price_se(&v);
+    assert_within("one-asset autocall with a barrier at maturity", p, se, exact, 4.0);
+    let plain = price_with("one-asset", "BOOKA", body, None, &["--paths", "200000", "--no-control"]);
+    let (p0, se0) = price_se(&plain);
+    assert_within("the same, no controls", p0, se0, exact, 4.0);
+    assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");
 }

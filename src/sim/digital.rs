@@ -18,7 +18,8 @@
 //! the complement of "every level below it", the same control up to sign. Only the last
 //! date's comparisons are taken: there nothing later smooths the jump (an early
 //! redemption pays nearly the same on neighbouring dates), and every path has a level
-//! there even when it ended early.
+//! there even when it ended early. A product that can end early also gets each asset's
+//! own digital at those thresholds valued on the date it ends (`sim::paths`).
 
 use crate::compile::{Bin, Op, Program, Src, Un};
 

@@ -8,7 +8,7 @@ use rand_pcg::Pcg64;
 
 use super::normals;
 use crate::closed_form::{
-    black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
+    black_scholes, geometric_asian_discrete, geometric_average_forward, norm_cdf, normal_orthant, OptionKind,
 };
 use crate::compile::{Op, PathValue, Program, Src, ALIVE};
 use crate::typing::Direction;
@@ -851,7 +851,18 @@ enum ControlKind {
     /// 1 when every listed asset's last level is at or above its threshold (`above`),
     /// or every one is below it; 0 otherwise ([`super::digital`]).
     Digital { thresholds: Vec<(usize, f64)>, above: bool },
+    /// One asset's digital at a threshold, valued on the date the product's end is known:
+    /// `P(S(T) ≥ h | S(tₖ))` at that date `tₖ`, the indicator itself for a path that
+    /// runs to the last date. A conditional probability is a bounded martingale, so by
+    /// optional stopping its mean is `P(S(T) ≥ h)` today (common practice, as for the
+    /// stopped hedges). `rest[k]` = (drift, standard deviation) of `ln S` from grid
+    /// index `k` to the last.
+    StoppedDigital { asset: usize, threshold: f64, log_threshold: f64, rest: Vec<(f64, f64)> },
 }
+
+/// The most stopped digitals one program gets: each costs a normal probability on every
+/// path that ends early. The first events' (lowest thresholds first) are taken.
+const MOST_STOPPED: usize = 3;
 
 /// How many units of the asset the stopped hedge holds over each step, known at the
 /// step's start.
@@ -986,6 +997,7 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
     let last = p.grid.len() - 1;
     let na = p.assets.len();
     // The correlation matrix of the normals each step draws: L·Lᵀ.
+    let mut stopped: Vec<(usize, f64)> = Vec::new();
     let rho = |a: usize, b: usize| -> f64 {
         let (ra, rb) = (&model.cholesky[a], &model.cholesky[b]);
         ra.iter().zip(rb).map(|(x, y)| x * y).sum()
@@ -1042,9 +1054,39 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
         };
         list.push(Control {
             name,
-            kind: ControlKind::Digital { thresholds: e.thresholds, above: e.above },
+            kind: ControlKind::Digital { thresholds: e.thresholds.clone(), above: e.above },
             discount,
             mean: discount * probability,
+            scale: discount,
+        });
+        stopped.extend(e.thresholds);
+    }
+    // A product that can end early: each asset's own digital at each of those
+    // thresholds, valued when the product ends. On a path redeemed early the last date's
+    // digitals read levels the payoff never sees; these read the levels it ends on.
+    if Hedge::of(p, &model).is_none() {
+        return;
+    }
+    stopped.dedup_by(|x, y| x.0 == y.0 && x.1 == y.1);
+    for (a, h) in stopped.into_iter().take(MOST_STOPPED) {
+        let (total_drift, total_var) = (model.total_drift[last][a], model.total_variance[last][a]);
+        let rest = (0..=last)
+            .map(|k| {
+                let var = (total_var - model.total_variance[k][a]).max(0.0);
+                (total_drift - model.total_drift[k][a], var.sqrt())
+            })
+            .collect();
+        let log_threshold = h.ln();
+        let chance = norm_cdf((model.log_spot[a] + total_drift - log_threshold) / total_var.sqrt());
+        list.push(Control {
+            name: format!(
+                "{} at or above {}% of spot, valued when the product ends",
+                p.assets[a].name,
+                round_percent(100.0 * h / p.assets[a].spot)
+            ),
+            kind: ControlKind::StoppedDigital { asset: a, threshold: h, log_threshold, rest },
+            discount,
+            mean: discount * chance,
             scale: discount,
         });
     }
@@ -1275,7 +1317,47 @@ impl Controls {
             self.values(j, p, paths, lanes, block, col);
         }
         if let Some(h) = &self.hedge {
+            self.stopped_values(p, paths, stop, lanes, block, columns);
             self.hedge_values(h, p, paths, stop, lanes, block, columns);
+        }
+    }
+
+    /// The stopped digitals ([`ControlKind::StoppedDigital`]): a normal probability on the
+    /// lanes that ended before the last date, the indicator on the others.
+    fn stopped_values(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        let na = p.assets.len();
+        let last = p.grid.len() - 1;
+        for (c, col) in self.list.iter().zip(columns.iter_mut()) {
+            let ControlKind::StoppedDigital { asset, log_threshold, threshold, rest } = &c.kind else { continue };
+            // The indicator on every lane, in a straight loop; then the lanes that ended early.
+            let at_last = &paths.levels[(last * na + asset) * block..][..lanes];
+            for (o, &s) in col[..lanes].iter_mut().zip(at_last) {
+                *o = if s >= *threshold { c.discount } else { 0.0 };
+            }
+            for (lane, o) in col[..lanes].iter_mut().enumerate() {
+                let k = stop[lane] as usize;
+                if k >= last {
+                    continue;
+                }
+                let (drift, sd) = rest[k];
+                let x = paths.levels[(k * na + asset) * block + lane].ln() - log_threshold + drift;
+                let chance = if sd > 0.0 {
+                    norm_cdf(x / sd)
+                } else if x >= 0.0 {
+                    1.0
+                } else {
+                    0.0
+                };
+                *o = c.discount * chance;
+            }
         }
     }
 
@@ -1399,8 +1481,8 @@ impl Controls {
                     *o = c.discount * (s - strike).max(0.0);
                 }
             }
-            // Filled for all assets at once by `hedge_values`.
-            ControlKind::Hedge { .. } => {}
+            // Filled for all assets at once by `hedge_values`; by `stopped_values`.
+            ControlKind::Hedge { .. } | ControlKind::StoppedDigital { .. } => {}
             ControlKind::Digital { thresholds, above } => {
                 let out = &mut out[..lanes];
                 out.fill(c.discount);
