@@ -7,6 +7,8 @@
 //! Names are slots, parameters and dates are constants, and `if` on a date (such as
 //! `t == last(s)`) is decided here, not on every path.
 
+mod logs;
+
 use crate::date::Date;
 use crate::diagnostic::{Diagnostic, Span};
 use crate::market::Market;
@@ -20,6 +22,9 @@ pub enum Src {
     Reg(u32),
     /// A simulated level: `grid index * assets + asset`.
     Level(u32),
+    /// The log of a simulated level, indexed as `Level` (comparisons made on logs,
+    /// `compile::logs`).
+    LogLevel(u32),
     /// The same value on every path.
     Const(f64),
     /// The 1/0 outcome of a continuously monitored barrier.
@@ -943,6 +948,8 @@ impl<'p> Compiler<'p> {
     fn finish(mut self) -> Program {
         let states: Vec<f64> = self.product.states.iter().map(|s| s.init).collect();
         drop_needless_checks(&mut self.ops, self.registers as usize, &states);
+        let choice_reads: Vec<Vec<Src>> = self.choices.iter().map(|c| c.using.clone()).collect();
+        self.ops = logs::compare_in_logs(std::mem::take(&mut self.ops), &mut self.registers, &choice_reads);
         let past_levels = (0..self.past)
             .map(|k| (0..self.assets.len()).map(|a| self.past_fixing(a, k).map_or(f64::NAN, |f| f.level)).collect())
             .collect();
@@ -1910,7 +1917,7 @@ fn drop_needless_checks(ops: &mut [Op], registers: usize, states: &[f64]) {
     let is_number = |number: &[bool], src: Src| match src {
         Src::Reg(r) => number[r as usize],
         Src::Const(x) => !x.is_nan(),
-        Src::Level(_) | Src::Monitor(_) => true,
+        Src::Level(_) | Src::LogLevel(_) | Src::Monitor(_) => true,
         // Drawn between grid dates from formulas with logs and square roots: checked.
         Src::Path(_) => false,
     };

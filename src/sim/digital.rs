@@ -94,6 +94,17 @@ impl Levels {
     }
 
     fn then(mut self, step: Step) -> Levels {
+        // `log(w·S) + b` is `log(w·eᵇ·S)`: kept in the weights, so that the logs of
+        // several levels, each shifted by its own constant, still combine by `min`.
+        if let (Step::Add(b), [Step::Log]) = (step, &self.after[..]) {
+            let factor = b.exp();
+            if factor.is_finite() && factor > 0.0 {
+                for t in &mut self.terms {
+                    t.1 *= factor;
+                }
+                return self;
+            }
+        }
         self.after.push(step);
         self
     }
@@ -133,6 +144,11 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
             Src::Level(i) => {
                 let i = i as usize;
                 Some(Levels { date: i / na, shape: Shape::One, terms: vec![(i % na, 1.0)], after: Vec::new() })
+            }
+            // A comparison made on logs (`compile::logs`).
+            Src::LogLevel(i) => {
+                let i = i as usize;
+                Some(Levels { date: i / na, shape: Shape::One, terms: vec![(i % na, 1.0)], after: vec![Step::Log] })
             }
             Src::Reg(r) => regs.get(r as usize).cloned().flatten(),
             _ => None,

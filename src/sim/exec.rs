@@ -61,6 +61,28 @@ pub fn stops_early(p: &Program, controls: &Controls) -> bool {
         && end_dates(p).is_some()
 }
 
+/// Per grid index, whether anything reads the levels of that date (not only their logs):
+/// an operation, an exercise rule's variables, a control, a barrier or a value read
+/// between dates (those last two: every date, to be safe).
+fn levels_read(p: &Program, controls: &Controls) -> Vec<bool> {
+    let na = p.assets.len().max(1);
+    let n = p.grid.len();
+    if controls.tracks_ends() || !p.monitors.is_empty() || !p.path_values.is_empty() {
+        return vec![true; n];
+    }
+    let mut read = vec![false; n];
+    let choice_reads = p.choices.iter().flat_map(|c| c.using.iter().copied());
+    for src in p.ops.iter().flat_map(|op| op.sources()).chain(choice_reads) {
+        if let Src::Level(k) = src {
+            read[(k as usize / na).min(n - 1)] = true;
+        }
+    }
+    if controls.reads_last_date() {
+        read[n - 1] = true;
+    }
+    read
+}
+
 /// The last grid index each operation reads (0 when it reads no level).
 fn reads_to(p: &Program) -> Vec<usize> {
     let na = p.assets.len().max(1);
@@ -69,7 +91,7 @@ fn reads_to(p: &Program) -> Vec<usize> {
         .map(|op| {
             op.sources()
                 .filter_map(|src| match src {
-                    Src::Level(k) => Some(k as usize / na),
+                    Src::Level(k) | Src::LogLevel(k) => Some(k as usize / na),
                     _ => None,
                 })
                 .max()
@@ -131,9 +153,12 @@ enum Arg<'a> {
 
 impl Workspace {
     pub fn new(p: &Program, model: &Model, controls: &Controls) -> Self {
-        let keep_logs = !p.monitors.is_empty() || !p.path_values.is_empty() || controls.needs_logs();
+        let reads_logs = p.ops.iter().any(|op| op.sources().any(|s| matches!(s, Src::LogLevel(_))));
+        let keep_logs = reads_logs || !p.monitors.is_empty() || !p.path_values.is_empty() || controls.needs_logs();
+        let mut paths = PathBuffers::new(p, model, keep_logs, BLOCK);
+        paths.compute_levels_on(levels_read(p, controls));
         Workspace {
-            paths: PathBuffers::new(p, model, keep_logs, BLOCK),
+            paths,
             regs: vec![vec![0.0; BLOCK]; p.registers],
             monitors: vec![vec![0.0; BLOCK]; p.monitors.len()],
             path_values: vec![vec![0.0; BLOCK]; p.path_values.len()],
@@ -533,6 +558,10 @@ impl Workspace {
             Src::Level(k) => {
                 let start = k as usize * BLOCK;
                 Arg::Lanes(&self.paths.levels[start..start + lanes])
+            }
+            Src::LogLevel(k) => {
+                let start = k as usize * BLOCK;
+                Arg::Lanes(&self.paths.logs[start..start + lanes])
             }
             Src::Const(x) => Arg::Same(x),
             Src::Monitor(m) => Arg::Lanes(&self.monitors[m as usize][..lanes]),

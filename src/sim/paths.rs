@@ -229,6 +229,9 @@ pub struct PathBuffers {
     running: Vec<u32>,
     /// The running lanes' log levels, then their levels, packed.
     packed: Vec<f64>,
+    /// Per grid index, whether the levels are computed (else only the log levels, for
+    /// a date whose levels nothing reads: comparisons made on logs).
+    levels_on: Vec<bool>,
 }
 
 impl PathBuffers {
@@ -248,7 +251,14 @@ impl PathBuffers {
             unit_last: vec![0; block],
             running: Vec::with_capacity(block),
             packed: vec![0.0; 2 * block],
+            levels_on: vec![true; p.grid.len()],
         }
+    }
+
+    /// Computes the levels only on the grid dates where `on` is set (the log levels on
+    /// every date, when kept). The levels of the other dates are left as they are.
+    pub fn compute_levels_on(&mut self, on: Vec<bool>) {
+        self.levels_on = on;
     }
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
@@ -422,12 +432,15 @@ impl PathBuffers {
                 }
             }
         }
+        let levels_on = self.levels_on[k];
         for a in 0..na {
             self.centre[a] += drift[a];
             let cell = (k * na + a) * block;
             let x = &self.x[a * block..a * block + lanes];
             let levels = &mut self.levels[cell..cell + lanes];
-            if antithetic && drawn > 0 {
+            if !levels_on {
+                // Only logs are read on this date.
+            } else if antithetic && drawn > 0 {
                 // One exp per pair: a path and its mirror are symmetric about the
                 // common centre c (the log spot plus the drifts so far), so the
                 // mirror's level is e^{2c} / the path's level, a division for an exp.
@@ -563,12 +576,12 @@ impl PathBuffers {
         self.correlate(model, na, m, block);
         // Each asset's running lanes gathered into `packed`, stepped and exponentiated in
         // straight loops, and put back.
+        let levels_on = self.levels_on[k];
         for a in 0..na {
             self.centre[a] += drift[a];
             let (d, s) = (drift[a], scale[a]);
             let cell = (k * na + a) * block;
             let previous = ((k - 1) * na + a) * block;
-            self.levels.copy_within(previous..previous + lanes, cell);
             let x = &mut self.x[a * block..a * block + lanes];
             let (packed, packed_levels) = self.packed.split_at_mut(block);
             let (packed, packed_levels) = (&mut packed[..m], &mut packed_levels[..m]);
@@ -576,11 +589,23 @@ impl PathBuffers {
             for ((x_new, &lane), z) in packed.iter_mut().zip(&self.running).zip(z) {
                 *x_new = x[lane as usize] + (d + s * z);
             }
-            exp_into(packed_levels, packed);
-            let levels = &mut self.levels[cell..cell + lanes];
-            for ((&lane, &x_new), &level) in self.running.iter().zip(&*packed).zip(&*packed_levels) {
+            for (&lane, &x_new) in self.running.iter().zip(&*packed) {
                 x[lane as usize] = x_new;
-                levels[lane as usize] = level;
+            }
+            if self.keep_logs {
+                self.logs.copy_within(previous..previous + lanes, cell);
+                let logs = &mut self.logs[cell..cell + lanes];
+                for (&lane, &x_new) in self.running.iter().zip(&*packed) {
+                    logs[lane as usize] = x_new;
+                }
+            }
+            if levels_on {
+                self.levels.copy_within(previous..previous + lanes, cell);
+                exp_into(packed_levels, packed);
+                let levels = &mut self.levels[cell..cell + lanes];
+                for (&lane, &level) in self.running.iter().zip(&*packed_levels) {
+                    levels[lane as usize] = level;
+                }
             }
         }
         for &lane in &self.running {
@@ -616,6 +641,9 @@ impl PathBuffers {
                 let x = &mut self.x[a * block + lane];
                 *x += drift + sd * z;
                 self.levels[(last * na + a) * block + lane] = exp_one(*x);
+                if self.keep_logs {
+                    self.logs[(last * na + a) * block + lane] = *x;
+                }
             }
             self.unit_last[lane] = last as u32;
         }
@@ -937,7 +965,7 @@ impl Hedge {
             };
             for src in op.sources().chain(rule_reads.iter().copied()) {
                 match src {
-                    Src::Level(k) => read = read.max(k as usize / na),
+                    Src::Level(k) | Src::LogLevel(k) => read = read.max(k as usize / na),
                     Src::Monitor(m) => read = read.max(p.monitors[m as usize].to),
                     Src::Path(v) => {
                         let to = match p.path_values[v as usize] {
