@@ -36,7 +36,7 @@ pub use barrier::{
     standard_barrier_with_rebate, RebateTiming, BGK_BETA,
 };
 pub use lookback::{fixed_lookback, floating_lookback};
-pub use normal::{bivariate_norm_cdf, norm_cdf, norm_pdf, normal_orthant, trivariate_norm_cdf};
+pub use normal::{bivariate_norm_cdf, legendre_20, norm_cdf, norm_pdf, normal_orthant, trivariate_norm_cdf};
 pub use tree::{bermudan_binomial, binomial};
 pub use two_asset::{margrabe, two_asset_extreme};
 pub use vanilla::{asset_or_nothing, black_scholes, black_scholes_greeks, cash_or_nothing, forward_start, Greeks};

@@ -199,6 +199,12 @@ fn upper_orthant(h: f64, k: f64, r: f64) -> f64 {
     bvn.clamp(0.0, 1.0)
 }
 
+/// The 20-point Gauss–Legendre rule as (positive node, weight) pairs, for quadratures
+/// elsewhere (each node stands for itself and its mirror).
+pub fn legendre_20() -> Vec<(f64, f64)> {
+    GL20_NODES.iter().copied().zip(GL20_WEIGHTS.iter().copied()).collect()
+}
+
 /// Standard trivariate normal cumulative distribution function
 /// `P(X₁ <= a₁, X₂ <= a₂, X₃ <= a₃)` for standard normals with correlations
 /// `r12`, `r13`, `r23` (a valid correlation matrix).

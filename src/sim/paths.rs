@@ -8,7 +8,7 @@ use rand_pcg::Pcg64;
 
 use super::normals;
 use crate::closed_form::{
-    black_scholes, geometric_asian_discrete, geometric_average_forward, norm_cdf, normal_orthant, OptionKind,
+    black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
 };
 use crate::compile::{Op, PathValue, Program, Src, ALIVE};
 use crate::typing::Direction;
@@ -155,6 +155,50 @@ fn exp_one(x: f64) -> f64 {
         exp_poly(x)
     } else {
         x.exp()
+    }
+}
+
+/// The standard normal distribution function by Hart's double-precision algorithm 5666
+/// (Hart, "Computer Approximations" (1968), as given by West, "Better approximations to
+/// cumulative normal functions" (2005); coefficients from memory, checked against
+/// [`crate::closed_form::norm_cdf`] in the tests): a rational function times
+/// `exp(−x²/2)`, a continued fraction beyond |x| = 5√2. Accurate to about 1e-14, and a
+/// few times cheaper than the library's `erfc` with its `exp`: the stopped digitals
+/// evaluate it on every path that ends early.
+fn norm_cdf_hart(x: f64) -> f64 {
+    let z = x.abs();
+    let tail = if z > 37.0 {
+        0.0
+    } else {
+        let e = exp_one(-0.5 * z * z);
+        if z < 7.071_067_811_865_47 {
+            let mut num = 3.526_249_659_989_11e-2 * z + 0.700_383_064_443_688;
+            num = num * z + 6.373_962_203_531_65;
+            num = num * z + 33.912_866_078_383;
+            num = num * z + 112.079_291_497_871;
+            num = num * z + 221.213_596_169_931;
+            num = num * z + 220.206_867_912_376;
+            let mut den = 8.838_834_764_831_84e-2 * z + 1.755_667_163_182_64;
+            den = den * z + 16.064_177_579_207;
+            den = den * z + 86.780_732_202_946_1;
+            den = den * z + 296.564_248_779_674;
+            den = den * z + 637.333_633_378_831;
+            den = den * z + 793.826_512_519_948;
+            den = den * z + 440.413_735_824_752;
+            e * num / den
+        } else {
+            let mut f = z + 0.65;
+            f = z + 4.0 / f;
+            f = z + 3.0 / f;
+            f = z + 2.0 / f;
+            f = z + 1.0 / f;
+            e / f / 2.506_628_274_631
+        }
+    };
+    if x > 0.0 {
+        1.0 - tail
+    } else {
+        tail
     }
 }
 
@@ -1105,7 +1149,7 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
             })
             .collect();
         let log_threshold = h.ln();
-        let chance = norm_cdf((model.log_spot[a] + total_drift - log_threshold) / total_var.sqrt());
+        let chance = norm_cdf_hart((model.log_spot[a] + total_drift - log_threshold) / total_var.sqrt());
         list.push(Control {
             name: format!(
                 "{} at or above {}% of spot, valued when the product ends",
@@ -1376,9 +1420,13 @@ impl Controls {
                     continue;
                 }
                 let (drift, sd) = rest[k];
-                let x = paths.levels[(k * na + asset) * block + lane].ln() - log_threshold + drift;
+                let cell = (k * na + asset) * block + lane;
+                // The simulated log level itself when the paths keep it (the same value
+                // as the log of the level, to rounding).
+                let log = if paths.logs.is_empty() { paths.levels[cell].ln() } else { paths.logs[cell] };
+                let x = log - log_threshold + drift;
                 let chance = if sd > 0.0 {
-                    norm_cdf(x / sd)
+                    norm_cdf_hart(x / sd)
                 } else if x >= 0.0 {
                     1.0
                 } else {
@@ -1614,6 +1662,43 @@ mod tests {
 
     fn ulps(a: f64, b: f64) -> u64 {
         a.to_bits().abs_diff(b.to_bits())
+    }
+
+    #[test]
+    fn harts_normal_distribution_matches_the_erfc_one() {
+        // `closed_form::norm_cdf` (through statrs' erfc) is within 2.4e-11 of the C
+        // library's; a wrong digit in any of Hart's coefficients would show far above that.
+        let mut worst: f64 = 0.0;
+        for i in -40_000..=40_000 {
+            let x = f64::from(i) * 0.000_975 + 1e-7;
+            let (a, b) = (norm_cdf_hart(x), crate::closed_form::norm_cdf(x));
+            worst = worst.max((a - b).abs());
+            if (-7.0..-3.0).contains(&x) {
+                // Relative accuracy in the lower tail.
+                assert!((a / b - 1.0).abs() < 1e-8, "{x}: {a} vs {b}");
+            }
+        }
+        assert!(worst < 3e-11, "worst absolute error {worst}");
+        // Tighter, against 1/2 + ∫₀ˣ φ by composite Gauss–Legendre (20 points on panels of
+        // 1/8: exact to rounding for this entire function), on [−8, 8].
+        let nodes = crate::closed_form::legendre_20();
+        let phi = |t: f64| (-0.5 * t * t).exp() / (2.0 * std::f64::consts::PI).sqrt();
+        let mut worst: f64 = 0.0;
+        for i in -64i32..=64 {
+            let x = f64::from(i) * 0.125;
+            let mut integral = 0.0;
+            for p in 0..i.unsigned_abs() {
+                let (lo, hi) = (f64::from(p) * 0.125 * x.signum(), f64::from(p + 1) * 0.125 * x.signum());
+                let (mid, half) = (0.5 * (lo + hi), 0.5 * (hi - lo));
+                integral +=
+                    half * nodes.iter().map(|&(t, w)| w * (phi(mid - half * t) + phi(mid + half * t))).sum::<f64>();
+            }
+            worst = worst.max((norm_cdf_hart(x) - (0.5 + integral)).abs());
+        }
+        assert!(worst < 2e-15, "worst absolute error against the quadrature {worst}");
+        assert_eq!(norm_cdf_hart(0.0), 0.5);
+        assert_eq!(norm_cdf_hart(-40.0), 0.0);
+        assert_eq!(norm_cdf_hart(40.0), 1.0);
     }
 
     #[test]
