@@ -56,6 +56,30 @@ pub struct Quote {
     pub product: Option<String>,
     pub price: f64,
     pub tolerance: Option<Tolerance>,
+    /// Half a unit of the last digit the price is written to (`36989.19`: 0.005): the
+    /// quote is known only to that, whatever our standard error.
+    pub rounding: f64,
+}
+
+/// Half a unit of the last digit written in a decimal number (`12.50` → 0.005, `37000`
+/// → 0.5, `3.7e4` → 500); 0 for a text that is not a plain decimal.
+pub fn quoted_rounding(text: &str) -> f64 {
+    let t = text.trim().trim_start_matches(['+', '-']).replace('_', "");
+    let (mantissa, exponent) = match t.split_once(['e', 'E']) {
+        Some((m, e)) => match e.parse::<i32>() {
+            Ok(e) => (m.to_string(), e),
+            Err(_) => return 0.0,
+        },
+        None => (t, 0),
+    };
+    let decimals = match mantissa.split_once('.') {
+        Some((_, frac)) => frac.len() as i32,
+        None => 0,
+    };
+    if mantissa.is_empty() || !mantissa.chars().all(|c| c.is_ascii_digit() || c == '.') {
+        return 0.0;
+    }
+    0.5 * 10f64.powi(exponent - decimals)
 }
 
 impl Quote {
@@ -163,7 +187,8 @@ pub fn read_list(path: &Path) -> Result<Vec<Result<Quote, BadQuote>>, Diagnostic
                 }
             },
         };
-        out.push(Ok(Quote { line, file, product, price, tolerance }));
+        let rounding = quoted_rounding(&price_text);
+        out.push(Ok(Quote { line, file, product, price, tolerance, rounding }));
     }
     Ok(out)
 }
@@ -293,11 +318,18 @@ pub fn compare(list: &[Result<Quote, BadQuote>], rows: &[Row], max_z: f64) -> Ve
                     let within = quote.tolerance.is_some_and(|t| diff.abs() <= t.amount(quote.price));
                     // A NaN z (no standard error) cannot vouch for agreement.
                     let close = z.abs() <= max_z;
-                    line.verdict = if close || within { Verdict::Agree } else { Verdict::Disagree };
-                    line.message = match (close, within) {
-                        (true, _) => String::new(),
-                        (false, true) => format!("|z| above {max_z} but within the tolerance"),
-                        (false, false) => format!("|z| above {max_z} and outside the tolerance"),
+                    // A quote rounded to cents differs from an exact price by up to half a
+                    // cent: when our error is smaller than that (a payoff its control
+                    // variates price exactly), the rounding is what the two can differ by.
+                    let rounded = diff.abs() <= quote.rounding + max_z * p.estimate.std_error;
+                    line.verdict = if close || within || rounded { Verdict::Agree } else { Verdict::Disagree };
+                    line.message = match (close, within, rounded) {
+                        (true, _, _) => String::new(),
+                        (false, true, _) => format!("|z| above {max_z} but within the tolerance"),
+                        (false, false, true) => {
+                            format!("|z| above {max_z} but within the quote's rounding (±{})", quote.rounding)
+                        }
+                        (false, false, false) => format!("|z| above {max_z} and outside the tolerance"),
                     };
                 }
                 Err(_) => {
@@ -333,4 +365,29 @@ pub fn compare(list: &[Result<Quote, BadQuote>], rows: &[Row], max_z: f64) -> Ve
         });
     }
     lines
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_quote_is_known_to_half_its_last_digit() {
+        let cases = [
+            ("36989.19", 0.005),
+            ("12.50", 0.005),
+            ("-7.5", 0.05),
+            ("37000", 0.5),
+            ("1_250.0", 0.05),
+            ("3.7e4", 500.0),
+            ("2.25E-1", 0.0005),
+            ("abc", 0.0),
+            ("", 0.0),
+            ("1.2.3e", 0.0),
+        ];
+        for (text, half) in cases {
+            let got = quoted_rounding(text);
+            assert!((got - half).abs() <= 1e-12 * half, "{text}: {got} vs {half}");
+        }
+    }
 }

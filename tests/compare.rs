@@ -186,3 +186,28 @@ fn a_thousands_separator_that_splits_a_price_is_an_error_not_a_tolerance() {
     );
     assert_eq!(lines[2]["external_price"], "");
 }
+
+#[test]
+fn a_quote_rounded_to_cents_agrees_with_an_exact_price() {
+    // With control variates the digital is its own control: pathfold's price is the
+    // closed form to within a few millionths, far tighter than a quote written to cents.
+    // A quote rounded to cents therefore agrees (the difference is the rounding, reported
+    // as such); one two cents off does not.
+    let [_, digital, _] = references();
+    let args = ["tests/compare", "--paths", "20000", "--seed", "11", "--format=csv"];
+    for (quoted, verdict) in [(format!("{:.2}", digital.1), "agree"), (format!("{:.2}", digital.1 + 0.02), "disagree")]
+    {
+        let list = price_list("cents.csv", &format!("file,price\n{},{quoted}\n", digital.0));
+        let o = pathfold(&[&["compare", list.to_str().unwrap()][..], &args[..]].concat());
+        let lines = rows(&o);
+        let line = lines.iter().find(|l| l["key"] == digital.0).expect("the digital's line");
+        assert_eq!(line["verdict"], verdict, "{quoted}: {line:?}");
+        if verdict == "agree" {
+            let z: f64 = line["z"].parse().unwrap();
+            let se: f64 = line["std_error"].parse().unwrap();
+            assert!(se < 1e-3, "the digital is not priced by its control: se {se}");
+            // Whether |z| is small depends on how the rounding fell; the verdict must not.
+            assert!(z.abs() <= 3.0 || line["message"].contains("rounding"), "{line:?}");
+        }
+    }
+}
