@@ -7,7 +7,10 @@
 //! Names are slots, parameters and dates are constants, and `if` on a date (such as
 //! `t == last(s)`) is decided here, not on every path.
 
+mod live;
 mod logs;
+
+pub use live::live_ops;
 
 use crate::date::Date;
 use crate::diagnostic::{Diagnostic, Span};

@@ -161,45 +161,12 @@ fn emit_log(l: &Lin, out: &mut Vec<Op>, registers: &mut u32) -> Src {
 }
 
 /// Drops the plain operations (`Bin`, `Un`, `Select`, `Copy`) whose result nothing
-/// reads: a backward pass from every payment, end, choice, assignment and checked
-/// comparison through the registers each operation reads.
+/// live reads ([`super::live_ops`]; every other operation has an effect: a payment, an
+/// end, a choice, an assignment, an accumulation, a checked comparison's count).
 fn drop_unread(ops: Vec<Op>, registers: usize, choice_reads: &[Vec<Src>]) -> Vec<Op> {
-    let mut needed = vec![false; registers];
-    let mut keep = vec![true; ops.len()];
-    let need = |needed: &mut Vec<bool>, s: Src| {
-        if let Src::Reg(r) = s {
-            needed[r as usize] = true;
-        }
-    };
-    for (i, op) in ops.iter().enumerate().rev() {
-        let plain = match *op {
-            Op::Bin { dst, .. } | Op::Un { dst, .. } | Op::Select { dst, .. } | Op::Copy { dst, .. } => Some(dst),
-            _ => None,
-        };
-        if let Some(dst) = plain {
-            if !needed[dst as usize] {
-                keep[i] = false;
-                continue;
-            }
-            needed[dst as usize] = false;
-        }
-        match *op {
-            Op::Pay { mask, .. } | Op::End { mask, .. } | Op::Choose { mask, .. } | Op::Assign { mask, .. } => {
-                need(&mut needed, Src::Reg(mask))
-            }
-            Op::Acc { dst, .. } => need(&mut needed, Src::Reg(dst)),
-            _ => {}
-        }
-        if let Op::Choose { site, .. } = *op {
-            for &s in choice_reads.get(site as usize).map_or(&[][..], |v| &v[..]) {
-                need(&mut needed, s);
-            }
-        }
-        for s in op.sources() {
-            need(&mut needed, s);
-        }
-    }
-    ops.into_iter().zip(keep).filter_map(|(op, k)| k.then_some(op)).collect()
+    let plain = |op: &Op| matches!(op, Op::Bin { .. } | Op::Un { .. } | Op::Select { .. } | Op::Copy { .. });
+    let live = super::live_ops(&ops, registers, choice_reads, |op| !plain(op));
+    ops.into_iter().zip(live).filter_map(|(op, keep)| keep.then_some(op)).collect()
 }
 
 #[cfg(test)]

@@ -158,7 +158,9 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
         Src::Const(c) => Some(c),
         _ => None,
     };
-    let live = live_ops(p);
+    // Only the comparisons whose outcome reaches a payment or an end.
+    let choice_reads: Vec<Vec<Src>> = p.choices.iter().map(|c| c.using.clone()).collect();
+    let live = crate::compile::live_ops(&p.ops, p.registers, &choice_reads, |_| false);
     let mut events: Vec<Event> = Vec::new();
     let mut compared = |regs: &[Option<Levels>], op: Bin, a: Src, b: Src| {
         if matches!(op, Bin::Lt | Bin::Le | Bin::Gt | Bin::Ge) {
@@ -237,58 +239,6 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
     });
     events.truncate(MOST);
     events
-}
-
-/// Which operations the payments and ends depend on: a backward pass from every `pay`,
-/// `end` and `may end`, through the registers each operation reads. A register written
-/// whole (not an assignment under a mask, not an accumulation) is dead before its write.
-fn live_ops(p: &Program) -> Vec<bool> {
-    let mut needed = vec![false; p.registers.max(1)];
-    let mut live = vec![false; p.ops.len()];
-    let need = |needed: &mut Vec<bool>, s: Src| {
-        if let Src::Reg(r) = s {
-            if let Some(n) = needed.get_mut(r as usize) {
-                *n = true;
-            }
-        }
-    };
-    for (i, op) in p.ops.iter().enumerate().rev() {
-        let (dst, whole) = match *op {
-            Op::Pay { mask, .. } | Op::End { mask, .. } | Op::Choose { mask, .. } => {
-                live[i] = true;
-                need(&mut needed, Src::Reg(mask));
-                for s in op.sources() {
-                    need(&mut needed, s);
-                }
-                if let Op::Choose { site, .. } = *op {
-                    for &s in &p.choices[site as usize].using {
-                        need(&mut needed, s);
-                    }
-                }
-                continue;
-            }
-            Op::Assign { dst, .. } | Op::Acc { dst, .. } => (dst, false),
-            Op::Bin { dst, .. }
-            | Op::Cmp { dst, .. }
-            | Op::Un { dst, .. }
-            | Op::Select { dst, .. }
-            | Op::Copy { dst, .. } => (dst, true),
-        };
-        if !needed.get(dst as usize).copied().unwrap_or(true) {
-            continue;
-        }
-        live[i] = true;
-        if whole {
-            needed[dst as usize] = false;
-        }
-        if let Op::Assign { mask, .. } = *op {
-            need(&mut needed, Src::Reg(mask));
-        }
-        for s in op.sources() {
-            need(&mut needed, s);
-        }
-    }
-    live
 }
 
 /// Records the event `l` compared with `c`, when it is on the last date and new.
