@@ -6,24 +6,14 @@
 
 mod common;
 
-use common::{assert_within, price_se, run};
+use common::{assert_within, controls, price_se, MarketArg};
 use pathfold::closed_form::{bivariate_norm_cdf, norm_cdf};
 
 const MARKET: &str = "payoffs/validation/market.toml";
 const R: f64 = 0.08;
 
 fn price_text(name: &str, underlyings: &str, body: &str, extra: &[&str]) -> serde_json::Value {
-    let text = format!("product \"{name}\"\ncurrency USD\nnotional 100\nunderlyings {underlyings}\n{body}");
-    let file = common::Scratch::file(&format!("autocall-controls-{name}"), name, &text);
-    let mut args = vec!["price", file.to_str().unwrap(), "--market", MARKET, "--format", "json", "--seed", "31"];
-    args.extend_from_slice(extra);
-    let (stdout, stderr, code) = run(&args);
-    assert_eq!(code, Some(0), "{stderr}");
-    serde_json::from_str(&stdout).unwrap()
-}
-
-fn controls(v: &serde_json::Value) -> Vec<String> {
-    v["controls"].as_array().expect("controls").iter().map(|c| c.as_str().unwrap().to_string()).collect()
+    common::price_body(name, underlyings, body, MarketArg::File(MARKET), "31", extra)
 }
 
 #[test]

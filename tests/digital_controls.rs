@@ -5,7 +5,7 @@
 
 mod common;
 
-use common::{assert_within, price_se, run, years};
+use common::{assert_within, controls, price_se, years, MarketArg};
 use pathfold::closed_form::bivariate_norm_cdf;
 
 /// Three invented underlyings with equal correlations, valued on the date `years` counts from.
@@ -30,25 +30,8 @@ fn price_seeded(
     seed: &str,
     extra: &[&str],
 ) -> serde_json::Value {
-    let text = format!("product \"{tag}\"\ncurrency USD\nnotional 100\nunderlyings {underlyings}\n{body}");
-    let file = common::Scratch::file(&format!("digital-controls-{tag}"), "product.payoff", &text);
-    let market_path = file.join("market.toml");
-    let market_arg = match market {
-        Some(m) => {
-            std::fs::write(&market_path, m).unwrap();
-            market_path.to_str().unwrap().to_string()
-        }
-        None => "payoffs/validation/market.toml".to_string(),
-    };
-    let mut args = vec!["price", file.to_str().unwrap(), "--market", &market_arg, "--format", "json", "--seed", seed];
-    args.extend_from_slice(extra);
-    let (stdout, stderr, code) = run(&args);
-    assert_eq!(code, Some(0), "{stderr}");
-    serde_json::from_str(&stdout).unwrap()
-}
-
-fn controls(v: &serde_json::Value) -> Vec<String> {
-    v["controls"].as_array().expect("controls").iter().map(|c| c.as_str().unwrap().to_string()).collect()
+    let market = market.map_or(MarketArg::File("payoffs/validation/market.toml"), MarketArg::Text);
+    common::price_body(&format!("digital-{tag}"), underlyings, body, market, seed, extra)
 }
 
 #[test]

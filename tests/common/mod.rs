@@ -108,3 +108,43 @@ impl Drop for Scratch {
         let _ = std::fs::remove_dir_all(&self.dir);
     }
 }
+
+/// Where a test's market comes from: a file of the repository, or a text written beside
+/// the payoff.
+pub enum MarketArg<'a> {
+    File(&'a str),
+    Text(&'a str),
+}
+
+/// Prices a payoff written from `body` (after a header: product `tag`, USD, notional
+/// 100, `underlyings`), in a scratch folder of its own, with `--format json --seed seed`
+/// and `extra`; the run must succeed.
+pub fn price_body(
+    tag: &str,
+    underlyings: &str,
+    body: &str,
+    market: MarketArg<'_>,
+    seed: &str,
+    extra: &[&str],
+) -> serde_json::Value {
+    let text = format!("product \"{tag}\"\ncurrency USD\nnotional 100\nunderlyings {underlyings}\n{body}");
+    let file = Scratch::file(&format!("body-{tag}"), "product.payoff", &text);
+    let market = match market {
+        MarketArg::File(path) => path.to_string(),
+        MarketArg::Text(toml) => {
+            let path = file.join("market.toml");
+            std::fs::write(&path, toml).expect("a writable temporary file");
+            path.to_str().expect("a UTF-8 temporary path").to_string()
+        }
+    };
+    let mut args = vec!["price", file.to_str().unwrap(), "--market", &market, "--format", "json", "--seed", seed];
+    args.extend_from_slice(extra);
+    let (stdout, stderr, code) = run(&args);
+    assert_eq!(code, Some(0), "{stderr}");
+    serde_json::from_str(&stdout).unwrap()
+}
+
+/// The names of the control variates a JSON result used.
+pub fn controls(v: &serde_json::Value) -> Vec<String> {
+    v["controls"].as_array().expect("controls").iter().map(|c| c.as_str().unwrap().to_string()).collect()
+}
