@@ -313,7 +313,7 @@ pub struct PathBuffers {
     /// Per lane, the last grid index it was stepped to; and the lanes a step simulates.
     unit_last: Vec<u32>,
     running: Vec<u32>,
-    /// The running lanes' log levels, then their levels, packed.
+    /// One step's moves at their lanes, then the running lanes' log levels, packed.
     packed: Vec<f64>,
     /// Per grid index, whether the levels are computed (else only the log levels, for
     /// a date whose levels nothing reads: comparisons made on logs).
@@ -660,36 +660,47 @@ impl PathBuffers {
         normals::fill(rng, &mut self.w[..na * m]);
         self.lay_out_by_asset(na, m, block);
         self.correlate(model, na, m, block);
-        // Each asset's running lanes gathered into `packed`, stepped and exponentiated in
-        // straight loops, and put back.
+        // Each running lane's move `d + s·z` is put at its own lane, 0 at the others, and
+        // added to every lane's log level in one straight loop: `x + 0` is `x`, so a lane
+        // that has ended keeps its last log level, and the others get the arithmetic of a
+        // full step. No gather of the log levels, no scatter of them.
         let levels_on = self.levels_on[k];
         for a in 0..na {
             self.centre[a] += drift[a];
             let (d, s) = (drift[a], scale[a]);
             let cell = (k * na + a) * block;
-            let previous = ((k - 1) * na + a) * block;
-            let x = &mut self.x[a * block..a * block + lanes];
-            let (packed, packed_levels) = self.packed.split_at_mut(block);
-            let (packed, packed_levels) = (&mut packed[..m], &mut packed_levels[..m]);
+            let (moves, packed) = self.packed.split_at_mut(block);
+            let moves = &mut moves[..lanes];
+            moves.fill(0.0);
             let z = &self.z[a * block..a * block + m];
-            for ((x_new, &lane), z) in packed.iter_mut().zip(&self.running).zip(z) {
-                *x_new = x[lane as usize] + (d + s * z);
+            for (&lane, z) in self.running.iter().zip(z) {
+                moves[lane as usize] = d + s * z;
             }
-            for (&lane, &x_new) in self.running.iter().zip(&*packed) {
-                x[lane as usize] = x_new;
+            let x = &mut self.x[a * block..a * block + lanes];
+            for (x, mv) in x.iter_mut().zip(&*moves) {
+                *x += mv;
             }
             if self.keep_logs {
-                self.logs.copy_within(previous..previous + lanes, cell);
-                let logs = &mut self.logs[cell..cell + lanes];
-                for (&lane, &x_new) in self.running.iter().zip(&*packed) {
-                    logs[lane as usize] = x_new;
-                }
+                self.logs[cell..cell + lanes].copy_from_slice(x);
             }
-            if levels_on {
+            if !levels_on {
+                continue;
+            }
+            if 2 * m >= lanes {
+                // Most lanes run: every lane's exp (an ended lane's is its last level).
+                exp_into(&mut self.levels[cell..cell + lanes], x);
+            } else {
+                // Few run: theirs only, packed; the others keep their previous level.
+                let previous = ((k - 1) * na + a) * block;
+                let packed = &mut packed[..m];
+                for (p, &lane) in packed.iter_mut().zip(&self.running) {
+                    *p = x[lane as usize];
+                }
+                let (exps, _) = moves.split_at_mut(m);
+                exp_into(exps, packed);
                 self.levels.copy_within(previous..previous + lanes, cell);
-                exp_into(packed_levels, packed);
                 let levels = &mut self.levels[cell..cell + lanes];
-                for (&lane, &level) in self.running.iter().zip(&*packed_levels) {
+                for (&lane, &level) in self.running.iter().zip(&*exps) {
                     levels[lane as usize] = level;
                 }
             }
