@@ -79,8 +79,8 @@ impl Moments {
     }
 
     /// Two passes: every mean, then every co-moment `(i, j)` with `i ≤ j`. The sums of
-    /// each pass are taken two at a time ([`sum_two`], [`centred_dot_two`]), in the order
-    /// `a`'s then `b`'s; `WIDE` only when the CPU has AVX2.
+    /// sums are taken two at a time ([`sum_two`]), the co-moments four at a time
+    /// ([`co_moments`]), `a`'s then `b`'s; `WIDE` only when the CPU has AVX2.
     #[inline(always)]
     fn fill_joint_generic<const WIDE: bool>(
         a: &mut Moments,
@@ -125,38 +125,15 @@ impl Moments {
             }
             k += count;
         }
-        // Pass 2: the co-moments, the pairs `(i, j)`, `i ≤ j`, of `a` then of `b`.
-        let pairs = |d: usize| (0..d).flat_map(move |i| (i..d).map(move |j| (i, j)));
-        let mut tasks = pairs(da).map(|(i, j)| (false, i, j)).chain(pairs(db).map(|(i, j)| (true, i, j)));
-        loop {
-            let (first, second) = (tasks.next(), tasks.next());
-            let Some(first) = first else { break };
-            let operands = |(in_b, i, j): (bool, usize, usize), a: &Moments, b: &Option<&mut Moments>| {
-                let (columns, mean) = match (in_b, b) {
-                    (true, Some(b)) => (b_columns, &b.mean),
-                    _ => (a_columns, &a.mean),
-                };
-                (columns[i], mean[i], columns[j], mean[j])
-            };
-            let x = operands(first, a, &b);
-            let sums = match second {
-                Some(second) => {
-                    let y = operands(second, a, &b);
-                    let (sx, sy) = centred_dot_pair::<WIDE>(x, y);
-                    [Some((first, sx)), Some((second, sy))]
-                }
-                None => [Some((first, centred_dot_one::<WIDE>(x))), None],
-            };
-            for ((in_b, i, j), s) in sums.into_iter().flatten() {
-                let target = match (in_b, b.as_deref_mut()) {
-                    (true, Some(b)) => b,
-                    _ => &mut *a,
-                };
-                let d = target.dims();
-                target.m2[i * d + j] = s;
-                target.m2[j * d + i] = s;
-            }
+        // Pass 2: the co-moments `(i, j)`, `i ≤ j`, of `a` then of `b`.
+        // The scratch is taken out of its cell, so the sums run here, in this function's
+        // instruction set (a closure given to the cell would not inherit AVX2).
+        let mut scratch = SCRATCH.with(|s| s.take());
+        co_moments::<WIDE>(a_columns, &a.mean, &mut a.m2, &mut scratch);
+        if let Some(b) = b {
+            co_moments::<WIDE>(b_columns, &b.mean, &mut b.m2, &mut scratch);
         }
+        SCRATCH.with(|s| s.replace(scratch));
     }
 
     /// Makes `self` the one-dimensional moments of the first component of `other`: the
@@ -214,6 +191,79 @@ impl Moments {
             self.mean[i] += (other.mean[i] - self.mean[i]) * other.n / n;
         }
         self.n = n;
+    }
+}
+
+thread_local! {
+    /// The centred columns of [`co_moments`], reused block after block.
+    static SCRATCH: std::cell::RefCell<Vec<f64>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
+/// Co-moments taken together, four at a time.
+const TILE: usize = 4;
+
+/// The co-moments `m2[i·d + j] = Σ (xᵢ − mᵢ)(xⱼ − mⱼ)` of the columns (one length), each
+/// summed as [`centred_dot`] sums it (four interleaved partial sums, then the tail), so
+/// the same bits. The columns are centred once, into `scratch`; then each column's
+/// co-moments with the next four are summed side by side: one load of its centred values
+/// serves four products, and the four chains of additions are independent.
+#[inline(always)]
+fn co_moments<const WIDE: bool>(columns: &[&[f64]], mean: &[f64], m2: &mut [f64], scratch: &mut Vec<f64>) {
+    let d = columns.len();
+    let n = columns.iter().map(|c| c.len()).min().unwrap_or(0);
+    if scratch.len() < d * n {
+        scratch.resize(d * n, 0.0);
+    }
+    let scratch = &mut scratch[..d * n];
+    for ((col, m), centred) in columns.iter().zip(mean).zip(scratch.chunks_exact_mut(n.max(1))) {
+        for (c, x) in centred.iter_mut().zip(&col[..n]) {
+            *c = x - m;
+        }
+    }
+    let whole = n - n % SUM_LANES;
+    let scratch = &*scratch;
+    let column = |i: usize| &scratch[i * n..(i + 1) * n];
+    for i in 0..d {
+        let ci = column(i);
+        let mut j = i;
+        while j < d {
+            let t = if d - j >= TILE { TILE } else { 1 };
+            let mut acc = [[0.0; SUM_LANES]; TILE];
+            if t == TILE && WIDE {
+                #[cfg(target_arch = "x86_64")]
+                {
+                    let cj: [&[f64]; TILE] = std::array::from_fn(|u| column(j + u));
+                    // SAFETY: `WIDE` is only set by a caller that checked the CPU for AVX2.
+                    acc = unsafe { wide::dot_tile(ci, cj, whole) };
+                }
+            } else if t == TILE {
+                let cj: [&[f64]; TILE] = std::array::from_fn(|u| column(j + u));
+                for c in (0..whole).step_by(SUM_LANES) {
+                    for u in 0..TILE {
+                        for k in 0..SUM_LANES {
+                            acc[u][k] += ci[c + k] * cj[u][c + k];
+                        }
+                    }
+                }
+            } else {
+                let cj = column(j);
+                for c in (0..whole).step_by(SUM_LANES) {
+                    for k in 0..SUM_LANES {
+                        acc[0][k] += ci[c + k] * cj[c + k];
+                    }
+                }
+            }
+            for (u, acc) in acc.iter().enumerate().take(t) {
+                let cj = column(j + u);
+                let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+                for k in whole..n {
+                    s += ci[k] * cj[k];
+                }
+                m2[i * d + j + u] = s;
+                m2[(j + u) * d + i] = s;
+            }
+            j += t;
+        }
     }
 }
 
@@ -306,29 +356,6 @@ fn sum_one<const WIDE: bool>(xs: &[f64]) -> f64 {
     plain_sum(xs)
 }
 
-/// [`centred_dot`], four lanes to a register when `WIDE`.
-#[inline(always)]
-fn centred_dot_one<const WIDE: bool>(p: Centred<'_>) -> f64 {
-    #[cfg(target_arch = "x86_64")]
-    if WIDE {
-        // SAFETY: `WIDE` is only set by a caller that checked the CPU for AVX2.
-        return unsafe { wide::centred_dot_two(p, (&[], 0.0, &[], 0.0)).0 };
-    }
-    centred_dot(p.0, p.1, p.2, p.3)
-}
-
-/// [`centred_dot_two`], four lanes to a register when `WIDE` (only ever set after
-/// checking the CPU for AVX2).
-#[inline(always)]
-fn centred_dot_pair<const WIDE: bool>(p: Centred<'_>, q: Centred<'_>) -> (f64, f64) {
-    #[cfg(target_arch = "x86_64")]
-    if WIDE {
-        // SAFETY: `WIDE` is only set by a caller that checked the CPU for AVX2.
-        return unsafe { wide::centred_dot_two(p, q) };
-    }
-    centred_dot_two(p, q)
-}
-
 /// The pairs of sums with AVX2 registers: the four partial sums of [`sum`] are the four
 /// lanes of one register, and every lane does the same additions, subtractions and
 /// multiplications in the same order as the plain code (no fused multiply-add), so the
@@ -337,7 +364,7 @@ fn centred_dot_pair<const WIDE: bool>(p: Centred<'_>, q: Centred<'_>) -> (f64, f
 mod wide {
     use std::arch::x86_64::*;
 
-    use super::{Centred, SUM_LANES};
+    use super::SUM_LANES;
 
     /// `(l₀ + l₁) + (l₂ + l₃)` of the lanes, then the `tail` added one by one: how
     /// [`super::sum`] finishes.
@@ -351,6 +378,26 @@ mod wide {
             s += x;
         }
         s
+    }
+
+    /// The partial sums of four co-moments of centred columns, `ci` with each of `cj`,
+    /// over the first `whole` samples: each is [`super::co_moments`]' chain, in one register.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    pub(super) unsafe fn dot_tile(ci: &[f64], cj: [&[f64]; 4], whole: usize) -> [[f64; 4]; 4] {
+        let (ci, cj) = (&ci[..whole], cj.map(|c| &c[..whole]));
+        let mut acc = [_mm256_setzero_pd(); 4];
+        for c in (0..whole).step_by(SUM_LANES) {
+            let x = _mm256_loadu_pd(ci.as_ptr().add(c));
+            for (a, y) in acc.iter_mut().zip(cj) {
+                *a = _mm256_add_pd(*a, _mm256_mul_pd(x, _mm256_loadu_pd(y.as_ptr().add(c))));
+            }
+        }
+        acc.map(|a| {
+            let mut l = [0.0; SUM_LANES];
+            _mm256_storeu_pd(l.as_mut_ptr(), a);
+            l
+        })
     }
 
     /// [`super::sum_two`].
@@ -377,95 +424,11 @@ mod wide {
         }
         finish(acc, tail.iter().copied())
     }
-
-    /// [`super::centred_dot_two`].
-    #[inline]
-    #[target_feature(enable = "avx2")]
-    pub(super) unsafe fn centred_dot_two<'c>(p: Centred<'c>, q: Centred<'c>) -> (f64, f64) {
-        let (np, nq) = (p.0.len().min(p.2.len()), q.0.len().min(q.2.len()));
-        let both = (np / SUM_LANES).min(nq / SUM_LANES) * SUM_LANES;
-        let (mut acc_p, mut acc_q) = (_mm256_setzero_pd(), _mm256_setzero_pd());
-        let (mp, mq) = (means(p), means(q));
-        let pairs =
-            |(x, _, y, _): Centred<'c>| x[..both].chunks_exact(SUM_LANES).zip(y[..both].chunks_exact(SUM_LANES));
-        for ((px, py), (qx, qy)) in pairs(p).zip(pairs(q)) {
-            acc_p = step(acc_p, px, py, mp);
-            acc_q = step(acc_q, qx, qy, mq);
-        }
-        let from = |(x, mx, y, my): Centred<'c>, n: usize| -> Centred<'c> { (&x[both..n], mx, &y[both..n], my) };
-        (centred_rest(acc_p, from(p, np)), centred_rest(acc_q, from(q, nq)))
-    }
-
-    /// The two means of a co-moment, each in all four lanes.
-    #[inline]
-    #[target_feature(enable = "avx2")]
-    unsafe fn means((_, mx, _, my): Centred<'_>) -> (__m256d, __m256d) {
-        (_mm256_set1_pd(mx), _mm256_set1_pd(my))
-    }
-
-    /// `acc + (x − mx)(y − my)` on four samples.
-    #[inline]
-    #[target_feature(enable = "avx2")]
-    unsafe fn step(acc: __m256d, x: &[f64], y: &[f64], (mx, my): (__m256d, __m256d)) -> __m256d {
-        let dx = _mm256_sub_pd(_mm256_loadu_pd(x.as_ptr()), mx);
-        let dy = _mm256_sub_pd(_mm256_loadu_pd(y.as_ptr()), my);
-        _mm256_add_pd(acc, _mm256_mul_pd(dx, dy))
-    }
-
-    /// The centred sum of `p` (equal lengths, from a multiple of the lanes on) into `acc`.
-    #[inline]
-    #[target_feature(enable = "avx2")]
-    unsafe fn centred_rest(mut acc: __m256d, p: Centred<'_>) -> f64 {
-        let (x, mx, y, my) = p;
-        let whole = x.len() - x.len() % SUM_LANES;
-        let m = means(p);
-        for (cx, cy) in x[..whole].chunks_exact(SUM_LANES).zip(y[..whole].chunks_exact(SUM_LANES)) {
-            acc = step(acc, cx, cy, m);
-        }
-        finish(acc, x[whole..].iter().zip(&y[whole..]).map(|(x, y)| (x - mx) * (y - my)))
-    }
 }
 
-/// The operands of one co-moment: `(x, mx, y, my)`.
-type Centred<'c> = (&'c [f64], f64, &'c [f64], f64);
-
-/// [`centred_dot`] of `p` and of `q`, the same bits as two calls: the two chains of
-/// additions run side by side while both have whole chunks left.
-#[inline(always)]
-fn centred_dot_two(p: Centred<'_>, q: Centred<'_>) -> (f64, f64) {
-    let (mut acc_p, mut acc_q) = ([0.0; SUM_LANES], [0.0; SUM_LANES]);
-    let (np, nq) = (p.0.len().min(p.2.len()), q.0.len().min(q.2.len()));
-    let both = (np / SUM_LANES).min(nq / SUM_LANES) * SUM_LANES;
-    let (px, py, qx, qy) = (&p.0[..both], &p.2[..both], &q.0[..both], &q.2[..both]);
-    for (((cpx, cpy), cqx), cqy) in px
-        .chunks_exact(SUM_LANES)
-        .zip(py.chunks_exact(SUM_LANES))
-        .zip(qx.chunks_exact(SUM_LANES))
-        .zip(qy.chunks_exact(SUM_LANES))
-    {
-        for k in 0..SUM_LANES {
-            acc_p[k] += (cpx[k] - p.1) * (cpy[k] - p.3);
-            acc_q[k] += (cqx[k] - q.1) * (cqy[k] - q.3);
-        }
-    }
-    let finish = |mut acc: [f64; SUM_LANES], (x, mx, y, my): Centred<'_>, n: usize| {
-        let whole = n - n % SUM_LANES;
-        for (cx, cy) in x[both..whole].chunks_exact(SUM_LANES).zip(y[both..whole].chunks_exact(SUM_LANES)) {
-            for k in 0..SUM_LANES {
-                acc[k] += (cx[k] - mx) * (cy[k] - my);
-            }
-        }
-        let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
-        for i in whole..n {
-            s += (x[i] - mx) * (y[i] - my);
-        }
-        s
-    };
-    (finish(acc_p, p, np), finish(acc_q, q, nq))
-}
-
-/// `Σ (xᵢ − mx)(yᵢ − my)`, summed in the same fixed order as [`sum`].
-#[inline(always)]
+/// `Σ (xᵢ − mx)(yᵢ − my)`, summed in the same fixed order as [`sum`]: the reference
+/// [`co_moments`] matches.
+#[cfg(test)]
 fn centred_dot(x: &[f64], mx: f64, y: &[f64], my: f64) -> f64 {
     let mut acc = [0.0; SUM_LANES];
     let n = x.len().min(y.len());
@@ -629,21 +592,15 @@ mod tests {
         for na in 0..23 {
             for nb in [0, 1, 3, 4, 9, 16, 22] {
                 let (a, b) = (awkward(na, 0.1), awkward(nb, 2.3));
-                let (ya, yb) = (awkward(na, 1.7), awkward(nb, 0.9));
                 let reference = (plain_sum(&a).to_bits(), plain_sum(&b).to_bits());
                 let two = sum_two(&a, &b);
                 assert_eq!((two.0.to_bits(), two.1.to_bits()), reference, "lengths {na}, {nb}");
                 assert_eq!(sum(&a).to_bits(), reference.0, "length {na}");
-                let (p, q) = ((&a[..], 0.3, &ya[..], -0.2), (&b[..], -1.1, &yb[..], 0.7));
-                let dots = (centred_dot(p.0, p.1, p.2, p.3).to_bits(), centred_dot(q.0, q.1, q.2, q.3).to_bits());
-                let two = centred_dot_two(p, q);
-                assert_eq!((two.0.to_bits(), two.1.to_bits()), dots, "lengths {na}, {nb}");
                 #[cfg(target_arch = "x86_64")]
                 if std::is_x86_feature_detected!("avx2") {
                     // SAFETY: the CPU has just been checked for AVX2.
-                    let (wide_sums, wide_dots) = unsafe { (wide::sum_two(&a, &b), wide::centred_dot_two(p, q)) };
+                    let wide_sums = unsafe { wide::sum_two(&a, &b) };
                     assert_eq!((wide_sums.0.to_bits(), wide_sums.1.to_bits()), reference, "lengths {na}, {nb}");
-                    assert_eq!((wide_dots.0.to_bits(), wide_dots.1.to_bits()), dots, "lengths {na}, {nb}");
                 }
             }
         }
@@ -651,17 +608,20 @@ mod tests {
 
     #[test]
     fn moments_filled_in_place_or_in_pairs_have_the_bits_of_fresh_ones() {
-        let columns: Vec<Vec<f64>> = (0..4).map(|i| awkward(131, f64::from(i))).collect();
+        // Up to nine columns: co-moments four at a time, and the rest one by one.
+        let columns: Vec<Vec<f64>> = (0..9).map(|i| awkward(131, f64::from(i))).collect();
         let lanes = awkward(262, 5.0);
         // Storage left over from moments of other sizes, full of other numbers.
         let mut a = Moments::of_columns(&[&lanes[..7], &lanes[7..14], &lanes[14..21], &lanes[21..28], &lanes[28..35]]);
         let mut b = Moments::of_columns(&[&lanes[..3], &lanes[3..6]]);
-        for d in 0..=4 {
+        for d in 0..=9 {
             for n in [0, 1, 2, 5, 128, 131] {
                 let cols: Vec<&[f64]> = columns[..d].iter().map(|c| &c[..n]).collect();
                 let reference = bits(&one_by_one(&cols));
                 a.fill_from_columns(&cols);
                 assert_eq!(bits(&a), reference, "{d} columns of {n}");
+                Moments::fill_joint_generic::<false>(&mut a, &cols, None);
+                assert_eq!(bits(&a), reference, "{d} columns of {n}, without AVX2");
                 assert_eq!(bits(&Moments::of_columns(&cols)), reference, "{d} columns of {n}");
                 let raw = [&lanes[..2 * n]];
                 Moments::fill_two(&mut a, &cols, &mut b, &raw);
