@@ -91,8 +91,8 @@ fn a_worst_of_autocall_prices_alike_with_and_without_its_digitals() {
     let v = price_with("autocall", "TRIA, TRIB, TRIC", body, Some(MARKET), &["--paths", "200000"]);
     let names = controls(&v);
     for want in [
-        "TRIA, TRIB, TRIC all at or above 100% of spot",
-        "TRIA, TRIB, TRIC all at or above 60% of spot",
+        "TRIA, TRIB, TRIC all at or above 100% of spot, valued when the product ends",
+        "TRIA, TRIB, TRIC all at or above 60% of spot, valued when the product ends",
         "TRIC at or above 60% of spot, valued when the product ends",
     ] {
         assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
@@ -156,6 +156,45 @@ fn a_one_asset_autocall_with_a_barrier_at_maturity_matches_its_bivariate_closed_
     let (p, se) = price_se(&v);
     assert_within("one-asset autocall with a barrier at maturity", p, se, exact, 4.0);
     let plain = price_with("one-asset", "BOOKA", body, None, &["--paths", "200000", "--no-control"]);
+    let (p0, se0) = price_se(&plain);
+    assert_within("the same, no controls", p0, se0, exact, 4.0);
+    assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");
+}
+
+#[test]
+fn a_two_asset_digital_valued_when_the_product_ends_keeps_the_trivariate_price() {
+    // At 0.5y it pays 100 and ends if PAIRA is at or above 110% of its initial level;
+    // else at 1y it pays 100 if both PAIRA and PAIRB are at or above 90%. With
+    // x(t) = ln S(t)/S(0) ~ N(μt, σ²t), μ = r − q − σ²/2:
+    //   price = 100·e^{−0.5r}·P(x_A(0.5) ≥ ln 1.1)
+    //         + 100·e^{−r}·P(x_A(0.5) < ln 1.1, x_A(1) ≥ ln 0.9, x_B(1) ≥ ln 0.9),
+    // the second a trivariate normal probability: corr(x_A(0.5), x_A(1)) = √0.5,
+    // corr(x_A(0.5), x_B(1)) = ρ√0.5, corr(x_A(1), x_B(1)) = ρ (common practice: the joint
+    // law of correlated Brownian motions at two dates; the trivariate function is checked
+    // against the orthant formula in src/closed_form). On a path that ends at 0.5y the
+    // two-asset digital is valued from the levels then, by draws of the rest of the path:
+    // a wrong law for those draws (drift, variance or correlation) would move the
+    // controlled price off the closed form.
+    let (r, rho) = (0.08, 0.5);
+    let ((sa, qa), (sb, qb)) = ((0.20, 0.01), (0.30, 0.03));
+    let (mu_a, mu_b) = (r - qa - 0.5 * sa * sa, r - qb - 0.5 * sb * sb);
+    let early = 1.0 - pathfold::closed_form::norm_cdf(((1.1f64).ln() - mu_a * 0.5) / (sa * 0.5f64.sqrt()));
+    let bounds = [
+        ((1.1f64).ln() - mu_a * 0.5) / (sa * 0.5f64.sqrt()),
+        -((0.9f64).ln() - mu_a) / sa,
+        -((0.9f64).ln() - mu_b) / sb,
+    ];
+    let h = 0.5f64.sqrt();
+    let late = pathfold::closed_form::trivariate_norm_cdf(bounds, -h, -rho * h, rho).expect("a valid correlation");
+    let exact = 100.0 * (-0.5 * r).exp() * early + 100.0 * (-r).exp() * late;
+    let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == first(obs) and perf(PAIRA) >= 110% {\n  pay 100\n  end\n }\n if t == last(obs) and min(perf(PAIRA), perf(PAIRB)) >= 90% {\n  pay 100\n }\n}\n";
+    let v = price_with("two-asset-stopped", "PAIRA, PAIRB", body, None, &["--paths", "400000"]);
+    let names = controls(&v);
+    let want = "PAIRA, PAIRB all at or above 90% of spot, valued when the product ends";
+    assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
+    let (p, se) = price_se(&v);
+    assert_within("two-asset digital after an early end", p, se, exact, 4.0);
+    let plain = price_with("two-asset-stopped", "PAIRA, PAIRB", body, None, &["--paths", "400000", "--no-control"]);
     let (p0, se0) = price_se(&plain);
     assert_within("the same, no controls", p0, se0, exact, 4.0);
     assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");

@@ -275,7 +275,7 @@ impl Workspace {
         if let Some(last) = p.events.len().checked_sub(1) {
             result.ended[last] += sum(&self.regs[ALIVE as usize][..lanes]);
         }
-        controls.fill(p, &self.paths, &self.stop, lanes, BLOCK, &mut self.columns[1..]);
+        controls.fill(p, &self.paths, &self.stop, &mut rng, lanes, BLOCK, &mut self.columns[1..]);
         // An antithetic pair is one sample: the mean of its two paths.
         let units = if settings.antithetic { lanes / 2 } else { lanes };
         if settings.antithetic {

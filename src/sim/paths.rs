@@ -1019,7 +1019,52 @@ struct Control {
 pub struct Controls {
     list: Vec<Control>,
     hedge: Option<Hedge>,
+    /// How the digitals of a product that can end early are valued on the paths that end
+    /// before the last date ([`Inner`]).
+    inner: Option<Inner>,
 }
+
+/// Draws from the date a path ends to the last date, for the digitals of a product that
+/// can end early.
+///
+/// On a path that ends early the last date's digital reads levels the payoff never sees,
+/// noise the regression cannot remove. Valued instead on the date the product's end is
+/// known, the digital is `P(event at T | levels then)`, a bounded martingale stopped at a
+/// stopping time, so its mean is still today's probability (optional stopping, common
+/// practice as for the stopped hedges). That conditional probability is a normal orthant
+/// probability per path (too dear to compute on every path), so it is estimated without
+/// bias by [`INNER_PAIRS`] antithetic pairs of draws of the remaining log returns, from the
+/// exact joint law the paths step by: the mean of the indicators has the conditional
+/// probability as its expectation, so the control's mean stays the closed-form one.
+#[derive(Clone, Debug, PartialEq)]
+struct Inner {
+    /// The assets the digitals read (at most three).
+    assets: Vec<usize>,
+    /// Per grid index `k`: the drift of each of those assets' log level from `tₖ` to the
+    /// last date, and the lower Cholesky factor (row by row, `assets²`) of the covariance
+    /// of those log returns: `ρₐᵦ·Σⱼ₍ₖ,last₎ sⱼₐ·sⱼᵦ` over the model's steps.
+    drift: Vec<Vec<f64>>,
+    factor: Vec<Vec<f64>>,
+    digitals: Vec<InnerDigital>,
+}
+
+/// One digital [`Inner`] values: its column, its thresholds as (position in
+/// `Inner::assets`, log threshold), its side and its discount factor.
+#[derive(Clone, Debug, PartialEq)]
+struct InnerDigital {
+    column: usize,
+    terms: Vec<(usize, f64)>,
+    above: bool,
+    discount: f64,
+}
+
+/// Antithetic pairs of draws per path ended early, for each digital [`Inner`] values.
+/// A numpy study of W3 (400k paths, the same controls): 1 pair gave a variance cut of
+/// 14×, 2 pairs 15×, 4 pairs 18×, 8 pairs 20×, against 11.4× for the last date's levels.
+const INNER_PAIRS: usize = 4;
+
+/// The most assets [`Inner`] draws for.
+const INNER_ASSETS: usize = 3;
 
 /// What the stopped-hedge controls need: when each `end` is known, and each asset's
 /// martingale scaling.
@@ -1112,11 +1157,13 @@ fn discount_to_last(p: &Program) -> f64 {
 /// are jointly normal with the model's step drifts and variances summed, and covariances
 /// `ρₐᵦ·Σₖ sₖₐ·sₖᵦ` from the per-step scales, so the event's probability is a normal
 /// orthant probability. An event whose probability has no closed form here (a degenerate
-/// correlation, an asset without variance) gets no control.
-fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
+/// correlation, an asset without variance) gets no control. For a product that can end
+/// early, the digitals are valued when it ends ([`Inner`], returned) when they read at
+/// most three assets in all.
+fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<Inner> {
     let events = super::digital::last_date_events(p);
     if events.is_empty() {
-        return;
+        return None;
     }
     let model = Model::new(p);
     let last = p.grid.len() - 1;
@@ -1190,8 +1237,9 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
     // thresholds, valued when the product ends. On a path redeemed early the last date's
     // digitals read levels the payoff never sees; these read the levels it ends on.
     if Hedge::of(p, &model).is_none() {
-        return;
+        return None;
     }
+    let inner = Inner::of(p, &model, list);
     stopped.dedup_by(|x, y| x.0 == y.0 && x.1 == y.1);
     for (a, h) in stopped.into_iter().take(MOST_STOPPED) {
         let (total_drift, total_var) = (model.total_drift[last][a], model.total_variance[last][a]);
@@ -1215,6 +1263,156 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) {
             scale: discount,
         });
     }
+    inner
+}
+
+impl Inner {
+    /// The draws for the digitals of two or more assets in `list` (whose names then say
+    /// they are valued when the product ends); `None` when there are none, or when they
+    /// read more than [`INNER_ASSETS`] assets in all.
+    fn of(p: &Program, model: &Model, list: &mut [Control]) -> Option<Inner> {
+        let mut assets: Vec<usize> = list
+            .iter()
+            .filter_map(|c| match &c.kind {
+                ControlKind::Digital { thresholds, .. } if thresholds.len() > 1 => Some(thresholds.iter().map(|t| t.0)),
+                _ => None,
+            })
+            .flatten()
+            .collect();
+        assets.sort_unstable();
+        assets.dedup();
+        if assets.is_empty() || assets.len() > INNER_ASSETS {
+            return None;
+        }
+        let n = assets.len();
+        let last = p.grid.len() - 1;
+        let rho = |a: usize, b: usize| -> f64 {
+            let (ra, rb) = (&model.cholesky[a], &model.cholesky[b]);
+            ra.iter().zip(rb).map(|(x, y)| x * y).sum()
+        };
+        let mut drift = Vec::with_capacity(last + 1);
+        let mut factor = Vec::with_capacity(last + 1);
+        for k in 0..=last {
+            drift.push(assets.iter().map(|&a| model.total_drift[last][a] - model.total_drift[k][a]).collect());
+            let mut cov = vec![0.0; n * n];
+            for (i, &a) in assets.iter().enumerate() {
+                for (j, &b) in assets.iter().enumerate() {
+                    let shared: f64 = (k + 1..=last).map(|s| model.scale[s][a] * model.scale[s][b]).sum();
+                    cov[i * n + j] = if i == j { shared } else { rho(a, b) * shared };
+                }
+            }
+            factor.push(semidefinite_cholesky(&cov, n));
+        }
+        let mut digitals = Vec::new();
+        for (column, c) in list.iter_mut().enumerate() {
+            // One asset's digital is valued when the product ends exactly, by its own
+            // stopped digital: it keeps the last date's level.
+            if let ControlKind::Digital { thresholds, above } = &c.kind {
+                if thresholds.len() < 2 {
+                    continue;
+                }
+                let position = |a: usize| assets.iter().position(|&b| b == a).unwrap_or(0);
+                let terms = thresholds.iter().map(|&(a, h)| (position(a), h.ln())).collect();
+                digitals.push(InnerDigital { column, terms, above: *above, discount: c.discount });
+                c.name.push_str(", valued when the product ends");
+            }
+        }
+        Some(Inner { assets, drift, factor, digitals })
+    }
+}
+
+impl Inner {
+    /// Overwrites each digital's value on the lanes that ended before the last date with
+    /// the mean of its indicators over [`INNER_PAIRS`] antithetic pairs of draws of the
+    /// log returns from the date the end is known to the last. The normals are drawn after
+    /// everything else the block draws: lane by lane, pair by pair, asset by asset.
+    #[allow(clippy::too_many_arguments)]
+    #[inline(always)]
+    fn values(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        rng: &mut Pcg64,
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        const CHUNK: usize = 64;
+        const MOST: usize = 8;
+        let (na, n, last) = (p.assets.len(), self.assets.len(), p.grid.len() - 1);
+        let digitals = &self.digitals[..self.digitals.len().min(MOST)];
+        let mut early = [0usize; CHUNK];
+        let mut draws = [0.0f64; CHUNK * INNER_PAIRS * INNER_ASSETS];
+        let share = 1.0 / (2 * INNER_PAIRS) as f64;
+        for start in (0..lanes).step_by(CHUNK) {
+            // The lanes that ended early, without a branch on each.
+            let mut m = 0;
+            for lane in start..(start + CHUNK).min(lanes) {
+                early[m] = lane;
+                m += usize::from(stop[lane] < last as f64);
+            }
+            let draws = &mut draws[..m * INNER_PAIRS * n];
+            normals::fill(rng, draws);
+            for (e, &lane) in early[..m].iter().enumerate() {
+                let k = stop[lane] as usize;
+                let (drift, factor) = (&self.drift[k], &self.factor[k]);
+                let mut x = [0.0; INNER_ASSETS];
+                for (i, &a) in self.assets.iter().enumerate() {
+                    let cell = (k * na + a) * block + lane;
+                    let log = if paths.logs.is_empty() { paths.levels[cell].ln() } else { paths.logs[cell] };
+                    x[i] = log + drift[i];
+                }
+                let mut counts = [0u32; MOST];
+                for z in draws[e * INNER_PAIRS * n..][..INNER_PAIRS * n].chunks_exact(n) {
+                    let mut w = [0.0; INNER_ASSETS];
+                    for (u, w) in w.iter_mut().enumerate().take(n) {
+                        for v in 0..=u {
+                            *w += factor[u * n + v] * z[v];
+                        }
+                    }
+                    for (d, count) in digitals.iter().zip(&mut counts) {
+                        let (mut up, mut down) = (true, true);
+                        for &(i, log_h) in &d.terms {
+                            let (hi, lo) = (x[i] + w[i], x[i] - w[i]);
+                            if d.above {
+                                up &= hi >= log_h;
+                                down &= lo >= log_h;
+                            } else {
+                                up &= hi < log_h;
+                                down &= lo < log_h;
+                            }
+                        }
+                        *count += u32::from(up) + u32::from(down);
+                    }
+                }
+                for (d, &count) in digitals.iter().zip(&counts) {
+                    columns[d.column][lane] = d.discount * (f64::from(count) * share);
+                }
+            }
+        }
+    }
+}
+
+/// The lower Cholesky factor of a covariance matrix (`n × n`, row by row) that may be only
+/// semidefinite: a pivot at or below a tiny fraction of the largest variance (no variance
+/// left in that direction) gives a zero column. Then `L·Lᵀ` is the matrix, up to rounding.
+fn semidefinite_cholesky(cov: &[f64], n: usize) -> Vec<f64> {
+    let mut l = vec![0.0; n * n];
+    let largest = (0..n).map(|i| cov[i * n + i]).fold(0.0, f64::max);
+    for j in 0..n {
+        let pivot = cov[j * n + j] - (0..j).map(|k| l[j * n + k] * l[j * n + k]).sum::<f64>();
+        if !(pivot > 1e-14 * largest) {
+            continue;
+        }
+        let d = pivot.sqrt();
+        l[j * n + j] = d;
+        for i in j + 1..n {
+            let off = cov[i * n + j] - (0..j).map(|k| l[i * n + k] * l[j * n + k]).sum::<f64>();
+            l[i * n + j] = off / d;
+        }
+    }
+    l
 }
 
 /// A percentage for a control's name: at most four decimals, without trailing zeros.
@@ -1311,13 +1509,13 @@ impl Controls {
         let last = p.grid.len() - 1;
         let t = p.grid[last];
         if t <= 0.0 {
-            return Controls { list, hedge: None };
+            return Controls { list, hedge: None, inner: None };
         }
         if let Some(c) = &p.curves {
             let mut list = curve_controls(p, c);
-            add_digitals(p, discount_to_last(p), &mut list);
+            let inner = add_digitals(p, discount_to_last(p), &mut list);
             let hedge = add_hedges(p, &mut list);
-            return Controls { list, hedge };
+            return Controls { list, hedge, inner };
         }
         let discount = (-p.rate * t).exp();
         for (a, m) in p.assets.iter().enumerate() {
@@ -1373,9 +1571,9 @@ impl Controls {
                 scale: geometric_forward,
             });
         }
-        add_digitals(p, discount_to_last(p), &mut list);
+        let inner = add_digitals(p, discount_to_last(p), &mut list);
         let hedge = add_hedges(p, &mut list);
-        Controls { list, hedge }
+        Controls { list, hedge, inner }
     }
 
     /// For the `End` at operation `op`, the grid index from which its outcome is known,
@@ -1392,11 +1590,13 @@ impl Controls {
     /// Writes every control's discounted value on each path into `columns[j]`; `stop`
     /// holds, per lane, the grid index from which the path is known to have ended (read
     /// only when [`Controls::tracks_ends`]).
+    #[allow(clippy::too_many_arguments)]
     pub fn fill(
         &self,
         p: &Program,
         paths: &PathBuffers,
         stop: &[f64],
+        rng: &mut Pcg64,
         lanes: usize,
         block: usize,
         columns: &mut [Vec<f64>],
@@ -1405,35 +1605,39 @@ impl Controls {
         {
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
-                unsafe { self.fill_avx2(p, paths, stop, lanes, block, columns) };
+                unsafe { self.fill_avx2(p, paths, stop, rng, lanes, block, columns) };
                 return;
             }
         }
-        self.fill_generic(p, paths, stop, lanes, block, columns);
+        self.fill_generic(p, paths, stop, rng, lanes, block, columns);
     }
 
     /// Additions, multiplications, selects and `min` only, never fused: the same bits as
     /// the baseline build.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
+    #[allow(clippy::too_many_arguments)]
     unsafe fn fill_avx2(
         &self,
         p: &Program,
         paths: &PathBuffers,
         stop: &[f64],
+        rng: &mut Pcg64,
         lanes: usize,
         block: usize,
         columns: &mut [Vec<f64>],
     ) {
-        self.fill_generic(p, paths, stop, lanes, block, columns);
+        self.fill_generic(p, paths, stop, rng, lanes, block, columns);
     }
 
+    #[allow(clippy::too_many_arguments)]
     #[inline(always)]
     fn fill_generic(
         &self,
         p: &Program,
         paths: &PathBuffers,
         stop: &[f64],
+        rng: &mut Pcg64,
         lanes: usize,
         block: usize,
         columns: &mut [Vec<f64>],
@@ -1444,6 +1648,9 @@ impl Controls {
         if let Some(h) = &self.hedge {
             self.stopped_values(p, paths, stop, lanes, block, columns);
             self.hedge_values(h, p, paths, stop, lanes, block, columns);
+            if let Some(inner) = &self.inner {
+                inner.values(p, paths, stop, rng, lanes, block, columns);
+            }
         }
     }
 
