@@ -1236,9 +1236,7 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
     // A product that can end early: each asset's own digital at each of those
     // thresholds, valued when the product ends. On a path redeemed early the last date's
     // digitals read levels the payoff never sees; these read the levels it ends on.
-    if Hedge::of(p, &model).is_none() {
-        return None;
-    }
+    Hedge::of(p, &model)?;
     let inner = Inner::of(p, &model, list);
     stopped.dedup_by(|x, y| x.0 == y.0 && x.1 == y.1);
     for (a, h) in stopped.into_iter().take(MOST_STOPPED) {
@@ -1402,7 +1400,8 @@ fn semidefinite_cholesky(cov: &[f64], n: usize) -> Vec<f64> {
     let largest = (0..n).map(|i| cov[i * n + i]).fold(0.0, f64::max);
     for j in 0..n {
         let pivot = cov[j * n + j] - (0..j).map(|k| l[j * n + k] * l[j * n + k]).sum::<f64>();
-        if !(pivot > 1e-14 * largest) {
+        // Also a NaN pivot: no variance to draw in that direction.
+        if pivot.partial_cmp(&(1e-14 * largest)) != Some(std::cmp::Ordering::Greater) {
             continue;
         }
         let d = pivot.sqrt();
