@@ -1984,6 +1984,27 @@ mod tests {
     }
 
     #[test]
+    fn the_semidefinite_factor_reproduces_its_matrix() {
+        // Positive definite; with an asset of no variance left; with two perfectly
+        // correlated assets (rank 2): L·Lᵀ is the matrix in each case.
+        let cases: [[f64; 9]; 3] = [
+            [0.04, 0.015, 0.012, 0.015, 0.0625, 0.0375, 0.012, 0.0375, 0.09],
+            [0.04, 0.0, 0.012, 0.0, 0.0, 0.0, 0.012, 0.0, 0.09],
+            [0.04, 0.06, 0.012, 0.06, 0.09, 0.018, 0.012, 0.018, 0.09],
+        ];
+        for cov in cases {
+            let l = semidefinite_cholesky(&cov, 3);
+            for i in 0..3 {
+                for j in 0..3 {
+                    assert!(j <= i || l[i * 3 + j] == 0.0, "lower triangular");
+                    let back: f64 = (0..3).map(|k| l[i * 3 + k] * l[j * 3 + k]).sum();
+                    assert!((back - cov[i * 3 + j]).abs() < 1e-12, "{cov:?}: ({i}, {j}) {back}");
+                }
+            }
+        }
+    }
+
+    #[test]
     fn block_exp_is_within_two_ulps_of_the_library_exp() {
         // The library exp is correctly rounded to within an ulp (common practice for glibc),
         // so two ulps from it bounds our error at three.
