@@ -1342,6 +1342,14 @@ impl Inner {
         let digitals = &self.digitals[..self.digitals.len().min(MOST)];
         let mut early = [0usize; CHUNK];
         let mut draws = [0.0f64; CHUNK * INNER_PAIRS * INNER_ASSETS];
+        // Per early lane (packed): each asset's log level at the end plus its drift to the
+        // last date, the factor's entries, one pair's normals and their correlated sums,
+        // and per digital its count of events.
+        let mut x = [[0.0f64; CHUNK]; INNER_ASSETS];
+        let mut factor = [[0.0f64; CHUNK]; INNER_ASSETS * INNER_ASSETS];
+        let mut z = [[0.0f64; CHUNK]; INNER_ASSETS];
+        let mut w = [[0.0f64; CHUNK]; INNER_ASSETS];
+        let mut counts = [[0.0f64; CHUNK]; MOST];
         let share = 1.0 / (2 * INNER_PAIRS) as f64;
         for start in (0..lanes).step_by(CHUNK) {
             // The lanes that ended early, without a branch on each.
@@ -1350,42 +1358,65 @@ impl Inner {
                 early[m] = lane;
                 m += usize::from(stop[lane] < last as f64);
             }
+            let early = &early[..m];
             let draws = &mut draws[..m * INNER_PAIRS * n];
             normals::fill(rng, draws);
-            for (e, &lane) in early[..m].iter().enumerate() {
+            for (e, &lane) in early.iter().enumerate() {
                 let k = stop[lane] as usize;
-                let (drift, factor) = (&self.drift[k], &self.factor[k]);
-                let mut x = [0.0; INNER_ASSETS];
                 for (i, &a) in self.assets.iter().enumerate() {
                     let cell = (k * na + a) * block + lane;
                     let log = if paths.logs.is_empty() { paths.levels[cell].ln() } else { paths.logs[cell] };
-                    x[i] = log + drift[i];
+                    x[i][e] = log + self.drift[k][i];
                 }
-                let mut counts = [0u32; MOST];
-                for z in draws[e * INNER_PAIRS * n..][..INNER_PAIRS * n].chunks_exact(n) {
-                    let mut w = [0.0; INNER_ASSETS];
-                    for (u, w) in w.iter_mut().enumerate().take(n) {
-                        for v in 0..=u {
-                            *w += factor[u * n + v] * z[v];
+                for (t, f) in self.factor[k].iter().enumerate() {
+                    factor[t][e] = *f;
+                }
+            }
+            for c in &mut counts[..digitals.len()] {
+                c[..m].fill(0.0);
+            }
+            // Straight loops over the early lanes from here on: they vectorise.
+            for pair in 0..INNER_PAIRS {
+                for (v, z) in z.iter_mut().enumerate().take(n) {
+                    for (e, z) in z[..m].iter_mut().enumerate() {
+                        *z = draws[(e * INNER_PAIRS + pair) * n + v];
+                    }
+                }
+                for u in 0..n {
+                    let w = &mut w[u][..m];
+                    w.fill(0.0);
+                    for v in 0..=u {
+                        for ((w, f), z) in w.iter_mut().zip(&factor[u * n + v][..m]).zip(&z[v][..m]) {
+                            *w += f * z;
                         }
                     }
-                    for (d, count) in digitals.iter().zip(&mut counts) {
-                        let (mut up, mut down) = (true, true);
-                        for &(i, log_h) in &d.terms {
-                            let (hi, lo) = (x[i] + w[i], x[i] - w[i]);
+                }
+                for (d, count) in digitals.iter().zip(&mut counts) {
+                    let count = &mut count[..m];
+                    // The event on the draw and on its mirror: every term at or above its
+                    // threshold (a `min`), or every one below (a `max`).
+                    let mut up = [true; CHUNK];
+                    let mut down = [true; CHUNK];
+                    for &(i, log_h) in &d.terms {
+                        for e in 0..m {
+                            let (hi, lo) = (x[i][e] + w[i][e], x[i][e] - w[i][e]);
                             if d.above {
-                                up &= hi >= log_h;
-                                down &= lo >= log_h;
+                                up[e] &= hi >= log_h;
+                                down[e] &= lo >= log_h;
                             } else {
-                                up &= hi < log_h;
-                                down &= lo < log_h;
+                                up[e] &= hi < log_h;
+                                down[e] &= lo < log_h;
                             }
                         }
-                        *count += u32::from(up) + u32::from(down);
+                    }
+                    for e in 0..m {
+                        count[e] += f64::from(u8::from(up[e])) + f64::from(u8::from(down[e]));
                     }
                 }
-                for (d, &count) in digitals.iter().zip(&counts) {
-                    columns[d.column][lane] = d.discount * (f64::from(count) * share);
+            }
+            for (d, count) in digitals.iter().zip(&counts) {
+                for (e, &lane) in early.iter().enumerate() {
+                    columns[d.column][lane] = d.discount * (count[e] * share);
                 }
             }
         }
