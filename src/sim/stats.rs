@@ -245,6 +245,12 @@ fn co_moments<const WIDE: bool>(columns: &[&[f64]], mean: &[f64], m2: &mut [f64]
                         }
                     }
                 }
+            } else if WIDE {
+                #[cfg(target_arch = "x86_64")]
+                {
+                    // SAFETY: `WIDE` is only set by a caller that checked the CPU for AVX2.
+                    acc[0] = unsafe { wide::dot_one(ci, column(j), whole) };
+                }
             } else {
                 let cj = column(j);
                 for c in (0..whole).step_by(SUM_LANES) {
@@ -398,6 +404,21 @@ mod wide {
             _mm256_storeu_pd(l.as_mut_ptr(), a);
             l
         })
+    }
+
+    /// [`dot_tile`] for one co-moment.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    pub(super) unsafe fn dot_one(ci: &[f64], cj: &[f64], whole: usize) -> [f64; 4] {
+        let (ci, cj) = (&ci[..whole], &cj[..whole]);
+        let mut acc = _mm256_setzero_pd();
+        for c in (0..whole).step_by(SUM_LANES) {
+            let x = _mm256_loadu_pd(ci.as_ptr().add(c));
+            acc = _mm256_add_pd(acc, _mm256_mul_pd(x, _mm256_loadu_pd(cj.as_ptr().add(c))));
+        }
+        let mut l = [0.0; SUM_LANES];
+        _mm256_storeu_pd(l.as_mut_ptr(), acc);
+        l
     }
 
     /// [`super::sum_two`].
