@@ -199,3 +199,34 @@ fn a_two_asset_digital_valued_when_the_product_ends_keeps_the_trivariate_price()
     assert_within("the same, no controls", p0, se0, exact, 4.0);
     assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");
 }
+
+#[test]
+fn digitals_on_four_assets_are_valued_when_the_product_ends_three_assets_at_most() {
+    // Multi-asset digitals on the last date reading four assets in all: those that fit in
+    // three assets are valued when the product ends, the rest keep their last-date
+    // values; either way the controlled price agrees with the plain one on other paths
+    // within 4 combined standard errors (an equivalence, common practice for control
+    // variates).
+    let market = format!(
+        "{}\n[underlyings.TRID]\ncurrency = \"USD\"\nspot = 50.0\nvolatility = 0.35\ndividend_yield = 0.0\n",
+        MARKET.replace("TRIB = { TRIC = 0.5 }", "TRIB = { TRIC = 0.5 }\nTRID = { TRIA = 0.3, TRIB = 0.2, TRIC = 0.1 }")
+    );
+    let body = "dates obs = 4 steps from start to 1y\nfor each t in obs {\n if min(perf(TRIA), perf(TRID)) >= 110% {\n  pay 100\n  end\n }\n if t == last(obs) {\n  if min(perf(TRIA), perf(TRID)) >= 80% {\n   pay 30\n  }\n  if max(perf(TRIB), perf(TRIC)) < 95% {\n   pay 10\n  }\n }\n}\n";
+    let v = price_with("four", "TRIA, TRIB, TRIC, TRID", body, Some(&market), &["--paths", "200000"]);
+    let names = controls(&v);
+    let joint = |c: &&String| c.contains(", TRI");
+    let stopped = names.iter().filter(joint).filter(|c| c.ends_with("valued when the product ends")).count();
+    let kept = names.iter().filter(joint).filter(|c| !c.ends_with("valued when the product ends")).count();
+    assert!(stopped >= 1 && kept >= 1, "{names:?}");
+    let plain = price_seeded(
+        "four",
+        "TRIA, TRIB, TRIC, TRID",
+        body,
+        Some(&market),
+        "18",
+        &["--paths", "400000", "--no-control"],
+    );
+    let ((p, se), (p0, se0)) = (price_se(&v), price_se(&plain));
+    assert_within("four-asset digitals, controlled vs plain", p, (se * se + se0 * se0).sqrt(), p0, 4.0);
+    assert!(se < se0, "controlled {se} vs plain {se0}");
+}

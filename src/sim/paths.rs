@@ -1269,20 +1269,27 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
 
 impl Inner {
     /// The draws for the digitals of two or more assets in `list` (whose names then say
-    /// they are valued when the product ends); `None` when there are none, or when they
-    /// read more than [`INNER_ASSETS`] assets in all.
+    /// they are valued when the product ends), as many as read at most [`INNER_ASSETS`]
+    /// assets in all; `None` when there are none.
     fn of(p: &Program, model: &Model, list: &mut [Control]) -> Option<Inner> {
-        let mut assets: Vec<usize> = list
-            .iter()
-            .filter_map(|c| match &c.kind {
-                ControlKind::Digital { thresholds, .. } if thresholds.len() > 1 => Some(thresholds.iter().map(|t| t.0)),
-                _ => None,
-            })
-            .flatten()
-            .collect();
-        assets.sort_unstable();
-        assets.dedup();
-        if assets.is_empty() || assets.len() > INNER_ASSETS {
+        // The digitals of two or more assets, in the list's order, while the assets they
+        // read number at most three in all; the others keep their last-date values.
+        let mut assets: Vec<usize> = Vec::new();
+        let mut chosen = vec![false; list.len()];
+        for (j, c) in list.iter().enumerate() {
+            let ControlKind::Digital { thresholds, .. } = &c.kind else { continue };
+            if thresholds.len() < 2 {
+                continue;
+            }
+            let mut with: Vec<usize> = assets.iter().copied().chain(thresholds.iter().map(|t| t.0)).collect();
+            with.sort_unstable();
+            with.dedup();
+            if with.len() <= INNER_ASSETS {
+                assets = with;
+                chosen[j] = true;
+            }
+        }
+        if assets.is_empty() {
             return None;
         }
         let n = assets.len();
@@ -1309,7 +1316,7 @@ impl Inner {
             // One asset's digital is valued when the product ends exactly, by its own
             // stopped digital: it keeps the last date's level.
             if let ControlKind::Digital { thresholds, above } = &c.kind {
-                if thresholds.len() < 2 {
+                if !chosen[column] {
                     continue;
                 }
                 let position = |a: usize| assets.iter().position(|&b| b == a).unwrap_or(0);
