@@ -494,24 +494,22 @@ impl Workspace {
                         if early {
                             let own = self.end_dates[index] as f64;
                             for (e, a) in self.ended_at[..lanes].iter_mut().zip(&alive[..lanes]) {
-                                if *a != 0.0 {
-                                    *e = own;
-                                }
+                                *e = if *a != 0.0 { own } else { *e };
                             }
                         }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, a) in self.stop[..lanes].iter_mut().zip(&alive[..lanes]) {
-                                if *a != 0.0 {
-                                    *s = s.min(from);
-                                }
+                                *s = if *a != 0.0 { s.min(from) } else { *s };
                             }
                         }
                         alive[..lanes].fill(0.0);
                     } else {
                         let m = &self.regs[mask as usize][..lanes];
                         let gone = &mut self.paid[..lanes];
+                        // Selects, not branches (which lanes end is random): `&` evaluates
+                        // both sides, and the loops vectorise.
                         for (i, (a, g)) in alive[..lanes].iter_mut().zip(gone.iter_mut()).enumerate() {
-                            let end = m[i] != 0.0 && *a != 0.0;
+                            let end = (m[i] != 0.0) & (*a != 0.0);
                             *g = flag(end);
                             *a = if end { 0.0 } else { *a };
                         }
@@ -519,16 +517,12 @@ impl Workspace {
                         if early {
                             let own = self.end_dates[index] as f64;
                             for (e, g) in self.ended_at[..lanes].iter_mut().zip(&*gone) {
-                                if *g != 0.0 {
-                                    *e = own;
-                                }
+                                *e = if *g != 0.0 { own } else { *e };
                             }
                         }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
-                                if *g != 0.0 {
-                                    *s = s.min(from);
-                                }
+                                *s = if *g != 0.0 { s.min(from) } else { *s };
                             }
                         }
                     }
