@@ -157,6 +157,8 @@ impl Workspace {
         let keep_logs = reads_logs || !p.monitors.is_empty() || !p.path_values.is_empty() || controls.needs_logs();
         let mut paths = PathBuffers::new(p, model, keep_logs, BLOCK);
         paths.compute_levels_on(levels_read(p, controls));
+        let stops_early = stops_early(p, controls);
+        paths.steps_running_lanes(stops_early);
         Workspace {
             paths,
             regs: vec![vec![0.0; BLOCK]; p.registers],
@@ -169,7 +171,7 @@ impl Workspace {
             stop: vec![0.0; BLOCK],
             given: Vec::new(),
             qmc_scratch: Vec::new(),
-            stops_early: stops_early(p, controls),
+            stops_early,
             reads_to: reads_to(p),
             end_dates: end_dates(p).unwrap_or_default(),
             ended_at: vec![f64::INFINITY; BLOCK],

@@ -312,6 +312,9 @@ pub struct PathBuffers {
     stepped: usize,
     /// Per lane, the last grid index it was stepped to; and the lanes a step simulates.
     unit_last: Vec<u32>,
+    /// Whether `unit_last` is reset at the start of a block (only paths stepped as they
+    /// run read it).
+    keeps_units: bool,
     running: Vec<u32>,
     /// One step's moves at their lanes, then the running lanes' log levels, packed.
     packed: Vec<f64>,
@@ -335,6 +338,7 @@ impl PathBuffers {
             centre: vec![0.0; p.assets.len()],
             stepped: 0,
             unit_last: vec![0; block],
+            keeps_units: true,
             running: Vec::with_capacity(block),
             packed: vec![0.0; 2 * block],
             levels_on: vec![true; p.grid.len()],
@@ -345,6 +349,13 @@ impl PathBuffers {
     /// every date, when kept). The levels of the other dates are left as they are.
     pub fn compute_levels_on(&mut self, on: Vec<bool>) {
         self.levels_on = on;
+    }
+
+    /// Whether the paths may be stepped only while they run ([`Self::step_running_to`]),
+    /// which reads each lane's last stepped date; else that record is not reset at the
+    /// start of a block (nothing reads it).
+    pub fn steps_running_lanes(&mut self, yes: bool) {
+        self.keeps_units = yes;
     }
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
@@ -382,7 +393,9 @@ impl PathBuffers {
                 } else {
                     (p.past_levels[k][a], p.past_levels[k][a].ln())
                 };
-                self.levels[cell..cell + lanes].fill(level);
+                if self.levels_on[k] {
+                    self.levels[cell..cell + lanes].fill(level);
+                }
                 if self.keep_logs {
                     self.logs[cell..cell + lanes].fill(log);
                 }
@@ -390,7 +403,9 @@ impl PathBuffers {
         }
         self.centre.copy_from_slice(&model.log_spot);
         self.stepped = p.past;
-        self.unit_last.fill(p.past as u32);
+        if self.keeps_units {
+            self.unit_last.fill(p.past as u32);
+        }
     }
 
     /// Moves the normals of `n` lanes drawn into `w` lane by lane (asset by asset within
