@@ -1084,6 +1084,9 @@ const INNER_PAIRS: usize = 8;
 /// The most assets [`Inner`] draws for.
 const INNER_ASSETS: usize = 3;
 
+/// The most digitals [`Inner`] values (the digitals themselves are at most four).
+const INNER_MOST: usize = 8;
+
 /// What the stopped-hedge controls need: when each `end` is known, and each asset's
 /// martingale scaling.
 ///
@@ -1299,7 +1302,7 @@ impl Inner {
             let mut with: Vec<usize> = assets.iter().copied().chain(thresholds.iter().map(|t| t.0)).collect();
             with.sort_unstable();
             with.dedup();
-            if with.len() <= INNER_ASSETS {
+            if with.len() <= INNER_ASSETS && chosen.iter().filter(|&&c| c).count() < INNER_MOST {
                 assets = with;
                 chosen[j] = true;
             }
@@ -1362,7 +1365,7 @@ impl Inner {
         columns: &mut [Vec<f64>],
     ) {
         const CHUNK: usize = 64;
-        const MOST: usize = 8;
+        const MOST: usize = INNER_MOST;
         let (na, n, last) = (p.assets.len(), self.assets.len(), p.grid.len() - 1);
         let digitals = &self.digitals[..self.digitals.len().min(MOST)];
         let mut early = [0usize; CHUNK];
