@@ -148,17 +148,25 @@ fn a_one_asset_autocall_with_a_barrier_at_maturity_matches_its_bivariate_closed_
     let late = bivariate_norm_cdf(z(1.1, 0.5), -z(0.9, 1.0), -(0.5f64).sqrt());
     let exact = 100.0 * (-0.5 * r).exp() * early + 100.0 * (-r).exp() * late;
     let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == first(obs) and perf(BOOKA) >= 110% {\n  pay 100\n  end\n }\n if t == last(obs) and perf(BOOKA) >= 90% {\n  pay 100\n }\n}\n";
-    let v = price_with("one-asset", "BOOKA", body, None, &["--paths", "200000"]);
+    let wants = ["BOOKA at or above 90% of spot", "BOOKA at or above 90% of spot, valued when the product ends"];
+    with_and_without_controls("one-asset", "BOOKA", body, "200000", &wants, exact);
+}
+
+/// Prices `body` on the validation market with controls and without (same seed), checks
+/// that the controls include each of `wants`, that both prices are within 4 standard
+/// errors of `exact`, and that the controls at least halve the standard error.
+fn with_and_without_controls(tag: &str, underlyings: &str, body: &str, paths: &str, wants: &[&str], exact: f64) {
+    let v = price_with(tag, underlyings, body, None, &["--paths", paths]);
     let names = controls(&v);
-    for want in ["BOOKA at or above 90% of spot", "BOOKA at or above 90% of spot, valued when the product ends"] {
+    for want in wants {
         assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
     }
     let (p, se) = price_se(&v);
-    assert_within("one-asset autocall with a barrier at maturity", p, se, exact, 4.0);
-    let plain = price_with("one-asset", "BOOKA", body, None, &["--paths", "200000", "--no-control"]);
+    assert_within(&format!("{tag}, with controls"), p, se, exact, 4.0);
+    let plain = price_with(tag, underlyings, body, None, &["--paths", paths, "--no-control"]);
     let (p0, se0) = price_se(&plain);
-    assert_within("the same, no controls", p0, se0, exact, 4.0);
-    assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");
+    assert_within(&format!("{tag}, no controls"), p0, se0, exact, 4.0);
+    assert!(se < 0.5 * se0, "{tag}: controlled {se} vs plain {se0}");
 }
 
 #[test]
@@ -188,16 +196,8 @@ fn a_two_asset_digital_valued_when_the_product_ends_keeps_the_trivariate_price()
     let late = pathfold::closed_form::trivariate_norm_cdf(bounds, -h, -rho * h, rho).expect("a valid correlation");
     let exact = 100.0 * (-0.5 * r).exp() * early + 100.0 * (-r).exp() * late;
     let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if t == first(obs) and perf(PAIRA) >= 110% {\n  pay 100\n  end\n }\n if t == last(obs) and min(perf(PAIRA), perf(PAIRB)) >= 90% {\n  pay 100\n }\n}\n";
-    let v = price_with("two-asset-stopped", "PAIRA, PAIRB", body, None, &["--paths", "400000"]);
-    let names = controls(&v);
     let want = "PAIRA, PAIRB all at or above 90% of spot, valued when the product ends";
-    assert!(names.iter().any(|c| c == want), "{want} missing: {names:?}");
-    let (p, se) = price_se(&v);
-    assert_within("two-asset digital after an early end", p, se, exact, 4.0);
-    let plain = price_with("two-asset-stopped", "PAIRA, PAIRB", body, None, &["--paths", "400000", "--no-control"]);
-    let (p0, se0) = price_se(&plain);
-    assert_within("the same, no controls", p0, se0, exact, 4.0);
-    assert!(se < 0.5 * se0, "controlled {se} vs plain {se0}");
+    with_and_without_controls("two-asset-stopped", "PAIRA, PAIRB", body, "400000", &[want], exact);
 }
 
 #[test]

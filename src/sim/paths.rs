@@ -1345,9 +1345,7 @@ impl Inner {
         }
         Some(Inner { assets, drift, factor, digitals })
     }
-}
 
-impl Inner {
     /// Overwrites each digital's value on the lanes that ended before the last date with
     /// the mean of its indicators over [`INNER_PAIRS`] antithetic pairs of draws of the
     /// log returns from the date the end is known to the last. The normals are drawn after
