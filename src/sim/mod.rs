@@ -13,11 +13,13 @@ pub mod exec;
 pub mod exercise;
 pub mod joint;
 pub mod normals;
+mod orthant;
 pub mod partial;
 pub mod paths;
 pub mod regress;
 pub mod rule;
 pub mod sobol;
+mod special;
 pub mod stats;
 mod ziggurat;
 

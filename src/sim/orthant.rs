@@ -1,0 +1,170 @@
+//! A path's chance that several jointly normal log returns all end past their thresholds,
+//! estimated without bias and with little noise: the separation-of-variables estimator of
+//! Genz ("Numerical computation of multivariate normal probabilities", Journal of
+//! Computational and Graphical Statistics 1 (1992); from memory).
+//!
+//! With the returns `Y = x + L·Z` (`L` lower triangular, `Z` standard normal), the event
+//! `Yᵢ ≥ hᵢ` for every `i` is `Z₁ ≥ a₁`, then `Z₂ ≥ a₂(Z₁)`, and so on. Drawing each `Zᵢ`
+//! from the normal law cut to its own side of `aᵢ`, by the quantile of a uniform, and
+//! multiplying the chances `P(Zᵢ ≥ aᵢ)` met on the way gives a number whose expectation is
+//! exactly the event's probability: the last coordinate is integrated in closed form, the
+//! others by one draw each, and no draw is wasted on the side where the event fails. Each
+//! estimate here averages a draw and its antithetic mirror (`u` and `1 − u`).
+//!
+//! Everything is written lane by lane over a chunk of lanes with selects, never branches
+//! on the data, so the loops vectorise; the quantile is Acklam's rational approximation
+//! (relative error below 1.2e-9), which is the only departure from exactness: it moves a
+//! probability by about that fraction of itself.
+
+use super::special::{norm_cdf_hart_select, quantile_select};
+
+/// Lanes per chunk.
+pub(super) const CHUNK: usize = 64;
+
+/// The most terms (thresholds) one event may have.
+pub(super) const MOST_TERMS: usize = 3;
+
+/// Per lane `e < m` of a chunk, the estimate of `P(every term's event)` for the returns
+/// `Yᵢ = x[posᵢ][e] + Σⱼ≤ᵢ factor[i·n + j][e]·Zⱼ`, the terms `(posᵢ, hᵢ)` read at or above
+/// (`above`) or below their thresholds `hᵢ` (logs), into `out`. `u[i][e]` are uniforms in
+/// `(0, 1)` for the first `n − 1` terms. A zero pivot `factor[i·n + i]` (no variance left
+/// in that direction) makes the term's event known from the draws before it.
+#[inline(always)]
+pub(super) fn chunk(
+    terms: &[(usize, f64)],
+    above: bool,
+    x: &[[f64; CHUNK]],
+    factor: &[[f64; CHUNK]],
+    u: &[[f64; CHUNK]],
+    m: usize,
+    out: &mut [f64; CHUNK],
+) {
+    let n = terms.len();
+    debug_assert!(n <= MOST_TERMS);
+    out[..m].fill(0.0);
+    for mirror in [false, true] {
+        let mut product = [1.0f64; CHUNK];
+        let mut z = [[0.0f64; CHUNK]; MOST_TERMS];
+        let mut gap = [0.0f64; CHUNK];
+        for (i, &(pos, h)) in terms.iter().enumerate() {
+            // The term's event is `l·Zᵢ ≥ gap` (above) or `l·Zᵢ < gap` (below). One
+            // straight loop per step, so each vectorises.
+            let gap = &mut gap[..m];
+            for (g, x) in gap.iter_mut().zip(&x[pos][..m]) {
+                *g = h - x;
+            }
+            for (j, zj) in z[..i].iter().enumerate() {
+                for ((g, f), zj) in gap.iter_mut().zip(&factor[i * n + j][..m]).zip(&zj[..m]) {
+                    *g -= f * zj;
+                }
+            }
+            let pivot = &factor[i * n + i][..m];
+            let mut chance = [0.0f64; CHUNK];
+            for ((c, &g), &l) in chance[..m].iter_mut().zip(&*gap).zip(pivot) {
+                let a = g / if l > 0.0 { l } else { 1.0 };
+                let p = norm_cdf_hart_select(if above { -a } else { a });
+                let known = if above { g <= 0.0 } else { g > 0.0 };
+                *c = if l > 0.0 { p } else { f64::from(u8::from(known)) };
+            }
+            for (p, c) in product[..m].iter_mut().zip(&chance[..m]) {
+                *p *= c;
+            }
+            if i + 1 < n {
+                // Zᵢ on the event's side of `a`: the quantile of a uniform share of the
+                // chance (kept above the smallest normal number: finite).
+                for (((zi, &u), &c), &l) in z[i][..m].iter_mut().zip(&u[i][..m]).zip(&chance[..m]).zip(pivot) {
+                    let v = if mirror { 1.0 - u } else { u };
+                    let q = quantile_select((v * c).max(f64::MIN_POSITIVE));
+                    let drawn = if above { -q } else { q };
+                    *zi = if l > 0.0 { drawn } else { 0.0 };
+                }
+            }
+        }
+        for (o, p) in out[..m].iter_mut().zip(&product[..m]) {
+            *o += 0.5 * p;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::closed_form::{norm_cdf, trivariate_norm_cdf};
+    use rand::{Rng, SeedableRng};
+    use rand_pcg::Pcg64;
+
+    /// One event's estimate for one lane, as the mean over `draws` pairs of uniforms.
+    fn mean_estimate(terms: &[(usize, f64)], above: bool, x: &[f64], factor: &[f64], draws: usize) -> (f64, f64) {
+        let mut rng = Pcg64::seed_from_u64(11);
+        let n = terms.len();
+        let xs: Vec<[f64; CHUNK]> = x.iter().map(|&v| [v; CHUNK]).collect();
+        let fs: Vec<[f64; CHUNK]> = factor.iter().map(|&v| [v; CHUNK]).collect();
+        let (mut sum, mut squares) = (0.0, 0.0);
+        let mut out = [0.0; CHUNK];
+        for _ in 0..draws / CHUNK {
+            let u: Vec<[f64; CHUNK]> = (0..n).map(|_| std::array::from_fn(|_| rng.gen::<f64>().max(1e-300))).collect();
+            chunk(terms, above, &xs, &fs, &u, CHUNK, &mut out);
+            for o in out {
+                assert!((0.0..=1.0).contains(&o), "an estimate outside [0, 1]: {o}");
+                sum += o;
+                squares += o * o;
+            }
+        }
+        let count = (draws / CHUNK * CHUNK) as f64;
+        let mean = sum / count;
+        (mean, ((squares / count - mean * mean).max(0.0) / count).sqrt())
+    }
+
+    /// The lower factor of a 3×3 covariance, row by row.
+    fn cholesky3(c: [[f64; 3]; 3]) -> Vec<f64> {
+        let mut l = vec![0.0; 9];
+        for j in 0..3 {
+            let d = c[j][j] - (0..j).map(|k| l[j * 3 + k] * l[j * 3 + k]).sum::<f64>();
+            l[j * 3 + j] = d.sqrt();
+            for i in j + 1..3 {
+                l[i * 3 + j] = (c[i][j] - (0..j).map(|k| l[i * 3 + k] * l[j * 3 + k]).sum::<f64>()) / l[j * 3 + j];
+            }
+        }
+        l
+    }
+
+    #[test]
+    fn the_estimate_averages_to_the_trivariate_probability() {
+        // Reference: the trivariate normal distribution function (closed_form, tested
+        // against Sheppard's orthant formula and Simpson quadrature), within 4 standard
+        // errors of the estimate's mean over 64k lanes, seed 11.
+        let sd = [0.3, 0.4, 0.25];
+        let rho = [[1.0, 0.5, -0.3], [0.5, 1.0, 0.6], [-0.3, 0.6, 1.0]];
+        let cov = std::array::from_fn(|i| std::array::from_fn(|j| rho[i][j] * sd[i] * sd[j]));
+        let factor = cholesky3(cov);
+        let x = [0.1, -0.05, 0.02];
+        let h = [0.0, -0.2, 0.1];
+        for above in [true, false] {
+            let terms: Vec<(usize, f64)> = (0..3).map(|i| (i, h[i])).collect();
+            let (mean, se) = mean_estimate(&terms, above, &x, &factor, 1 << 16);
+            // P(all Yᵢ ≥ hᵢ) = Φ₃(−b; ρ) with bᵢ = (hᵢ − xᵢ)/sdᵢ; below: Φ₃(b; ρ).
+            let b: [f64; 3] = std::array::from_fn(|i| (h[i] - x[i]) / sd[i] * if above { -1.0 } else { 1.0 });
+            let want = trivariate_norm_cdf(b, rho[0][1], rho[0][2], rho[1][2]).unwrap();
+            assert!((mean - want).abs() < 4.0 * se, "above {above}: {mean} ± {se} for {want}");
+            // Far less noise than an indicator's (√(p(1−p)) per draw).
+            assert!(se * ((1 << 16) as f64).sqrt() < 0.25 * (want * (1.0 - want)).sqrt(), "se {se}");
+        }
+    }
+
+    #[test]
+    fn a_term_without_variance_of_its_own_is_decided_by_the_others() {
+        // The second term is the first asset again (a perfectly correlated return): above
+        // both thresholds is above the higher one, below both is below the lower one, each
+        // a one-asset probability (Φ, exact). Below, the second term is always met once
+        // the first is drawn below its threshold: no noise at all. Above, within 4 SE.
+        let factor = [0.3, 0.0, 0.3, 0.0];
+        let terms = [(0, 0.1), (1, 0.2)];
+        let x = [0.05, 0.05];
+        let (mean, se) = mean_estimate(&terms, true, &x, &factor, 1 << 16);
+        let want = norm_cdf(-(0.2 - 0.05) / 0.3);
+        assert!((mean - want).abs() < 4.0 * se, "above: {mean} ± {se} for {want}");
+        let (mean, se) = mean_estimate(&terms, false, &x, &factor, 4096);
+        let want = norm_cdf((0.1 - 0.05) / 0.3);
+        assert!((mean - want).abs() < 1e-12 && se < 1e-9, "below: {mean} ± {se} for {want}");
+    }
+}
