@@ -155,7 +155,16 @@ fn a_one_asset_autocall_with_a_barrier_at_maturity_matches_its_bivariate_closed_
 /// Prices `body` on the validation market with controls and without (same seed), checks
 /// that the controls include each of `wants`, that both prices are within 4 standard
 /// errors of `exact`, and that the controls at least halve the standard error.
-fn with_and_without_controls(tag: &str, underlyings: &str, body: &str, paths: &str, wants: &[&str], exact: f64) {
+/// Prices `body` with and without controls against `exact` (4 SE each), checks the
+/// controls named in `wants` are used and halve the SE at least; returns both SEs.
+fn with_and_without_controls(
+    tag: &str,
+    underlyings: &str,
+    body: &str,
+    paths: &str,
+    wants: &[&str],
+    exact: f64,
+) -> (f64, f64) {
     let v = price_with(tag, underlyings, body, None, &["--paths", paths]);
     let names = controls(&v);
     for want in wants {
@@ -167,6 +176,7 @@ fn with_and_without_controls(tag: &str, underlyings: &str, body: &str, paths: &s
     let (p0, se0) = price_se(&plain);
     assert_within(&format!("{tag}, no controls"), p0, se0, exact, 4.0);
     assert!(se < 0.5 * se0, "{tag}: controlled {se} vs plain {se0}");
+    (se, se0)
 }
 
 #[test]
@@ -229,4 +239,43 @@ fn digitals_on_four_assets_are_valued_when_the_product_ends_three_assets_at_most
     let ((p, se), (p0, se0)) = (price_se(&v), price_se(&plain));
     assert_within("four-asset digitals, controlled vs plain", p, (se * se + se0 * se0).sqrt(), p0, 4.0);
     assert!(se < se0, "controlled {se} vs plain {se0}");
+}
+
+#[test]
+fn coupons_on_every_date_match_the_sum_of_bivariate_probabilities() {
+    // Pays a coupon of 5 on each quarter to 1y while both PAIRA and PAIRB are at or above
+    // 90%, plus 10 times a call on PAIRA struck at its spot at 1y; it ends (paying 100)
+    // if both reach 500%, which cannot happen here in practice (PAIRA alone has a 7e-15
+    // chance at 1y): the price is
+    //   Σₖ 5·e^{−r tₖ}·P(x_A(tₖ) ≥ ln 0.9, x_B(tₖ) ≥ ln 0.9) + 10·C_BS(S₀ = K = 1, 1y)
+    // with x(t) = ln S(t)/S(0) ~ N(μt, σ²t), μ = r − q − σ²/2, correlation ρ: bivariate
+    // normal probabilities (src/closed_form, checked against published tables) and
+    // Black–Scholes (Hull's worked examples, in src/closed_form). The product can end
+    // early, so the last date's event also gets a control read on each earlier date, the
+    // sum of its discounted indicators, whose mean is the same kind of sum: a wrong date,
+    // discount or probability in that mean moves the controlled price off the closed form.
+    use pathfold::closed_form::{black_scholes, OptionKind};
+    let (r, rho) = (0.08, 0.5);
+    let ((sa, qa), (sb, qb)) = ((0.20, 0.01), (0.30, 0.03));
+    let (mu_a, mu_b) = (r - qa - 0.5 * sa * sa, r - qb - 0.5 * sb * sb);
+    let both = |t: f64| {
+        let za = ((0.9f64).ln() - mu_a * t) / (sa * t.sqrt());
+        let zb = ((0.9f64).ln() - mu_b * t) / (sb * t.sqrt());
+        bivariate_norm_cdf(-za, -zb, rho)
+    };
+    let coupons: f64 = [0.25, 0.5, 0.75, 1.0].iter().map(|&t| 5.0 * (-r * t).exp() * both(t)).sum();
+    let call = 10.0 * black_scholes(OptionKind::Call, 1.0, 1.0, 1.0, r, r - qa, sa);
+    let exact = coupons + call;
+    let body = "dates obs = 0.25y, 0.5y, 0.75y, 1y\nfor each t in obs {\n let worst = min(perf(PAIRA), perf(PAIRB))\n if worst >= 500% {\n  pay 100\n  end\n }\n if worst >= 90% {\n  pay 5\n }\n if t == last(obs) {\n  pay 10 * max(perf(PAIRA) - 1, 0)\n }\n}\n";
+    let want = "PAIRA, PAIRB all at or above 90% of spot, summed over 3 earlier dates";
+    let (se, se0) = with_and_without_controls("dated", "PAIRA, PAIRB", body, "200000", &[want], exact);
+    // The coupons before the last date are what only the dated control follows: with its
+    // mean wrong it would be left out (its paths miss the mean) and the error stay large.
+    assert!(se < 0.05 * se0, "dated: controlled {se} vs plain {se0}");
+    // Without antithetic pairs the paths that end stop being simulated: no control reads
+    // the dates after a path's end, and the price still agrees.
+    let v = price_with("dated", "PAIRA, PAIRB", body, None, &["--paths", "200000", "--no-antithetic"]);
+    assert!(!controls(&v).iter().any(|c| c.contains("earlier dates")), "{v}");
+    let (p, se) = price_se(&v);
+    assert_within("dated, no pairs", p, se, exact, 4.0);
 }

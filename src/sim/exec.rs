@@ -48,8 +48,8 @@ pub struct Workspace {
 /// can come before its last date, nothing reads a path between dates or after its end
 /// (no continuously monitored window, value along the path, early-exercise rule, log
 /// levels, or control other than the stopped hedges and the last date's levels, which a
-/// stopped path is given by one exact step), and no operation before an `end` reads a
-/// date after the `end`'s own ([`end_dates`]).
+/// stopped path is given by one exact step; no dated digitals, which read every date),
+/// and no operation before an `end` reads a date after the `end`'s own ([`end_dates`]).
 pub fn stops_early(p: &Program, controls: &Controls) -> bool {
     let ends_early = p.ops.iter().any(|op| matches!(op, Op::End { mask, .. } if *mask != ALIVE));
     ends_early
@@ -57,6 +57,7 @@ pub fn stops_early(p: &Program, controls: &Controls) -> bool {
         && p.path_values.is_empty()
         && p.choices.is_empty()
         && !controls.needs_logs()
+        && !controls.reads_every_date()
         && p.grid.len() > 1
         && end_dates(p).is_some()
 }

@@ -332,7 +332,7 @@ impl Drop for Lease<'_> {
 impl<'a> Run<'a> {
     fn new(program: &'a Program, settings: &'a Settings) -> Self {
         let model = paths::Model::new(program);
-        let controls = if settings.control_variates { Controls::new(program) } else { Controls::none() };
+        let controls = Controls::for_run(program, settings);
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
         Run {

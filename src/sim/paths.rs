@@ -826,6 +826,12 @@ enum ControlKind {
     /// stopped hedges). `rest[k]` = (drift, standard deviation) of `ln S` from grid
     /// index `k` to the last.
     StoppedDigital { asset: usize, threshold: f64, log_threshold: f64, rest: Vec<(f64, f64)> },
+    /// A last-date event ([`ControlKind::Digital`]) read on each earlier date the product
+    /// can end on, `dates` = (grid index, discount factor): the sum of the discounted
+    /// indicators. Its mean is the sum of the discounted normal orthant probabilities of
+    /// those dates. It reads every date of every path, so it is made only for runs that
+    /// simulate every path to its last date ([`Controls::for_run`]).
+    Dated { thresholds: Vec<(usize, f64)>, above: bool, dates: Vec<(usize, f64)> },
 }
 
 /// The most stopped digitals one program gets: each costs a normal probability on every
@@ -987,10 +993,78 @@ impl Hedge {
 
 /// The discount factor of the last grid date.
 fn discount_to_last(p: &Program) -> f64 {
-    let last = p.grid.len() - 1;
+    discount_to(p, p.grid.len() - 1)
+}
+
+/// The discount factor of grid date `k`.
+fn discount_to(p: &Program, k: usize) -> f64 {
     match &p.curves {
-        Some(c) => c.discount[last],
-        None => (-p.rate * p.grid[last]).exp(),
+        Some(c) => c.discount[k],
+        None => (-p.rate * p.grid[k]).exp(),
+    }
+}
+
+/// The probability under the model that every listed asset's level on grid date `k` is
+/// at or above its threshold (`above`), or every one below: the log levels are jointly
+/// normal with the model's step drifts and variances summed and covariances
+/// `ρₐᵦ·Σⱼ sⱼₐ·sⱼᵦ` from the per-step scales, so it is a normal orthant probability.
+/// `None` where there is no closed form here (an asset without variance, a degenerate
+/// correlation).
+fn event_chance(model: &Model, thresholds: &[(usize, f64)], above: bool, k: usize) -> Option<f64> {
+    let na = model.log_spot.len();
+    let rho = |a: usize, b: usize| -> f64 {
+        let (ra, rb) = (&model.cholesky[a], &model.cholesky[b]);
+        ra.iter().zip(rb).map(|(x, y)| x * y).sum()
+    };
+    let mut bounds = Vec::with_capacity(thresholds.len());
+    let mut sd = Vec::with_capacity(thresholds.len());
+    for &(a, h) in thresholds {
+        if a >= na {
+            return None;
+        }
+        let mean = model.log_spot[a] + model.total_drift[k][a];
+        let v = model.total_variance[k][a];
+        if !(v > 0.0 && h > 0.0) {
+            return None;
+        }
+        let z = (h.ln() - mean) / v.sqrt();
+        bounds.push(if above { -z } else { z });
+        sd.push(v.sqrt());
+    }
+    let corr: Vec<Vec<f64>> = thresholds
+        .iter()
+        .enumerate()
+        .map(|(i, &(a, _))| {
+            thresholds
+                .iter()
+                .enumerate()
+                .map(|(j, &(b, _))| {
+                    if i == j {
+                        return 1.0;
+                    }
+                    let cov: f64 = (1..=k).map(|s| model.scale[s][a] * model.scale[s][b]).sum::<f64>() * rho(a, b);
+                    (cov / (sd[i] * sd[j])).clamp(-1.0, 1.0)
+                })
+                .collect()
+        })
+        .collect();
+    normal_orthant(&bounds, &corr)
+}
+
+/// A digital's name: the assets, the side and the thresholds in percent of spot.
+fn event_name(p: &Program, thresholds: &[(usize, f64)], above: bool) -> String {
+    let names: Vec<&str> = thresholds.iter().map(|&(a, _)| p.assets[a].name.as_str()).collect();
+    let side = if above { "at or above" } else { "below" };
+    let level = |&(a, h): &(usize, f64)| 100.0 * h / p.assets[a].spot;
+    let same = thresholds.iter().all(|t| (level(t) - level(&thresholds[0])).abs() < 1e-9);
+    match (names.len(), same) {
+        (1, _) => format!("{} {side} {}% of spot", names[0], round_percent(level(&thresholds[0]))),
+        (_, true) => format!("{} all {side} {}% of spot", names.join(", "), round_percent(level(&thresholds[0]))),
+        (_, false) => format!(
+            "{} all {side} {}% of spot",
+            names.join(", "),
+            thresholds.iter().map(|t| round_percent(level(t))).collect::<Vec<_>>().join(" / ")
+        ),
     }
 }
 
@@ -1009,63 +1083,10 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
     }
     let model = Model::new(p);
     let last = p.grid.len() - 1;
-    let na = p.assets.len();
-    // The correlation matrix of the normals each step draws: L·Lᵀ.
     let mut stopped: Vec<(usize, f64)> = Vec::new();
-    let rho = |a: usize, b: usize| -> f64 {
-        let (ra, rb) = (&model.cholesky[a], &model.cholesky[b]);
-        ra.iter().zip(rb).map(|(x, y)| x * y).sum()
-    };
     for e in events {
-        let mut bounds = Vec::with_capacity(e.thresholds.len());
-        let mut sd = Vec::with_capacity(e.thresholds.len());
-        for &(a, h) in &e.thresholds {
-            let mean = model.log_spot[a] + model.total_drift[last][a];
-            let v = model.total_variance[last][a];
-            if !(v > 0.0 && h > 0.0 && a < na) {
-                bounds.clear();
-                break;
-            }
-            let z = (h.ln() - mean) / v.sqrt();
-            bounds.push(if e.above { -z } else { z });
-            sd.push(v.sqrt());
-        }
-        if bounds.len() != e.thresholds.len() {
-            continue;
-        }
-        let corr: Vec<Vec<f64>> = e
-            .thresholds
-            .iter()
-            .enumerate()
-            .map(|(i, &(a, _))| {
-                e.thresholds
-                    .iter()
-                    .enumerate()
-                    .map(|(j, &(b, _))| {
-                        if i == j {
-                            return 1.0;
-                        }
-                        let cov: f64 =
-                            (1..=last).map(|k| model.scale[k][a] * model.scale[k][b]).sum::<f64>() * rho(a, b);
-                        (cov / (sd[i] * sd[j])).clamp(-1.0, 1.0)
-                    })
-                    .collect()
-            })
-            .collect();
-        let Some(probability) = normal_orthant(&bounds, &corr) else { continue };
-        let names: Vec<&str> = e.thresholds.iter().map(|&(a, _)| p.assets[a].name.as_str()).collect();
-        let side = if e.above { "at or above" } else { "below" };
-        let level = |&(a, h): &(usize, f64)| 100.0 * h / p.assets[a].spot;
-        let same = e.thresholds.iter().all(|t| (level(t) - level(&e.thresholds[0])).abs() < 1e-9);
-        let name = match (names.len(), same) {
-            (1, _) => format!("{} {side} {}% of spot", names[0], round_percent(level(&e.thresholds[0]))),
-            (_, true) => format!("{} all {side} {}% of spot", names.join(", "), round_percent(level(&e.thresholds[0]))),
-            (_, false) => format!(
-                "{} all {side} {}% of spot",
-                names.join(", "),
-                e.thresholds.iter().map(|t| round_percent(level(t))).collect::<Vec<_>>().join(" / ")
-            ),
-        };
+        let Some(probability) = event_chance(&model, &e.thresholds, e.above, last) else { continue };
+        let name = event_name(p, &e.thresholds, e.above);
         list.push(Control {
             name,
             kind: ControlKind::Digital { thresholds: e.thresholds.clone(), above: e.above },
@@ -1356,6 +1377,72 @@ impl Controls {
         Controls::default()
     }
 
+    /// The controls of a run with `settings`: none without control variates. With
+    /// antithetic pairs or quasi-random points every path is simulated to its last date
+    /// (a path and its mirror seldom both end early), so a product that can end early
+    /// also gets its last date's digitals read on each earlier date it can end on
+    /// ([`ControlKind::Dated`]).
+    pub fn for_run(p: &Program, settings: &super::Settings) -> Self {
+        if !settings.control_variates {
+            return Controls::none();
+        }
+        let mut controls = Controls::new(p);
+        if settings.antithetic || settings.sampler == super::Sampler::Sobol {
+            controls.add_dated(p);
+        }
+        controls
+    }
+
+    /// Appends, for each last-date digital of a product that can end early, the sum of
+    /// its discounted indicators on the earlier dates the product can end on (after the
+    /// valuation date), when every one of those dates has its probability in closed form.
+    fn add_dated(&mut self, p: &Program) {
+        let Some(hedge) = &self.hedge else { return };
+        let last = p.grid.len() - 1;
+        let mut dates: Vec<usize> = p
+            .ops
+            .iter()
+            .zip(&hedge.known_from)
+            .filter(|(op, _)| matches!(op, Op::End { mask, .. } if *mask != ALIVE))
+            .map(|(_, &k)| k as usize)
+            .filter(|&k| k > p.past && k < last)
+            .collect();
+        dates.sort_unstable();
+        dates.dedup();
+        if dates.is_empty() {
+            return;
+        }
+        let model = Model::new(p);
+        let mut dated = Vec::new();
+        for c in &self.list {
+            let ControlKind::Digital { thresholds, above } = &c.kind else { continue };
+            let chances: Option<Vec<f64>> =
+                dates.iter().map(|&k| event_chance(&model, thresholds, *above, k)).collect();
+            let Some(chances) = chances else { continue };
+            let discounted: Vec<(usize, f64)> = dates.iter().map(|&k| (k, discount_to(p, k))).collect();
+            let mean = discounted.iter().zip(&chances).map(|(&(_, d), q)| d * q).sum();
+            dated.push(Control {
+                name: format!(
+                    "{}, summed over {} earlier date{}",
+                    event_name(p, thresholds, *above),
+                    dates.len(),
+                    if dates.len() == 1 { "" } else { "s" }
+                ),
+                kind: ControlKind::Dated { thresholds: thresholds.clone(), above: *above, dates: discounted },
+                discount: 1.0,
+                mean,
+                scale: 1.0,
+            });
+        }
+        self.list.extend(dated);
+    }
+
+    /// Whether a control reads the levels of every date of every path, also after the
+    /// path has ended ([`ControlKind::Dated`]).
+    pub fn reads_every_date(&self) -> bool {
+        self.list.iter().any(|c| matches!(c.kind, ControlKind::Dated { .. }))
+    }
+
     /// For each underlying: its discounted last level (expectation `S₀e^{−qT}`) and the
     /// at-the-money-forward call on it (Black–Scholes). For each averaging of an
     /// underlying's levels: the geometric mean over the same fixings and the call on it
@@ -1584,8 +1671,9 @@ impl Controls {
         let na = p.assets.len();
         let first =
             self.list.iter().position(|c| matches!(c.kind, ControlKind::Hedge { .. })).unwrap_or(self.list.len());
-        let per_asset = (self.list.len() - first) / na.max(1);
-        for col in &mut columns[first..self.list.len()] {
+        let hedges = self.list.iter().filter(|c| matches!(c.kind, ControlKind::Hedge { .. })).count();
+        let per_asset = hedges / na.max(1);
+        for col in &mut columns[first..first + hedges] {
             col[..lanes].fill(0.0);
         }
         if per_asset == 0 {
@@ -1690,6 +1778,25 @@ impl Controls {
             }
             // Filled for all assets at once by `hedge_values`; by `stopped_values`.
             ControlKind::Hedge { .. } | ControlKind::StoppedDigital { .. } => {}
+            ControlKind::Dated { thresholds, above, dates } => {
+                let out = &mut out[..lanes];
+                out.fill(0.0);
+                let mut hit = [0.0f64; super::BLOCK];
+                let hit = &mut hit[..lanes];
+                for &(k, discount) in dates {
+                    hit.fill(discount);
+                    for &(a, h) in thresholds {
+                        let s = &paths.levels[cell(k, a)..][..lanes];
+                        for (o, &s) in hit.iter_mut().zip(s) {
+                            let keep = if *above { s >= h } else { s < h };
+                            *o = if keep { *o } else { 0.0 };
+                        }
+                    }
+                    for (o, h) in out.iter_mut().zip(&*hit) {
+                        *o += h;
+                    }
+                }
+            }
             ControlKind::Digital { thresholds, above } => {
                 let out = &mut out[..lanes];
                 out.fill(c.discount);
