@@ -167,4 +167,42 @@ mod tests {
         let want = norm_cdf((0.1 - 0.05) / 0.3);
         assert!((mean - want).abs() < 1e-12 && se < 1e-9, "below: {mean} ± {se} for {want}");
     }
+
+    #[test]
+    fn every_estimate_is_a_probability_whatever_the_inputs() {
+        // Extreme but finite inputs: returns far past or short of their thresholds, tiny
+        // and huge spreads, zero pivots, uniforms at the ends of (0, 1). Every estimate
+        // must be a number in [0, 1], never NaN (a NaN control would poison the regression).
+        let mut rng = Pcg64::seed_from_u64(3);
+        let pick = |rng: &mut Pcg64, values: &[f64]| values[rng.gen_range(0..values.len())];
+        let spreads = [0.0, 1e-300, 1e-12, 1e-3, 0.3, 5.0, 1e6];
+        let places = [-1e6, -40.0, -8.0, -1.0, 0.0, 1e-15, 1.0, 8.0, 40.0, 1e6];
+        let uniforms = [f64::MIN_POSITIVE, 1e-300, 1e-12, 0.5, 1.0 - 1e-12, 1.0 - f64::EPSILON / 2.0];
+        for _ in 0..2000 {
+            let n = rng.gen_range(1..=MOST_TERMS);
+            let terms: Vec<(usize, f64)> = (0..n).map(|i| (rng.gen_range(0..=i), pick(&mut rng, &places))).collect();
+            let x: Vec<[f64; CHUNK]> =
+                (0..MOST_TERMS).map(|_| std::array::from_fn(|_| pick(&mut rng, &places))).collect();
+            let factor: Vec<[f64; CHUNK]> = (0..n * n)
+                .map(|t| {
+                    let (i, j) = (t / n, t % n);
+                    std::array::from_fn(|_| {
+                        if j > i {
+                            0.0
+                        } else {
+                            pick(&mut rng, &spreads) * if j < i && rng.gen() { -1.0 } else { 1.0 }
+                        }
+                    })
+                })
+                .collect();
+            let u: Vec<[f64; CHUNK]> =
+                (0..MOST_TERMS).map(|_| std::array::from_fn(|_| pick(&mut rng, &uniforms))).collect();
+            let mut out = [0.0; CHUNK];
+            let above = rng.gen();
+            chunk(&terms, above, &x, &factor, &u, CHUNK, &mut out);
+            for o in out {
+                assert!((0.0..=1.0).contains(&o), "{o} for {terms:?}, above {above}");
+            }
+        }
+    }
 }
