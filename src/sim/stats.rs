@@ -79,7 +79,7 @@ impl Moments {
     }
 
     /// Two passes: every mean, then every co-moment `(i, j)` with `i ≤ j`. The sums of
-    /// sums are taken two at a time ([`sum_two`]), the co-moments four at a time
+    /// sums are taken two at a time ([`sum_two`]), the co-moments two at a time
     /// ([`co_moments`]), `a`'s then `b`'s; `WIDE` only when the CPU has AVX2.
     #[inline(always)]
     fn fill_joint_generic<const WIDE: bool>(
@@ -126,6 +126,23 @@ impl Moments {
             k += count;
         }
         // Pass 2: the co-moments `(i, j)`, `i ≤ j`, of `a` then of `b`.
+        if da <= 1 && db <= 1 {
+            // One column each at most (no controls): the squared deviations summed straight
+            // from the samples, both sums side by side, with the arithmetic of the general
+            // case (the same centred value, the same product, the same order).
+            let ca = a_columns.first().copied().unwrap_or(&[]);
+            let cb = b_columns.first().copied().unwrap_or(&[]);
+            let ma = a.mean.first().copied().unwrap_or(0.0);
+            let mb = b.as_deref().and_then(|b| b.mean.first().copied()).unwrap_or(0.0);
+            let (sa, sb) = squares_pair::<WIDE>(ca, ma, cb, mb);
+            if da == 1 {
+                a.m2[0] = sa;
+            }
+            if let (Some(b), 1) = (b, db) {
+                b.m2[0] = sb;
+            }
+            return;
+        }
         // The scratch is taken out of its cell, so the sums run here, in this function's
         // instruction set (a closure given to the cell would not inherit AVX2).
         let mut scratch = SCRATCH.with(|s| s.take());
@@ -199,14 +216,15 @@ thread_local! {
     static SCRATCH: std::cell::RefCell<Vec<f64>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
-/// Co-moments taken together, four at a time.
-const TILE: usize = 4;
+/// Co-moments taken together, two at a time: with their sixteen partial sums each, eight
+/// registers of four lanes, half of what the CPU has.
+const TILE: usize = 2;
 
 /// The co-moments `m2[i·d + j] = Σ (xᵢ − mᵢ)(xⱼ − mⱼ)` of the columns (one length), each
-/// summed as [`centred_dot`] sums it (four interleaved partial sums, then the tail), so
-/// the same bits. The columns are centred once, into `scratch`; then each column's
-/// co-moments with the next four are summed side by side: one load of its centred values
-/// serves four products, and the four chains of additions are independent.
+/// summed as [`centred_dot`] sums it (sixteen interleaved partial sums, [`fold`]ed, then
+/// the tail), so the same bits. The columns are centred once, into `scratch`; then each
+/// column's co-moments with the next two are summed side by side: one load of its centred
+/// values serves two products.
 #[inline(always)]
 fn co_moments<const WIDE: bool>(columns: &[&[f64]], mean: &[f64], m2: &mut [f64], scratch: &mut Vec<f64>) {
     let d = columns.len();
@@ -261,7 +279,7 @@ fn co_moments<const WIDE: bool>(columns: &[&[f64]], mean: &[f64], m2: &mut [f64]
             }
             for (u, acc) in acc.iter().enumerate().take(t) {
                 let cj = column(j + u);
-                let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+                let mut s = fold(acc);
                 for k in whole..n {
                     s += ci[k] * cj[k];
                 }
@@ -274,12 +292,24 @@ fn co_moments<const WIDE: bool>(columns: &[&[f64]], mean: &[f64], m2: &mut [f64]
 }
 
 /// Lanes of the partial sums below. A plain left-to-right sum is one long chain of
-/// dependent additions; four independent chains run in parallel and vectorise. The order
-/// is fixed, so the bits are too.
-const SUM_LANES: usize = 4;
+/// dependent additions, each waiting for the last (four cycles a step on current CPUs);
+/// sixteen independent chains, four registers of four lanes with AVX2, keep the adder busy
+/// instead (with four, one register, a block's sums were a sixth of a one-step European's
+/// time). The order is fixed, so the bits are too.
+const SUM_LANES: usize = 16;
 
-/// The sum of `xs`, in a fixed order: four interleaved partial sums, then the tail. With
-/// AVX2 the partial sums are the lanes of one register: the same additions, the same bits.
+/// How the sixteen partial sums are added up: lane by lane, the four groups of four as
+/// `(g₀ + g₁) + (g₂ + g₃)` (what four registers do), then those four lanes as
+/// `(v₀ + v₁) + (v₂ + v₃)`.
+#[inline(always)]
+fn fold(acc: &[f64; SUM_LANES]) -> f64 {
+    let v: [f64; 4] = std::array::from_fn(|k| (acc[k] + acc[4 + k]) + (acc[8 + k] + acc[12 + k]));
+    (v[0] + v[1]) + (v[2] + v[3])
+}
+
+/// The sum of `xs`, in a fixed order: sixteen interleaved partial sums, [`fold`]ed, then
+/// the tail. With AVX2 the partial sums are the lanes of four registers: the same
+/// additions, the same bits.
 #[inline]
 pub fn sum(xs: &[f64]) -> f64 {
     #[cfg(target_arch = "x86_64")]
@@ -303,7 +333,7 @@ fn plain_sum(xs: &[f64]) -> f64 {
             acc[k] += c[k];
         }
     }
-    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    let mut s = fold(&acc);
     for x in tail {
         s += x;
     }
@@ -330,7 +360,7 @@ fn sum_two(a: &[f64], b: &[f64]) -> (f64, f64) {
                 acc[k] += c[k];
             }
         }
-        let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+        let mut s = fold(&acc);
         for x in &xs[whole..] {
             s += x;
         }
@@ -339,7 +369,50 @@ fn sum_two(a: &[f64], b: &[f64]) -> (f64, f64) {
     (finish(acc_a, a), finish(acc_b, b))
 }
 
-/// [`sum_two`], four lanes to a register when `WIDE` (only ever set after checking the
+/// `Σ (x − ma)²` over `a` and `Σ (x − mb)²` over `b`, each summed as [`centred_dot`]
+/// sums a column with itself: the same bits as [`co_moments`] of one column. The two
+/// chains run side by side while both have whole chunks left.
+#[inline(always)]
+fn squares_two(a: &[f64], ma: f64, b: &[f64], mb: f64) -> (f64, f64) {
+    let (mut acc_a, mut acc_b) = ([0.0; SUM_LANES], [0.0; SUM_LANES]);
+    let both = (a.len() / SUM_LANES).min(b.len() / SUM_LANES) * SUM_LANES;
+    for (ca, cb) in a[..both].chunks_exact(SUM_LANES).zip(b[..both].chunks_exact(SUM_LANES)) {
+        for k in 0..SUM_LANES {
+            let (u, v) = (ca[k] - ma, cb[k] - mb);
+            acc_a[k] += u * u;
+            acc_b[k] += v * v;
+        }
+    }
+    let finish = |mut acc: [f64; SUM_LANES], xs: &[f64], m: f64| {
+        let whole = xs.len() - xs.len() % SUM_LANES;
+        for c in xs[both..whole].chunks_exact(SUM_LANES) {
+            for k in 0..SUM_LANES {
+                let u = c[k] - m;
+                acc[k] += u * u;
+            }
+        }
+        let mut s = fold(&acc);
+        for x in &xs[whole..] {
+            let u = x - m;
+            s += u * u;
+        }
+        s
+    };
+    (finish(acc_a, a, ma), finish(acc_b, b, mb))
+}
+
+/// [`squares_two`], in registers of four lanes when `WIDE`.
+#[inline(always)]
+fn squares_pair<const WIDE: bool>(a: &[f64], ma: f64, b: &[f64], mb: f64) -> (f64, f64) {
+    #[cfg(target_arch = "x86_64")]
+    if WIDE {
+        // SAFETY: `WIDE` is only set by a caller that checked the CPU for AVX2.
+        return unsafe { wide::squares_two(a, ma, b, mb) };
+    }
+    squares_two(a, ma, b, mb)
+}
+
+/// [`sum_two`], in registers of four lanes when `WIDE` (only ever set after checking the
 /// CPU for AVX2).
 #[inline(always)]
 fn sum_pair<const WIDE: bool>(a: &[f64], b: &[f64]) -> (f64, f64) {
@@ -351,7 +424,7 @@ fn sum_pair<const WIDE: bool>(a: &[f64], b: &[f64]) -> (f64, f64) {
     sum_two(a, b)
 }
 
-/// [`sum`], four lanes to a register when `WIDE`.
+/// [`sum`], in registers of four lanes when `WIDE`.
 #[inline(always)]
 fn sum_one<const WIDE: bool>(xs: &[f64]) -> f64 {
     #[cfg(target_arch = "x86_64")]
@@ -362,8 +435,8 @@ fn sum_one<const WIDE: bool>(xs: &[f64]) -> f64 {
     plain_sum(xs)
 }
 
-/// The pairs of sums with AVX2 registers: the four partial sums of [`sum`] are the four
-/// lanes of one register, and every lane does the same additions, subtractions and
+/// The pairs of sums with AVX2 registers: the sixteen partial sums of [`sum`] are the lanes
+/// of four registers, and every lane does the same additions, subtractions and
 /// multiplications in the same order as the plain code (no fused multiply-add), so the
 /// bits are the same.
 #[cfg(target_arch = "x86_64")]
@@ -372,53 +445,70 @@ mod wide {
 
     use super::SUM_LANES;
 
-    /// `(l₀ + l₁) + (l₂ + l₃)` of the lanes, then the `tail` added one by one: how
-    /// [`super::sum`] finishes.
+    /// Registers of four lanes that hold the partial sums of one sum.
+    const REGISTERS: usize = SUM_LANES / 4;
+
+    /// Partial sums: register `r` holds lanes `4r..4r + 4`.
+    type Partial = [__m256d; REGISTERS];
+
     #[inline]
     #[target_feature(enable = "avx2")]
-    unsafe fn finish(acc: __m256d, tail: impl Iterator<Item = f64>) -> f64 {
-        let mut l = [0.0; SUM_LANES];
-        _mm256_storeu_pd(l.as_mut_ptr(), acc);
-        let mut s = (l[0] + l[1]) + (l[2] + l[3]);
-        for x in tail {
-            s += x;
-        }
-        s
+    unsafe fn zero() -> Partial {
+        [_mm256_setzero_pd(); REGISTERS]
     }
 
-    /// The partial sums of four co-moments of centred columns, `ci` with each of `cj`,
-    /// over the first `whole` samples: each is [`super::co_moments`]' chain, in one register.
+    /// The partial sums, lane by lane.
     #[inline]
     #[target_feature(enable = "avx2")]
-    pub(super) unsafe fn dot_tile(ci: &[f64], cj: [&[f64]; 4], whole: usize) -> [[f64; 4]; 4] {
+    unsafe fn lanes(acc: &Partial) -> [f64; SUM_LANES] {
+        let mut l = [0.0; SUM_LANES];
+        for (r, a) in acc.iter().enumerate() {
+            _mm256_storeu_pd(l.as_mut_ptr().add(4 * r), *a);
+        }
+        l
+    }
+
+    /// `acc += x[c..c + 16]`, lane by lane.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    unsafe fn add_chunk(acc: &mut Partial, x: *const f64) {
+        for (r, a) in acc.iter_mut().enumerate() {
+            *a = _mm256_add_pd(*a, _mm256_loadu_pd(x.add(4 * r)));
+        }
+    }
+
+    /// The partial sums of two co-moments of centred columns, `ci` with each of `cj`,
+    /// over the first `whole` samples: each is [`super::co_moments`]' sixteen chains, in
+    /// four registers.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    pub(super) unsafe fn dot_tile(ci: &[f64], cj: [&[f64]; 2], whole: usize) -> [[f64; SUM_LANES]; 2] {
         let (ci, cj) = (&ci[..whole], cj.map(|c| &c[..whole]));
-        let mut acc = [_mm256_setzero_pd(); 4];
+        let mut acc = [zero(), zero()];
         for c in (0..whole).step_by(SUM_LANES) {
-            let x = _mm256_loadu_pd(ci.as_ptr().add(c));
-            for (a, y) in acc.iter_mut().zip(cj) {
-                *a = _mm256_add_pd(*a, _mm256_mul_pd(x, _mm256_loadu_pd(y.as_ptr().add(c))));
+            for r in 0..REGISTERS {
+                let x = _mm256_loadu_pd(ci.as_ptr().add(c + 4 * r));
+                for (a, y) in acc.iter_mut().zip(cj) {
+                    a[r] = _mm256_add_pd(a[r], _mm256_mul_pd(x, _mm256_loadu_pd(y.as_ptr().add(c + 4 * r))));
+                }
             }
         }
-        acc.map(|a| {
-            let mut l = [0.0; SUM_LANES];
-            _mm256_storeu_pd(l.as_mut_ptr(), a);
-            l
-        })
+        [lanes(&acc[0]), lanes(&acc[1])]
     }
 
     /// [`dot_tile`] for one co-moment.
     #[inline]
     #[target_feature(enable = "avx2")]
-    pub(super) unsafe fn dot_one(ci: &[f64], cj: &[f64], whole: usize) -> [f64; 4] {
+    pub(super) unsafe fn dot_one(ci: &[f64], cj: &[f64], whole: usize) -> [f64; SUM_LANES] {
         let (ci, cj) = (&ci[..whole], &cj[..whole]);
-        let mut acc = _mm256_setzero_pd();
+        let mut acc = zero();
         for c in (0..whole).step_by(SUM_LANES) {
-            let x = _mm256_loadu_pd(ci.as_ptr().add(c));
-            acc = _mm256_add_pd(acc, _mm256_mul_pd(x, _mm256_loadu_pd(cj.as_ptr().add(c))));
+            for (r, a) in acc.iter_mut().enumerate() {
+                let x = _mm256_loadu_pd(ci.as_ptr().add(c + 4 * r));
+                *a = _mm256_add_pd(*a, _mm256_mul_pd(x, _mm256_loadu_pd(cj.as_ptr().add(c + 4 * r))));
+            }
         }
-        let mut l = [0.0; SUM_LANES];
-        _mm256_storeu_pd(l.as_mut_ptr(), acc);
-        l
+        lanes(&acc)
     }
 
     /// [`super::sum_two`].
@@ -426,24 +516,71 @@ mod wide {
     #[target_feature(enable = "avx2")]
     pub(super) unsafe fn sum_two(a: &[f64], b: &[f64]) -> (f64, f64) {
         let both = (a.len() / SUM_LANES).min(b.len() / SUM_LANES) * SUM_LANES;
-        let (mut acc_a, mut acc_b) = (_mm256_setzero_pd(), _mm256_setzero_pd());
+        let (mut acc_a, mut acc_b) = (zero(), zero());
         for (ca, cb) in a[..both].chunks_exact(SUM_LANES).zip(b[..both].chunks_exact(SUM_LANES)) {
-            acc_a = _mm256_add_pd(acc_a, _mm256_loadu_pd(ca.as_ptr()));
-            acc_b = _mm256_add_pd(acc_b, _mm256_loadu_pd(cb.as_ptr()));
+            add_chunk(&mut acc_a, ca.as_ptr());
+            add_chunk(&mut acc_b, cb.as_ptr());
         }
         (rest(acc_a, &a[both..]), rest(acc_b, &b[both..]))
     }
 
-    /// `xs` (from a multiple of the lanes on) summed into `acc`.
+    /// [`super::squares_two`].
     #[inline]
     #[target_feature(enable = "avx2")]
-    unsafe fn rest(mut acc: __m256d, xs: &[f64]) -> f64 {
+    pub(super) unsafe fn squares_two(a: &[f64], ma: f64, b: &[f64], mb: f64) -> (f64, f64) {
+        let both = (a.len() / SUM_LANES).min(b.len() / SUM_LANES) * SUM_LANES;
+        let (mut acc_a, mut acc_b) = (zero(), zero());
+        let (va, vb) = (_mm256_set1_pd(ma), _mm256_set1_pd(mb));
+        for (ca, cb) in a[..both].chunks_exact(SUM_LANES).zip(b[..both].chunks_exact(SUM_LANES)) {
+            add_squares(&mut acc_a, ca.as_ptr(), va);
+            add_squares(&mut acc_b, cb.as_ptr(), vb);
+        }
+        (rest_squares(acc_a, &a[both..], ma), rest_squares(acc_b, &b[both..], mb))
+    }
+
+    /// The squared deviations of `xs` (from a multiple of the lanes on) summed into
+    /// `acc`, then [`super::fold`]ed and the tail's added one by one.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    unsafe fn rest_squares(mut acc: Partial, xs: &[f64], m: f64) -> f64 {
         let chunks = xs.chunks_exact(SUM_LANES);
         let tail = chunks.remainder();
         for c in chunks {
-            acc = _mm256_add_pd(acc, _mm256_loadu_pd(c.as_ptr()));
+            add_squares(&mut acc, c.as_ptr(), _mm256_set1_pd(m));
         }
-        finish(acc, tail.iter().copied())
+        let mut s = super::fold(&lanes(&acc));
+        for x in tail {
+            let u = x - m;
+            s += u * u;
+        }
+        s
+    }
+
+    /// `acc += (x[c..c + 16] − m)²`, lane by lane.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    unsafe fn add_squares(acc: &mut Partial, x: *const f64, m: __m256d) {
+        for (r, a) in acc.iter_mut().enumerate() {
+            let u = _mm256_sub_pd(_mm256_loadu_pd(x.add(4 * r)), m);
+            *a = _mm256_add_pd(*a, _mm256_mul_pd(u, u));
+        }
+    }
+
+    /// `xs` (from a multiple of the lanes on) summed into `acc`, then [`super::fold`]ed and
+    /// the tail added one by one: how [`super::sum`] finishes.
+    #[inline]
+    #[target_feature(enable = "avx2")]
+    unsafe fn rest(mut acc: Partial, xs: &[f64]) -> f64 {
+        let chunks = xs.chunks_exact(SUM_LANES);
+        let tail = chunks.remainder();
+        for c in chunks {
+            add_chunk(&mut acc, c.as_ptr());
+        }
+        let mut s = super::fold(&lanes(&acc));
+        for x in tail {
+            s += x;
+        }
+        s
     }
 }
 
@@ -459,7 +596,7 @@ fn centred_dot(x: &[f64], mx: f64, y: &[f64], my: f64) -> f64 {
             acc[k] += (cx[k] - mx) * (cy[k] - my);
         }
     }
-    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    let mut s = fold(&acc);
     for i in whole..n {
         s += (x[i] - mx) * (y[i] - my);
     }
@@ -610,8 +747,8 @@ mod tests {
 
     #[test]
     fn paired_and_wide_sums_give_the_bits_of_plain_sums() {
-        for na in 0..23 {
-            for nb in [0, 1, 3, 4, 9, 16, 22] {
+        for na in 0..40 {
+            for nb in [0, 1, 3, 4, 9, 16, 22, 33, 39] {
                 let (a, b) = (awkward(na, 0.1), awkward(nb, 2.3));
                 let reference = (plain_sum(&a).to_bits(), plain_sum(&b).to_bits());
                 let two = sum_two(&a, &b);
@@ -671,7 +808,7 @@ mod tests {
     #[test]
     fn interleaved_sum_matches_a_plain_sum_on_every_length() {
         // Exact on integers, so any order gives the same value: checks the tail handling.
-        for n in 0..20 {
+        for n in 0..40 {
             let xs: Vec<f64> = (0..n).map(f64::from).collect();
             assert_eq!(sum(&xs), f64::from(n * (n - 1).max(0) / 2), "n = {n}");
         }
