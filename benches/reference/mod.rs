@@ -3,8 +3,10 @@
 //!
 //! Each is the loop a careful engineer would write for that one payoff: no interpreter,
 //! no registers, the payoff inlined. They use the engine's seed scheme so that both forms
-//! price the same paths up to rounding: paths in blocks of `BLOCK`, block `i` drawing from
-//! `block_rng(seed, i)`, normals drawn step by step and, within a step, lane by lane (and
+//! price the same paths up to rounding: paths in blocks of `BLOCK`, block `i` seeding four
+//! xoshiro256++ generators (`rand_xoshiro`, by SplitMix64) from the first four draws of
+//! `block_rng(seed, i)` and taking its `j`-th normal from generator `j mod 4`
+//! ([`BlockNormals`]), normals drawn step by step and, within a step, lane by lane (and
 //! asset by asset within a lane), lanes `h..2h` mirroring lanes `0..h` (`h = lanes / 2`).
 //! A sample is the mean of an antithetic pair; no control variates.
 //!
@@ -13,8 +15,30 @@
 
 use pathfold::sim::exec::block_rng;
 use pathfold::sim::BLOCK;
-use rand::Rng;
+use rand::{Rng, RngCore, SeedableRng};
 use rand_distr::StandardNormal;
+use rand_xoshiro::Xoshiro256PlusPlus;
+
+/// A block's normals as the engine draws them, from the libraries alone: normal `j` is
+/// `rand_distr`'s `StandardNormal` on the `(j mod 4)`-th of four xoshiro256++ generators,
+/// each seeded (by the library's SplitMix64) from one draw of the block's PCG-64 stream.
+struct BlockNormals {
+    lanes: [Xoshiro256PlusPlus; 4],
+    next: usize,
+}
+
+impl BlockNormals {
+    fn new(seed: u64, block: u64) -> Self {
+        let mut rng = block_rng(seed, block);
+        BlockNormals { lanes: std::array::from_fn(|_| Xoshiro256PlusPlus::seed_from_u64(rng.next_u64())), next: 0 }
+    }
+
+    fn sample(&mut self) -> f64 {
+        let z = self.lanes[self.next].sample(StandardNormal);
+        self.next = (self.next + 1) % 4;
+        z
+    }
+}
 
 /// Flat short rate of the benchmark market.
 pub(crate) const RATE: f64 = 0.03;
@@ -55,9 +79,9 @@ pub(crate) fn w1_call(paths: u64, seed: u64) -> (f64, f64) {
     let scale = sigma * t.sqrt();
     let mut tally = Tally::default();
     for b in 0..paths.div_ceil(BLOCK as u64) {
-        let mut rng = block_rng(seed, b);
+        let mut rng = BlockNormals::new(seed, b);
         for _ in 0..lanes(paths, b) / 2 {
-            let z: f64 = rng.sample(StandardNormal);
+            let z: f64 = rng.sample();
             let up = (drift + scale * z).exp();
             let down = (drift - scale * z).exp();
             tally.add(0.5 * ((up - k).max(0.0) + (down - k).max(0.0)));
@@ -78,13 +102,13 @@ pub(crate) fn w2_asian(paths: u64, seed: u64) -> (f64, f64) {
     let mut sum = [0.0_f64; BLOCK];
     let mut tally = Tally::default();
     for b in 0..paths.div_ceil(BLOCK as u64) {
-        let mut rng = block_rng(seed, b);
+        let mut rng = BlockNormals::new(seed, b);
         let h = lanes(paths, b) / 2;
         x[..2 * h].fill(s0.ln());
         sum[..2 * h].fill(0.0);
         for _ in 0..STEPS {
             for l in 0..h {
-                let z: f64 = rng.sample(StandardNormal);
+                let z: f64 = rng.sample();
                 let step = scale * z;
                 x[l] += drift + step;
                 x[l + h] += drift - step;
@@ -133,7 +157,7 @@ pub(crate) fn w3_autocall(paths: u64, seed: u64) -> (f64, f64) {
     let mut pv = [0.0_f64; BLOCK];
     let mut tally = Tally::default();
     for b in 0..paths.div_ceil(BLOCK as u64) {
-        let mut rng = block_rng(seed, b);
+        let mut rng = BlockNormals::new(seed, b);
         let lanes = lanes(paths, b);
         let h = lanes / 2;
         for xa in &mut x {
@@ -143,9 +167,9 @@ pub(crate) fn w3_autocall(paths: u64, seed: u64) -> (f64, f64) {
         pv[..lanes].fill(0.0);
         for i in 1..=STEPS {
             for l in 0..h {
-                let z0: f64 = rng.sample(StandardNormal);
-                let z1: f64 = rng.sample(StandardNormal);
-                let z2: f64 = rng.sample(StandardNormal);
+                let z0: f64 = rng.sample();
+                let z1: f64 = rng.sample();
+                let z2: f64 = rng.sample();
                 let w = [z0, l10 * z0 + l11 * z1, l20 * z0 + l21 * z1 + l22 * z2];
                 for a in 0..N {
                     let step = scale[a] * w[a];

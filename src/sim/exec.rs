@@ -130,10 +130,10 @@ fn end_dates(p: &Program) -> Option<Vec<usize>> {
     Some(dates)
 }
 
-/// What stepping the paths as the operations read them needs.
-struct Stepping<'a, 'r> {
+/// What stepping the paths as the operations read them needs (their normals are the
+/// block's, in the path buffers).
+struct Stepping<'a> {
     model: &'a Model,
-    rng: &'r mut Pcg64,
 }
 
 /// Where a block's normals come from when they are quasi-random: randomisation `r` of a
@@ -253,7 +253,7 @@ impl Workspace {
         // tends not to), so pairs are simulated to the end.
         let early = self.stops_early && given.is_none() && !antithetic;
         if early {
-            self.paths.start(p, model, lanes, BLOCK);
+            self.paths.start(p, model, &mut rng, lanes, BLOCK);
         } else {
             self.paths.generate(p, model, &mut rng, lanes, antithetic, BLOCK, given);
             self.paths.monitors(p, model, lanes, BLOCK, &mut self.monitors);
@@ -262,16 +262,16 @@ impl Workspace {
             }
         }
         result.reset(self.columns.len(), p.events.len(), p.payments.len());
-        let stepping = early.then_some(Stepping { model, rng: &mut rng });
+        let stepping = early.then_some(Stepping { model });
         self.execute(p, controls, lanes, result, stepping);
         if early {
             // The paths still running go on to the last date; the others get their last
             // level by one step when a control reads it.
             let last = p.grid.len() - 1;
             let ended_at = &self.ended_at[..lanes];
-            self.paths.step_running_to(p, model, &mut rng, last, ended_at, lanes, BLOCK);
+            self.paths.step_running_to(p, model, last, ended_at, lanes, BLOCK);
             if controls.reads_last_date() {
-                self.paths.jump_stopped_to_last(p, model, &mut rng, lanes, BLOCK);
+                self.paths.jump_stopped_to_last(p, model, lanes, BLOCK);
             }
         }
         // Paths still alive after the last operation end on the last run date.
@@ -329,7 +329,7 @@ impl Workspace {
         controls: &Controls,
         lanes: usize,
         result: &mut BlockResult,
-        stepping: Option<Stepping<'_, '_>>,
+        stepping: Option<Stepping<'_>>,
     ) {
         #[cfg(target_arch = "x86_64")]
         {
@@ -350,7 +350,7 @@ impl Workspace {
         controls: &Controls,
         lanes: usize,
         result: &mut BlockResult,
-        stepping: Option<Stepping<'_, '_>>,
+        stepping: Option<Stepping<'_>>,
     ) {
         self.execute_generic(p, controls, lanes, result, stepping);
     }
@@ -362,7 +362,7 @@ impl Workspace {
         controls: &Controls,
         lanes: usize,
         result: &mut BlockResult,
-        mut stepping: Option<Stepping<'_, '_>>,
+        mut stepping: Option<Stepping<'_>>,
     ) {
         self.regs[ALIVE as usize][..lanes].fill(1.0);
         if controls.tracks_ends() {
@@ -382,7 +382,7 @@ impl Workspace {
                 let to = self.reads_to[index];
                 if to > self.paths.stepped() {
                     let ended_at = &self.ended_at[..lanes];
-                    self.paths.step_running_to(p, st.model, st.rng, to, ended_at, lanes, BLOCK);
+                    self.paths.step_running_to(p, st.model, to, ended_at, lanes, BLOCK);
                 }
             }
             match *op {

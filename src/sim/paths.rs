@@ -6,8 +6,9 @@ use rand::Rng;
 use rand_distr::{Open01, StandardNormal};
 use rand_pcg::Pcg64;
 
+use super::normals::Normals;
+use super::orthant;
 use super::special::{exp_into, exp_one, norm_cdf_hart, norm_cdf_hart_select};
-use super::{normals, orthant};
 use crate::closed_form::{
     black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
 };
@@ -128,6 +129,8 @@ pub struct PathBuffers {
     z: Vec<f64>,
     /// One lane-row of the correlation product, or a step's normals as drawn.
     w: Vec<f64>,
+    /// The block's normals, seeded from its stream when it [`Self::start`]s.
+    normals: Normals,
     /// The draws of one first-passage time per lane: a normal, then a uniform.
     hit_draws: Vec<f64>,
     /// Current log levels `[asset · BLOCK + lane]`.
@@ -160,6 +163,7 @@ impl PathBuffers {
             uniforms: vec![0.0; model.watched.len() * p.grid.len() * block],
             z: vec![0.0; p.assets.len() * block],
             w: vec![0.0; p.assets.len().max(1) * block],
+            normals: Normals::default(),
             hit_draws: if p.path_values.is_empty() { Vec::new() } else { vec![0.0; 2 * block] },
             x: vec![0.0; p.assets.len() * block],
             keep_logs,
@@ -201,16 +205,17 @@ impl PathBuffers {
         block: usize,
         given: Option<&[f64]>,
     ) {
-        self.start(p, model, lanes, block);
+        self.start(p, model, rng, lanes, block);
         for k in p.past + 1..p.grid.len() {
-            self.step(p, model, rng, k, lanes, antithetic, block, given);
+            self.step(p, model, k, lanes, antithetic, block, given);
         }
         self.draw_uniforms(model, rng, lanes, antithetic, block, p.grid.len());
     }
 
     /// Puts every lane at the valuation date: past dates hold their fixings, the
-    /// valuation date the spot.
-    pub fn start(&mut self, p: &Program, model: &Model, lanes: usize, block: usize) {
+    /// valuation date the spot. The block's normals are seeded from `rng`'s next draws.
+    pub fn start(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
+        self.normals.reseed(rng);
         let na = p.assets.len();
         for a in 0..na {
             self.x[a * block..a * block + lanes].fill(model.log_spot[a]);
@@ -279,7 +284,6 @@ impl PathBuffers {
         &mut self,
         p: &Program,
         model: &Model,
-        rng: &mut Pcg64,
         k: usize,
         lanes: usize,
         antithetic: bool,
@@ -290,11 +294,11 @@ impl PathBuffers {
         {
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
-                unsafe { self.step_avx2(p, model, rng, k, lanes, antithetic, block, given) };
+                unsafe { self.step_avx2(p, model, k, lanes, antithetic, block, given) };
                 return;
             }
         }
-        self.step_generic(p, model, rng, k, lanes, antithetic, block, given);
+        self.step_generic(p, model, k, lanes, antithetic, block, given);
     }
 
     /// Additions, multiplications, divisions and selects only, never fused: the same bits
@@ -306,14 +310,13 @@ impl PathBuffers {
         &mut self,
         p: &Program,
         model: &Model,
-        rng: &mut Pcg64,
         k: usize,
         lanes: usize,
         antithetic: bool,
         block: usize,
         given: Option<&[f64]>,
     ) {
-        self.step_generic(p, model, rng, k, lanes, antithetic, block, given);
+        self.step_generic(p, model, k, lanes, antithetic, block, given);
     }
 
     #[inline(always)]
@@ -322,7 +325,6 @@ impl PathBuffers {
         &mut self,
         p: &Program,
         model: &Model,
-        rng: &mut Pcg64,
         k: usize,
         lanes: usize,
         antithetic: bool,
@@ -338,10 +340,10 @@ impl PathBuffers {
                 self.z[a * block..a * block + drawn].copy_from_slice(from);
             }
         } else if na == 1 {
-            normals::fill(rng, &mut self.z[..drawn]);
+            self.normals.fill(&mut self.z[..drawn]);
         } else {
             // Drawn lane by lane, asset by asset within a lane, then laid out by asset.
-            normals::fill(rng, &mut self.w[..na * drawn]);
+            self.normals.fill(&mut self.w[..na * drawn]);
             self.lay_out_by_asset(na, drawn, block);
         }
         self.correlate(model, na, drawn, block);
@@ -437,7 +439,6 @@ impl PathBuffers {
         &mut self,
         p: &Program,
         model: &Model,
-        rng: &mut Pcg64,
         k: usize,
         ended_at: &[f64],
         lanes: usize,
@@ -457,50 +458,42 @@ impl PathBuffers {
             self.running.truncate(m);
             // Packing the running lanes costs more than it saves while most still run.
             if 4 * m > 3 * lanes {
-                self.step(p, model, rng, next, lanes, false, block, None);
+                self.step(p, model, next, lanes, false, block, None);
             } else {
-                self.step_some(p, model, rng, next, lanes, block);
+                self.step_some(p, model, next, lanes, block);
             }
         }
     }
 
     /// [`Self::step`] for the lanes in `self.running` only, with the same arithmetic per
     /// lane; every other lane's level is carried over from the previous date.
-    fn step_some(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, k: usize, lanes: usize, block: usize) {
+    fn step_some(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
         #[cfg(target_arch = "x86_64")]
         {
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
-                unsafe { self.step_some_avx2(p, model, rng, k, lanes, block) };
+                unsafe { self.step_some_avx2(p, model, k, lanes, block) };
                 return;
             }
         }
-        self.step_some_generic(p, model, rng, k, lanes, block);
+        self.step_some_generic(p, model, k, lanes, block);
     }
 
     /// The same bits as the baseline build, as for [`Self::step`].
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn step_some_avx2(
-        &mut self,
-        p: &Program,
-        model: &Model,
-        rng: &mut Pcg64,
-        k: usize,
-        lanes: usize,
-        block: usize,
-    ) {
-        self.step_some_generic(p, model, rng, k, lanes, block);
+    unsafe fn step_some_avx2(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
+        self.step_some_generic(p, model, k, lanes, block);
     }
 
     #[inline(always)]
-    fn step_some_generic(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, k: usize, lanes: usize, block: usize) {
+    fn step_some_generic(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
         let na = p.assets.len();
         let m = self.running.len();
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
         // The normals of the running lanes, lane by lane, asset by asset within a lane,
         // laid out `z[a·block + j]` for the j-th running lane and correlated as in a step.
-        normals::fill(rng, &mut self.w[..na * m]);
+        self.normals.fill(&mut self.w[..na * m]);
         self.lay_out_by_asset(na, m, block);
         self.correlate(model, na, m, block);
         // Each running lane's move `d + s·z` is put at its own lane, 0 at the others, and
@@ -561,7 +554,7 @@ impl PathBuffers {
     /// the model's correlation; its covariance is exact when the assets' volatilities keep
     /// their ratios over the step (flat volatilities), and the controls need only each
     /// asset's own law.
-    pub fn jump_stopped_to_last(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
+    pub fn jump_stopped_to_last(&mut self, p: &Program, model: &Model, lanes: usize, block: usize) {
         let na = p.assets.len();
         let last = p.grid.len() - 1;
         let mut row = vec![0.0; na];
@@ -570,7 +563,7 @@ impl PathBuffers {
             if from >= last {
                 continue;
             }
-            normals::fill(rng, &mut row);
+            self.normals.fill(&mut row);
             for a in 0..na {
                 let mut z = 0.0;
                 for (c, r) in model.cholesky[a].iter().zip(&row) {
