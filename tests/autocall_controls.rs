@@ -77,11 +77,14 @@ fn a_worst_of_autocall_on_two_assets_matches_its_closed_form() {
 
 #[test]
 fn paths_that_stop_when_they_end_keep_the_two_date_closed_form() {
-    // The bivariate closed form of the two-date autocall above (common practice).
-    let body = "dates obs = 0.25y, 0.5y, 0.75y, 1y\nfor each t in obs {\n if t != first(obs) and t != 0.75y and perf(BOOKA) >= 1 {\n  pay 100 + 5 * position(t) / 2\n  end\n }\n}\n";
+    // The bivariate closed form of the two-date autocall above (common practice), with
+    // the barrier at 90%: about two paths in three end at 0.5y, so that the few still
+    // running are stepped on their own (below a third of the lanes) after it.
+    let body = "dates obs = 0.25y, 0.5y, 0.75y, 1y\nfor each t in obs {\n if t != first(obs) and t != 0.75y and perf(BOOKA) >= 0.9 {\n  pay 100 + 5 * position(t) / 2\n  end\n }\n}\n";
     let (sigma, q) = (0.25, 0.04);
     let mu = R - q - 0.5 * sigma * sigma;
-    let a = |t: f64| mu * t.sqrt() / sigma;
+    // P(ln S_t/S_0 ≥ ln 0.9) = N(a(t)).
+    let a = |t: f64| (mu * t - 0.9f64.ln()) / (sigma * t.sqrt());
     let reference = 105.0 * (-0.5 * R).exp() * norm_cdf(a(0.5))
         + 110.0 * (-R).exp() * bivariate_norm_cdf(-a(0.5), a(1.0), -(0.5f64).sqrt());
     for extra in [&["--no-antithetic"][..], &["--no-antithetic", "--no-control"]] {

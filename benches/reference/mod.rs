@@ -6,8 +6,8 @@
 //! price the same paths up to rounding: paths in blocks of `BLOCK`, block `i` seeding four
 //! xoshiro256++ generators (`rand_xoshiro`, by SplitMix64) from the first four draws of
 //! `block_rng(seed, i)` and taking its `j`-th normal from generator `j mod 4`
-//! ([`BlockNormals`]), normals drawn step by step and, within a step, lane by lane (and
-//! asset by asset within a lane), lanes `h..2h` mirroring lanes `0..h` (`h = lanes / 2`).
+//! ([`BlockNormals`]), normals drawn step by step and, within a step, asset by asset (the
+//! lanes in order within an asset), lanes `h..2h` mirroring lanes `0..h` (`h = lanes / 2`).
 //! A sample is the mean of an antithetic pair; no control variates.
 //!
 //! Shared by `benches/workloads.rs` and, through `#[path]`, `tests/bench_agreement.rs`; it
@@ -153,6 +153,7 @@ pub(crate) fn w3_autocall(paths: u64, seed: u64) -> (f64, f64) {
     let discount: Vec<f64> = (1..=STEPS).map(|i| (-RATE * dt * i as f64).exp()).collect();
     // Log performances ln(S/S0), asset-major, and each lane's discounted payoff.
     let mut x = [[0.0_f64; BLOCK]; N];
+    let mut z = [[0.0_f64; BLOCK / 2]; N];
     let mut alive = [true; BLOCK];
     let mut pv = [0.0_f64; BLOCK];
     let mut tally = Tally::default();
@@ -166,10 +167,14 @@ pub(crate) fn w3_autocall(paths: u64, seed: u64) -> (f64, f64) {
         alive[..lanes].fill(true);
         pv[..lanes].fill(0.0);
         for i in 1..=STEPS {
+            // A step's normals asset by asset, the lanes in order within an asset.
+            for za in &mut z {
+                for zl in &mut za[..h] {
+                    *zl = rng.sample();
+                }
+            }
             for l in 0..h {
-                let z0: f64 = rng.sample();
-                let z1: f64 = rng.sample();
-                let z2: f64 = rng.sample();
+                let (z0, z1, z2) = (z[0][l], z[1][l], z[2][l]);
                 let w = [z0, l10 * z0 + l11 * z1, l20 * z0 + l21 * z1 + l22 * z2];
                 for a in 0..N {
                     let step = scale[a] * w[a];

@@ -127,7 +127,7 @@ pub struct PathBuffers {
     pub uniforms: Vec<f64>,
     /// One step's normals, `[asset · BLOCK + lane]`, then correlated in place.
     z: Vec<f64>,
-    /// One lane-row of the correlation product, or a step's normals as drawn.
+    /// One row of the correlation product.
     w: Vec<f64>,
     /// The block's normals, seeded from its stream when it [`Self::start`]s.
     normals: Normals,
@@ -241,14 +241,12 @@ impl PathBuffers {
         }
     }
 
-    /// Moves the normals of `n` lanes drawn into `w` lane by lane (asset by asset within
-    /// a lane) to `z`, laid out by asset: `z[a·block + lane]`.
+    /// Draws the normals of `n` lanes, asset by asset (the lanes in order within an
+    /// asset), into `z[a·block + lane]`.
     #[inline(always)]
-    fn lay_out_by_asset(&mut self, na: usize, n: usize, block: usize) {
-        for (lane, row) in self.w[..na * n].chunks_exact(na).enumerate() {
-            for (a, &z) in row.iter().enumerate() {
-                self.z[a * block + lane] = z;
-            }
+    fn draw(&mut self, na: usize, n: usize, block: usize) {
+        for a in 0..na {
+            self.normals.fill(&mut self.z[a * block..a * block + n]);
         }
     }
 
@@ -275,10 +273,9 @@ impl PathBuffers {
 
     /// Steps every lane to grid index `k` (the next one).
     ///
-    /// The step works in passes over the block so that everything except drawing the
-    /// normals runs as straight loops over lanes: draw (lane by lane, asset by asset
-    /// within a lane: the order is part of what a seed means), correlate, step the logs
-    /// of each path and its mirror, exponentiate.
+    /// The step works in passes over the block, each a straight loop over lanes: draw
+    /// (asset by asset, the lanes in order within an asset: the order is part of what a
+    /// seed means), correlate, step the logs of each path and its mirror, exponentiate.
     #[allow(clippy::too_many_arguments)]
     fn step(
         &mut self,
@@ -339,12 +336,8 @@ impl PathBuffers {
                 let from = &given[((k - 1) * na + a) * block..][..drawn];
                 self.z[a * block..a * block + drawn].copy_from_slice(from);
             }
-        } else if na == 1 {
-            self.normals.fill(&mut self.z[..drawn]);
         } else {
-            // Drawn lane by lane, asset by asset within a lane, then laid out by asset.
-            self.normals.fill(&mut self.w[..na * drawn]);
-            self.lay_out_by_asset(na, drawn, block);
+            self.draw(na, drawn, block);
         }
         self.correlate(model, na, drawn, block);
         for a in 0..na {
@@ -432,8 +425,9 @@ impl PathBuffers {
     /// Steps the paths still running to grid index `k`, one grid date at a time, without
     /// antithetic pairs: a path is stepped to a date unless it ended on an earlier one
     /// (`ended_at`, the grid index of its end, infinite while it runs). The others keep
-    /// their last level on later dates (nothing reads it: they have ended) and draw nothing. While more than three
-    /// quarters of the lanes run, a step is exactly [`Self::step`], every lane included.
+    /// their last level on later dates (nothing reads it: they have ended) and draw nothing.
+    /// While at least a third of the lanes run, a step is exactly [`Self::step`], every
+    /// lane included (the ended ones drawing and moving on as if they ran).
     #[allow(clippy::too_many_arguments)]
     pub fn step_running_to(
         &mut self,
@@ -446,22 +440,24 @@ impl PathBuffers {
     ) {
         while self.stepped < k {
             let next = self.stepped + 1;
+            let date = next as f64;
+            let m = ended_at[..lanes].iter().map(|&e| usize::from(e >= date)).sum::<usize>();
+            // Packing the running lanes costs more than it saves until fewer than a third
+            // still run: a normal costs little next to placing a move at its lane.
+            if 3 * m >= lanes {
+                self.step(p, model, next, lanes, false, block, None);
+                continue;
+            }
             // Without a branch per lane (which way it goes is random): write every
             // index, advance past the running ones.
             self.running.resize(lanes, 0);
             let mut m = 0;
-            let date = next as f64;
             for (lane, e) in ended_at[..lanes].iter().enumerate() {
                 self.running[m] = lane as u32;
                 m += usize::from(*e >= date);
             }
             self.running.truncate(m);
-            // Packing the running lanes costs more than it saves while most still run.
-            if 4 * m > 3 * lanes {
-                self.step(p, model, next, lanes, false, block, None);
-            } else {
-                self.step_some(p, model, next, lanes, block);
-            }
+            self.step_some(p, model, next, lanes, block);
         }
     }
 
@@ -491,10 +487,9 @@ impl PathBuffers {
         let na = p.assets.len();
         let m = self.running.len();
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
-        // The normals of the running lanes, lane by lane, asset by asset within a lane,
-        // laid out `z[a·block + j]` for the j-th running lane and correlated as in a step.
-        self.normals.fill(&mut self.w[..na * m]);
-        self.lay_out_by_asset(na, m, block);
+        // The normals of the running lanes, asset by asset, `z[a·block + j]` for the j-th
+        // running lane, correlated as in a step.
+        self.draw(na, m, block);
         self.correlate(model, na, m, block);
         // Each running lane's move `d + s·z` is put at its own lane, 0 at the others, and
         // added to every lane's log level in one straight loop: `x + 0` is `x`, so a lane
