@@ -331,29 +331,61 @@ impl PathBuffers {
         let na = p.assets.len();
         let drawn = if antithetic { lanes / 2 } else { lanes };
         let (drift, scale) = (&model.drift[k], &model.scale[k]);
-        if let Some(given) = given {
-            for a in 0..na {
-                let from = &given[((k - 1) * na + a) * block..][..drawn];
-                self.z[a * block..a * block + drawn].copy_from_slice(from);
-            }
-        } else {
+        if given.is_none() {
             self.draw(na, drawn, block);
         }
-        self.correlate(model, na, drawn, block);
+        // Asset a's normals, `normals[a·block..][..drawn]`: given, or just drawn.
+        let normals = match given {
+            Some(given) => &given[(k - 1) * na * block..],
+            None => &self.z[..],
+        };
+        // The lanes each asset's pass writes the log level of, besides stepping it.
+        let written = if antithetic { 2 * drawn } else { drawn };
         for a in 0..na {
             let (d, s) = (drift[a], scale[a]);
-            let z = &self.z[a * block..a * block + drawn];
+            let z = if model.uncorrelated {
+                &normals[a * block..a * block + drawn]
+            } else {
+                // Row a of the correlation factor times the normals, summed in ascending
+                // order from zero as a matrix product would (the rows the product needs are
+                // left as drawn).
+                let w = &mut self.w[..drawn];
+                for (j, &c) in model.cholesky[a].iter().enumerate() {
+                    let zj = &normals[j * block..j * block + drawn];
+                    if j == 0 {
+                        for (w, z) in w.iter_mut().zip(zj) {
+                            *w = 0.0 + c * z;
+                        }
+                    } else {
+                        for (w, z) in w.iter_mut().zip(zj) {
+                            *w += c * z;
+                        }
+                    }
+                }
+                &self.w[..drawn]
+            };
+            let cell = (k * na + a) * block;
+            let x = &mut self.x[a * block..a * block + written];
             if antithetic {
-                let (up, down) = self.x[a * block..a * block + 2 * drawn].split_at_mut(drawn);
+                let (up, down) = x.split_at_mut(drawn);
                 for ((u, v), z) in up.iter_mut().zip(down.iter_mut()).zip(z) {
                     let step = s * z;
                     *u += d + step;
                     *v += d - step;
                 }
+            } else if self.keep_logs {
+                let logs = &mut self.logs[cell..cell + written];
+                for ((u, z), l) in x.iter_mut().zip(z).zip(logs) {
+                    *u += d + s * z;
+                    *l = *u;
+                }
             } else {
-                for (u, z) in self.x[a * block..a * block + drawn].iter_mut().zip(z) {
+                for (u, z) in x.iter_mut().zip(z) {
                     *u += d + s * z;
                 }
+            }
+            if antithetic && self.keep_logs {
+                self.logs[cell..cell + written].copy_from_slice(x);
             }
         }
         let levels_on = self.levels_on[k];
@@ -385,7 +417,8 @@ impl PathBuffers {
                 exp_into(levels, x);
             }
             if self.keep_logs {
-                self.logs[cell..cell + lanes].copy_from_slice(x);
+                // Lanes past the pairs, if any: the others' were written as they stepped.
+                self.logs[cell + written..cell + lanes].copy_from_slice(&x[written..]);
             }
         }
         self.stepped = k;
