@@ -191,8 +191,8 @@ impl PathBuffers {
     }
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
-    /// (`h = lanes / 2`) with every normal negated. The normals are drawn from `rng`
-    /// unless `given` holds them, laid out `[((k − 1)·assets + a)·block + lane]` for step
+    /// (`h = lanes / 2`) with every normal negated. The normals are the block's
+    /// [`Normals`] (seeded from `rng`) unless `given` holds them, laid out `[((k − 1)·assets + a)·block + lane]` for step
     /// `k` and asset `a` (a quasi-random sampler's).
     #[allow(clippy::too_many_arguments)]
     pub fn generate(
