@@ -11,7 +11,7 @@
 //! `i`'s state, bit for bit (the same method, layers and use of the stream): a candidate
 //! `x = u·X[l]` from one draw (`l` from its low 8 bits, `u` in `[−1, 1)` from its top 52),
 //! accepted when `|x| < X[l+1]` (about 99% of draws); for the rest, the wedge test, the
-//! tail beyond `r` and fresh candidates draw from that lane alone ([`settle`]).
+//! tail beyond `r` and fresh candidates draw from that lane alone (`settle`).
 //! The lanes' states come from the block's PCG-64 stream, one draw per lane spread over
 //! the lane's four words by SplitMix64, as the generator's authors advise.
 
