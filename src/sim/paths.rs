@@ -102,6 +102,31 @@ fn step_variance(p: &Program, a: usize, k: usize) -> f64 {
     }
 }
 
+/// Row `a` of the correlated normals over the first `n` lanes: the drawn row itself when
+/// the assets are uncorrelated, else row `a` of the Cholesky factor times the rows
+/// `normals[j·block..]`, `j ≤ a`, summed into `w` in ascending `j` from zero, as a matrix
+/// product would (the drawn rows are left as they are).
+#[inline(always)]
+fn correlated<'a>(model: &Model, normals: &'a [f64], w: &'a mut [f64], a: usize, n: usize, block: usize) -> &'a [f64] {
+    if model.uncorrelated {
+        return &normals[a * block..a * block + n];
+    }
+    let w = &mut w[..n];
+    for (j, &c) in model.cholesky[a].iter().enumerate() {
+        let zj = &normals[j * block..j * block + n];
+        if j == 0 {
+            for (w, z) in w.iter_mut().zip(zj) {
+                *w = 0.0 + c * z;
+            }
+        } else {
+            for (w, z) in w.iter_mut().zip(zj) {
+                *w += c * z;
+            }
+        }
+    }
+    w
+}
+
 fn identity(n: usize) -> Vec<Vec<f64>> {
     (0..n).map(|i| (0..=i).map(|j| if i == j { 1.0 } else { 0.0 }).collect()).collect()
 }
@@ -125,7 +150,7 @@ pub struct PathBuffers {
     pub logs: Vec<f64>,
     /// Bridge uniforms `[(watched slot · grid + k) · BLOCK + lane]`.
     pub uniforms: Vec<f64>,
-    /// One step's normals, `[asset · BLOCK + lane]`, then correlated in place.
+    /// One step's normals as drawn, `[asset · BLOCK + lane]`.
     z: Vec<f64>,
     /// One row of the correlation product.
     w: Vec<f64>,
@@ -192,8 +217,9 @@ impl PathBuffers {
 
     /// Simulates `lanes` paths. With `antithetic`, lanes `h..2h` mirror lanes `0..h`
     /// (`h = lanes / 2`) with every normal negated. The normals are the block's
-    /// [`Normals`] (seeded from `rng`) unless `given` holds them, laid out `[((k − 1)·assets + a)·block + lane]` for step
-    /// `k` and asset `a` (a quasi-random sampler's).
+    /// [`Normals`] (seeded from `rng`) unless `given` holds them, laid out
+    /// `[((k − 1)·assets + a)·block + lane]` for step `k` and asset `a` (a quasi-random
+    /// sampler's).
     #[allow(clippy::too_many_arguments)]
     pub fn generate(
         &mut self,
@@ -247,27 +273,6 @@ impl PathBuffers {
     fn draw(&mut self, na: usize, n: usize, block: usize) {
         for a in 0..na {
             self.normals.fill(&mut self.z[a * block..a * block + n]);
-        }
-    }
-
-    /// Correlates the first `n` lanes of `z` in place by the model's Cholesky factor.
-    #[inline(always)]
-    fn correlate(&mut self, model: &Model, na: usize, n: usize, block: usize) {
-        if model.uncorrelated {
-            return;
-        }
-        // Row a of the factor needs normals 0..=a only: go from the last row up and
-        // overwrite in place. Sums run in ascending j, as a matrix product would.
-        for a in (0..na).rev() {
-            let w = &mut self.w[..n];
-            w.fill(0.0);
-            for (j, &c) in model.cholesky[a].iter().enumerate() {
-                let zj = &self.z[j * block..j * block + n];
-                for (w, z) in w.iter_mut().zip(zj) {
-                    *w += c * z;
-                }
-            }
-            self.z[a * block..a * block + n].copy_from_slice(w);
         }
     }
 
@@ -343,27 +348,7 @@ impl PathBuffers {
         let written = if antithetic { 2 * drawn } else { drawn };
         for a in 0..na {
             let (d, s) = (drift[a], scale[a]);
-            let z = if model.uncorrelated {
-                &normals[a * block..a * block + drawn]
-            } else {
-                // Row a of the correlation factor times the normals, summed in ascending
-                // order from zero as a matrix product would (the rows the product needs are
-                // left as drawn).
-                let w = &mut self.w[..drawn];
-                for (j, &c) in model.cholesky[a].iter().enumerate() {
-                    let zj = &normals[j * block..j * block + drawn];
-                    if j == 0 {
-                        for (w, z) in w.iter_mut().zip(zj) {
-                            *w = 0.0 + c * z;
-                        }
-                    } else {
-                        for (w, z) in w.iter_mut().zip(zj) {
-                            *w += c * z;
-                        }
-                    }
-                }
-                &self.w[..drawn]
-            };
+            let z = correlated(model, normals, &mut self.w, a, drawn, block);
             let cell = (k * na + a) * block;
             let x = &mut self.x[a * block..a * block + written];
             if antithetic {
@@ -523,7 +508,6 @@ impl PathBuffers {
         // The normals of the running lanes, asset by asset, `z[a·block + j]` for the j-th
         // running lane, correlated as in a step.
         self.draw(na, m, block);
-        self.correlate(model, na, m, block);
         // Each running lane's move `d + s·z` is put at its own lane, 0 at the others, and
         // added to every lane's log level in one straight loop: `x + 0` is `x`, so a lane
         // that has ended keeps its last log level, and the others get the arithmetic of a
@@ -536,7 +520,7 @@ impl PathBuffers {
             let (moves, packed) = self.packed.split_at_mut(block);
             let moves = &mut moves[..lanes];
             moves.fill(0.0);
-            let z = &self.z[a * block..a * block + m];
+            let z = correlated(model, &self.z, &mut self.w, a, m, block);
             for (&lane, z) in self.running.iter().zip(z) {
                 moves[lane as usize] = d + s * z;
             }
