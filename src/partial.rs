@@ -137,7 +137,7 @@ pub fn words_hex(words: &[u64]) -> String {
 
 /// The words [`words_hex`] wrote.
 pub fn hex_words(text: &str) -> Option<Vec<u64>> {
-    if text.len() % 16 != 0 || !text.is_ascii() {
+    if !text.len().is_multiple_of(16) || !text.is_ascii() {
         return None;
     }
     (0..text.len()).step_by(16).map(|i| u64::from_str_radix(&text[i..i + 16], 16).ok()).collect()

@@ -24,7 +24,7 @@ pub fn binomial(
     steps: usize,
     every: usize,
 ) -> f64 {
-    debug_assert!(steps > 0 && every > 0 && steps % every == 0, "exercise dates must fall on tree steps");
+    debug_assert!(steps > 0 && every > 0 && steps.is_multiple_of(every), "exercise dates must fall on tree steps");
     let dt = t / steps as f64;
     let up = (sigma * dt.sqrt()).exp();
     let down = 1.0 / up;

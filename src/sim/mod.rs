@@ -14,6 +14,7 @@ pub mod exercise;
 pub mod joint;
 pub mod normals;
 mod orthant;
+mod pack;
 pub mod partial;
 pub mod paths;
 pub mod regress;
@@ -133,7 +134,7 @@ fn thousands(n: u64) -> String {
     let digits = n.to_string();
     let mut out = String::new();
     for (i, c) in digits.chars().enumerate() {
-        if i > 0 && (digits.len() - i) % 3 == 0 {
+        if i > 0 && (digits.len() - i).is_multiple_of(3) {
             out.push(',');
         }
         out.push(c);
@@ -352,7 +353,7 @@ impl<'a> Run<'a> {
     /// Simulates the blocks that take the run from its current path count to `paths`.
     /// The current count must be a whole number of blocks.
     fn extend_to(&mut self, paths: u64) {
-        debug_assert!(self.paths % BLOCK as u64 == 0, "a run can only grow from whole blocks");
+        debug_assert!(self.paths.is_multiple_of(BLOCK as u64), "a run can only grow from whole blocks");
         let (program, settings, model, controls) = (self.program, self.settings, &self.model, &self.controls);
         let points = self.points;
         // A Sobol run's blocks draw the rest of their numbers from streams no

@@ -8,6 +8,7 @@ use rand_pcg::Pcg64;
 
 use super::normals::Normals;
 use super::orthant;
+use super::pack::Packing;
 use super::special::{exp_into, exp_one, norm_cdf_hart, norm_cdf_hart_select};
 use crate::closed_form::{
     black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
@@ -177,6 +178,15 @@ pub struct PathBuffers {
     /// Per grid index, whether the levels are computed (else only the log levels, for
     /// a date whose levels nothing reads: comparisons made on logs).
     levels_on: Vec<bool>,
+    /// Whether a step of the running lanes takes every lane, from how many run and the
+    /// lanes ([`mostly_running`]; a test steps the running ones alone whenever it can).
+    steps_every_lane: fn(usize, usize) -> bool,
+}
+
+/// Stepping only the running lanes costs more than it saves until fewer than a third of
+/// them still run: a normal costs little next to placing a move at its lane.
+fn mostly_running(running: usize, lanes: usize) -> bool {
+    3 * running >= lanes
 }
 
 impl PathBuffers {
@@ -199,6 +209,7 @@ impl PathBuffers {
             running: Vec::with_capacity(block),
             packed: vec![0.0; 2 * block],
             levels_on: vec![true; p.grid.len()],
+            steps_every_lane: mostly_running,
         }
     }
 
@@ -206,6 +217,12 @@ impl PathBuffers {
     /// every date, when kept). The levels of the other dates are left as they are.
     pub fn compute_levels_on(&mut self, on: Vec<bool>) {
         self.levels_on = on;
+    }
+
+    /// Steps the running lanes alone whenever some lane has ended (for a test).
+    #[cfg(test)]
+    pub(super) fn step_running_lanes_alone(&mut self) {
+        self.steps_every_lane = |running, lanes| running == lanes;
     }
 
     /// Whether the paths may be stepped only while they run ([`Self::step_running_to`]),
@@ -460,9 +477,7 @@ impl PathBuffers {
             let next = self.stepped + 1;
             let date = next as f64;
             let m = ended_at[..lanes].iter().map(|&e| usize::from(e >= date)).sum::<usize>();
-            // Packing the running lanes costs more than it saves until fewer than a third
-            // still run: a normal costs little next to placing a move at its lane.
-            if 3 * m >= lanes {
+            if (self.steps_every_lane)(m, lanes) {
                 self.step(p, model, next, lanes, false, block, None);
                 continue;
             }
@@ -476,6 +491,54 @@ impl PathBuffers {
             }
             self.running.truncate(m);
             self.step_some(p, model, next, lanes, block);
+        }
+    }
+
+    /// Packs the lanes as `packing` plans: the current log levels, and the levels (and
+    /// log levels, when kept) of the simulated dates `k` with `dates[k]` set, of the
+    /// running lanes only or, with `whole`, of every lane, and then also the last date
+    /// each lane was stepped to (which only a control's one step to the last date reads).
+    /// The dates up to the valuation date hold one value for every lane and are left
+    /// alone.
+    pub fn pack(&mut self, p: &Program, packing: &mut Packing, whole: bool, dates: &[bool], block: usize) {
+        let na = p.assets.len();
+        let mut pack = |values: &mut [f64]| if whole { packing.all(values) } else { packing.front(values) };
+        for a in 0..na {
+            pack(&mut self.x[a * block..]);
+        }
+        for k in (p.past + 1..=self.stepped).filter(|&k| dates[k]) {
+            for a in 0..na {
+                let cell = (k * na + a) * block;
+                if self.levels_on[k] {
+                    pack(&mut self.levels[cell..]);
+                }
+                if self.keep_logs {
+                    pack(&mut self.logs[cell..]);
+                }
+            }
+        }
+        if whole {
+            packing.all_u32(&mut self.unit_last);
+        }
+    }
+
+    /// Gives lanes `lanes` (ones no longer stepped) the levels of grid index `from` on
+    /// every later date up to `to`, as a lane that has ended keeps its last level: what
+    /// reads a path's dates after its end (a control's select) reads finite numbers
+    /// written in this block.
+    pub fn carry(&mut self, p: &Program, from: usize, to: usize, lanes: std::ops::Range<usize>, block: usize) {
+        let na = p.assets.len();
+        for k in from + 1..=to {
+            for a in 0..na {
+                let (previous, cell) = (((k - 1) * na + a) * block, (k * na + a) * block);
+                let range = previous + lanes.start..previous + lanes.end;
+                if self.levels_on[k] {
+                    self.levels.copy_within(range.clone(), cell + lanes.start);
+                }
+                if self.keep_logs {
+                    self.logs.copy_within(range, cell + lanes.start);
+                }
+            }
         }
     }
 
