@@ -522,13 +522,16 @@ impl Workspace {
                         ended = sum(&alive[..lanes]);
                         if early {
                             let own = self.end_dates[index] as f64;
+                            // A lane alive has not ended (+∞): the minimum puts its date.
+                            // (Written as `if alive { own } else { e }`, the loop becomes
+                            // a masked store, slow on some CPUs.)
                             for (e, a) in self.ended_at[..lanes].iter_mut().zip(&alive[..lanes]) {
-                                *e = if *a != 0.0 { own } else { *e };
+                                *e = e.min(if *a != 0.0 { own } else { f64::INFINITY });
                             }
                         }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, a) in self.stop[..lanes].iter_mut().zip(&alive[..lanes]) {
-                                *s = if *a != 0.0 { s.min(from) } else { *s };
+                                *s = s.min(if *a != 0.0 { from } else { f64::INFINITY });
                             }
                         }
                         alive[..lanes].fill(0.0);
@@ -540,18 +543,18 @@ impl Workspace {
                         for (i, (a, g)) in alive[..lanes].iter_mut().zip(gone.iter_mut()).enumerate() {
                             let end = (m[i] != 0.0) & (*a != 0.0);
                             *g = flag(end);
-                            *a = if end { 0.0 } else { *a };
+                            *a *= flag(!end);
                         }
                         ended = sum(gone);
                         if early {
                             let own = self.end_dates[index] as f64;
                             for (e, g) in self.ended_at[..lanes].iter_mut().zip(&*gone) {
-                                *e = if *g != 0.0 { own } else { *e };
+                                *e = e.min(if *g != 0.0 { own } else { f64::INFINITY });
                             }
                         }
                         if let Some(from) = controls.end_known_from(index) {
                             for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
-                                *s = if *g != 0.0 { s.min(from) } else { *s };
+                                *s = s.min(if *g != 0.0 { from } else { f64::INFINITY });
                             }
                         }
                     }

@@ -1857,7 +1857,9 @@ impl Controls {
                         let s = &paths.levels[cell(k, a)..][..lanes];
                         for (o, &s) in hit.iter_mut().zip(s) {
                             let keep = if *above { s >= h } else { s < h };
-                            *o = if keep { *o } else { 0.0 };
+                            // A product, not `if keep { o } else { 0 }`, which becomes a
+                            // masked store (slow on some CPUs): `o` is finite.
+                            *o *= f64::from(u8::from(keep));
                         }
                     }
                     for (o, h) in out.iter_mut().zip(&*hit) {
@@ -1872,7 +1874,7 @@ impl Controls {
                     let s = &paths.levels[cell(last, a)..][..lanes];
                     for (o, &s) in out.iter_mut().zip(s) {
                         let keep = if *above { s >= h } else { s < h };
-                        *o = if keep { *o } else { 0.0 };
+                        *o *= f64::from(u8::from(keep));
                     }
                 }
             }
