@@ -187,3 +187,19 @@ fn a_path_is_stepped_to_the_date_it_ends_on_whatever_the_order_of_the_writing() 
     let (p2, se2) = price_se(&price_text("call_first.payoff", "PAIRA, PAIRB", call_first, &["--paths", "50000"]));
     assert!((p1 - p2).abs() <= 4.0 * (se1 * se1 + se2 * se2).sqrt(), "stopped {p1} ± {se1}, pairs {p2} ± {se2}");
 }
+
+#[test]
+fn paths_that_all_end_on_their_first_date_leave_no_lane_to_step() {
+    // A level is always positive, so every path pays 100 and ends on the first date,
+    // 0.25y: the price is 100·e^{−0.25r} exactly (common practice: a certain payment,
+    // discounted). Stepped as they run, the paths are all packed away before the next
+    // date, and the operations of the later dates run over no lane at all.
+    let body = "dates q = 4 steps from start to 1y\nfor each t in q {\n if perf(BOOKA) > 0 {\n  pay 100\n  end\n }\n if t == last(q) {\n  pay 50\n }\n}\n";
+    let reference = 100.0 * (-0.25 * R).exp();
+    for extra in [&["--no-antithetic"][..], &["--no-antithetic", "--no-control"], &[]] {
+        let args: Vec<&str> = ["--paths", "3000"].iter().chain(extra).copied().collect();
+        let v = price_text("all_end.payoff", "BOOKA", body, &args);
+        let (p, se) = price_se(&v);
+        assert!((p - reference).abs() <= 1e-9 * reference && se <= 1e-9, "{extra:?}: {p} ± {se} vs {reference}");
+    }
+}
