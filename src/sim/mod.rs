@@ -39,21 +39,8 @@ use stats::BlockResult;
 /// numbers every seed gives.
 pub const BLOCK: usize = 256;
 
-/// Blocks handed to the thread pool at a time: as many as keep their results (two chunks'
-/// worth, one being merged while the next runs) within [`RESULTS_BUDGET`] bytes, between
-/// these bounds. Memory is bounded for any path count; a chunk of cheap blocks (a
-/// European call's take about a microsecond) runs long next to the pool's own cost of
-/// starting it and of the wait at its end (on 2-thread W1 runs, 1024 blocks at a time
-/// measured 1–7% faster than 256, within this host's noise). The chunks do not change
-/// the numbers: results are merged in block order.
-const BLOCKS_IN_FLIGHT: (usize, usize) = (256, 1024);
-const RESULTS_BUDGET: usize = 32 << 20;
-
-/// [`BLOCKS_IN_FLIGHT`] for blocks whose results have `shape`.
-fn blocks_in_flight(shape: &partial::Shape) -> usize {
-    let bytes = std::mem::size_of::<f64>() * shape.words() + std::mem::size_of::<BlockResult>();
-    (RESULTS_BUDGET / (2 * bytes)).clamp(BLOCKS_IN_FLIGHT.0, BLOCKS_IN_FLIGHT.1)
-}
+/// Blocks handed to the thread pool at a time; bounds memory for any path count.
+const BLOCKS_IN_FLIGHT: usize = 256;
 
 /// How to run a simulation.
 #[derive(Clone, Debug, PartialEq)]
@@ -306,8 +293,6 @@ struct Run<'a> {
     model: paths::Model,
     controls: Controls,
     total: BlockResult,
-    /// Blocks per chunk ([`blocks_in_flight`]).
-    in_flight: usize,
     paths: u64,
     /// For a Sobol run: the sampler and this run's randomisation.
     points: Option<(&'a sobol::Qmc, usize)>,
@@ -351,14 +336,12 @@ impl<'a> Run<'a> {
         let controls = Controls::for_run(program, settings);
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
-        let in_flight = blocks_in_flight(&partial::Shape::with(program, &controls));
         Run {
             program,
             settings,
             model,
             controls,
             total,
-            in_flight,
             paths: 0,
             points: None,
             slots: Vec::new(),
@@ -384,7 +367,7 @@ impl<'a> Run<'a> {
         // while the next chunk is simulated, so the merge does not leave a core idle.
         let mut waiting = 0;
         while next < blocks || waiting > 0 {
-            let end = (next + self.in_flight as u64).min(blocks);
+            let end = (next + BLOCKS_IN_FLIGHT as u64).min(blocks);
             let count = (end - next) as usize;
             if self.slots.len() < count {
                 self.slots.resize_with(count, || BlockResult::new(0, 0, 0));

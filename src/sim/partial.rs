@@ -16,7 +16,7 @@ use rayon::prelude::*;
 use super::exec::Workspace;
 use super::paths::{self, Controls};
 use super::stats::{BlockResult, Moments};
-use super::{blocks_in_flight, Estimate, Run, Settings, BLOCK};
+use super::{Estimate, Run, Settings, BLOCK, BLOCKS_IN_FLIGHT};
 use crate::compile::Program;
 use crate::diagnostic::Diagnostic;
 
@@ -55,11 +55,7 @@ pub struct Shape {
 
 impl Shape {
     pub fn of(program: &Program, settings: &Settings) -> Shape {
-        Shape::with(program, &Controls::for_run(program, settings))
-    }
-
-    /// The shape for a program priced with `controls`.
-    pub(super) fn with(program: &Program, controls: &Controls) -> Shape {
+        let controls = Controls::for_run(program, settings);
         Shape {
             dims: 1 + controls.len(),
             events: program.events.len(),
@@ -71,7 +67,7 @@ impl Shape {
 
     /// Words of a block whose paths all paid finite amounts; one more per `pay` site when
     /// some did not.
-    pub(super) fn words(&self) -> usize {
+    fn words(&self) -> usize {
         1 + self.dims + self.dims * self.dims + 3 + self.events + self.payments + 2
     }
 }
@@ -86,10 +82,9 @@ pub fn simulate_blocks(program: &Program, settings: &Settings, range: Range<u64>
     let controls = Controls::for_run(program, settings);
     let paths = paths_run(settings);
     let mut out = Vec::with_capacity((range.end - range.start) as usize);
-    let in_flight = blocks_in_flight(&Shape::with(program, &controls));
     let mut next = range.start;
     while next < range.end {
-        let end = (next + in_flight as u64).min(range.end);
+        let end = (next + BLOCKS_IN_FLIGHT as u64).min(range.end);
         let results: Vec<BlockResult> = (next..end)
             .into_par_iter()
             .map_init(
