@@ -1057,7 +1057,7 @@ mod tests {
     fn keep_or_take_gives_the_bits_of_the_lane_by_lane_rules() {
         let odd = [0.0, -0.0, 1.0, -1.0, f64::INFINITY, f64::NEG_INFINITY, f64::NAN, 1e-310, 1e300, 3.5];
         let mut rng = rand_pcg::Pcg64::seed_from_u64(5);
-        let mut value = |rng: &mut rand_pcg::Pcg64| {
+        let value = |rng: &mut rand_pcg::Pcg64| {
             if rng.gen_bool(0.3) {
                 odd[rng.gen_range(0..odd.len())]
             } else {
