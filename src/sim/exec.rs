@@ -202,6 +202,15 @@ impl Workspace {
         }
     }
 
+    /// Simulates every path to the last date, also those that end early: the normals a
+    /// path draws then never depend on which others have ended, as common random numbers
+    /// across scenarios need (a bumped scenario's paths end on other dates).
+    pub fn simulate_whole_paths(&mut self) {
+        self.stops_early = false;
+        self.paths.steps_running_lanes(false);
+        self.plans.clear();
+    }
+
     /// The discounted payoff of each lane of the last block run, in lane order.
     pub fn payoffs(&self) -> &[f64] {
         &self.pv

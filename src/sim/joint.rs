@@ -87,8 +87,15 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
             .into_par_iter()
             .map_init(
                 || {
-                    let spaces: Vec<Workspace> =
-                        programs.iter().zip(&models).map(|(p, m)| Workspace::new(p, m, &none)).collect();
+                    let spaces: Vec<Workspace> = programs
+                        .iter()
+                        .zip(&models)
+                        .map(|(p, m)| {
+                            let mut ws = Workspace::new(p, m, &none);
+                            ws.simulate_whole_paths();
+                            ws
+                        })
+                        .collect();
                     (spaces, vec![vec![0.0; BLOCK]; k], BlockResult::new(0, 0, 0))
                 },
                 |(spaces, columns, r), b| {
