@@ -1169,6 +1169,20 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
     // digitals read levels the payoff never sees; these read the levels it ends on.
     Hedge::of(p, &model)?;
     let inner = Inner::of(p, &model, list);
+    // Where a digital on several underlyings valued when the product ends reads an
+    // underlying at a threshold, that underlying's own digital there adds next to
+    // nothing (W3: a cut of 29.7× against 29.3× without, for 6–8% of the time; the demo
+    // autocallables, 0.1–0.3% of their cut): only the others are added.
+    let covered: Vec<(usize, f64)> = inner
+        .iter()
+        .flat_map(|i| &i.digitals)
+        .filter_map(|d| match &list[d.column].kind {
+            ControlKind::Digital { thresholds, .. } => Some(thresholds.iter().copied()),
+            _ => None,
+        })
+        .flatten()
+        .collect();
+    stopped.retain(|t| !covered.contains(t));
     stopped.dedup_by(|x, y| x.0 == y.0 && x.1 == y.1);
     for (a, h) in stopped.into_iter().take(MOST_STOPPED) {
         let (total_drift, total_var) = (model.total_drift[last][a], model.total_variance[last][a]);
