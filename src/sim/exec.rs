@@ -1009,6 +1009,17 @@ mod tests {
     use super::*;
     use rand::{Rng, SeedableRng};
 
+    /// An awkward number (±0, ±∞, NaN, tiny or huge) three times in ten, else one drawn
+    /// within `±range`.
+    fn ordinary_or_awkward(rng: &mut rand_pcg::Pcg64, range: f64) -> f64 {
+        let odd = [0.0, -0.0, 1.0, -1.0, f64::INFINITY, f64::NEG_INFINITY, f64::NAN, 1e-310, 1e300, 3.5];
+        if rng.gen_bool(0.3) {
+            odd[rng.gen_range(0..odd.len())]
+        } else {
+            rng.gen_range(-range..range)
+        }
+    }
+
     /// Every operator gives the baseline build's bits with the build for this CPU, on
     /// ordinary numbers and on the awkward ones (±0, ±∞, NaN, tiny and huge values), with
     /// either operand one value for all lanes.
@@ -1032,15 +1043,8 @@ mod tests {
             Bin::Or,
             Bin::AndNot,
         ];
-        let odd = [0.0, -0.0, 1.0, -1.0, f64::INFINITY, f64::NEG_INFINITY, f64::NAN, 1e-310, 1e300, 3.5];
         let mut rng = rand_pcg::Pcg64::seed_from_u64(3);
-        let value = |rng: &mut rand_pcg::Pcg64| {
-            if rng.gen_bool(0.3) {
-                odd[rng.gen_range(0..odd.len())]
-            } else {
-                rng.gen_range(-200.0..200.0)
-            }
-        };
+        let value = |rng: &mut rand_pcg::Pcg64| ordinary_or_awkward(rng, 200.0);
         let a: Vec<f64> = (0..BLOCK).map(|_| value(&mut rng)).collect();
         let b: Vec<f64> = (0..BLOCK).map(|_| value(&mut rng)).collect();
         let (mut fast, mut plain) = (vec![0.0; BLOCK], vec![0.0; BLOCK]);
@@ -1064,15 +1068,8 @@ mod tests {
     /// the operand per lane or one for all, at lengths that are not multiples of four.
     #[test]
     fn keep_or_take_gives_the_bits_of_the_lane_by_lane_rules() {
-        let odd = [0.0, -0.0, 1.0, -1.0, f64::INFINITY, f64::NEG_INFINITY, f64::NAN, 1e-310, 1e300, 3.5];
         let mut rng = rand_pcg::Pcg64::seed_from_u64(5);
-        let value = |rng: &mut rand_pcg::Pcg64| {
-            if rng.gen_bool(0.3) {
-                odd[rng.gen_range(0..odd.len())]
-            } else {
-                rng.gen_range(-3.0..3.0)
-            }
-        };
+        let value = |rng: &mut rand_pcg::Pcg64| ordinary_or_awkward(rng, 3.0);
         for n in [0, 1, 3, 4, 5, 17, 256] {
             let o: Vec<f64> = (0..n).map(|_| value(&mut rng)).collect();
             let y: Vec<f64> = (0..n).map(|_| value(&mut rng)).collect();
