@@ -1869,34 +1869,13 @@ impl Controls {
             ControlKind::Dated { thresholds, above, dates } => {
                 let out = &mut out[..lanes];
                 out.fill(0.0);
-                let mut hit = [0.0f64; super::BLOCK];
-                let hit = &mut hit[..lanes];
                 for &(k, discount) in dates {
-                    hit.fill(discount);
-                    for &(a, h) in thresholds {
-                        let s = &paths.levels[cell(k, a)..][..lanes];
-                        for (o, &s) in hit.iter_mut().zip(s) {
-                            let keep = if *above { s >= h } else { s < h };
-                            // A product, not `if keep { o } else { 0 }`, which becomes a
-                            // masked store (slow on some CPUs): `o` is finite.
-                            *o *= f64::from(u8::from(keep));
-                        }
-                    }
-                    for (o, h) in out.iter_mut().zip(&*hit) {
-                        *o += h;
-                    }
+                    event_value::<true>(out, discount, thresholds, *above, |a| &paths.levels[cell(k, a)..]);
                 }
             }
             ControlKind::Digital { thresholds, above } => {
-                let out = &mut out[..lanes];
-                out.fill(c.discount);
-                for &(a, h) in thresholds {
-                    let s = &paths.levels[cell(last, a)..][..lanes];
-                    for (o, &s) in out.iter_mut().zip(s) {
-                        let keep = if *above { s >= h } else { s < h };
-                        *o *= f64::from(u8::from(keep));
-                    }
-                }
+                let levels = |a| &paths.levels[cell(last, a)..];
+                event_value::<false>(&mut out[..lanes], c.discount, thresholds, *above, levels);
             }
             ControlKind::Geometric { asset, fixings } | ControlKind::GeometricCall { asset, fixings, .. } => {
                 let strike = match &c.kind {
@@ -1915,6 +1894,51 @@ impl Controls {
                     let g = (*o * inv).exp();
                     *o = c.discount * strike.map_or(g, |k| (g - k).max(0.0));
                 }
+            }
+        }
+    }
+}
+
+/// `discount` times the indicator that every listed asset's level (`levels(asset)`, from
+/// the first lane) is at or above its threshold (`above`), or every one below, per lane:
+/// written into `out`, or added to it (`ADD`). One pass over the lanes, vectorised for
+/// up to three underlyings (an event has at most three, [`super::digital`]); the
+/// indicator a product of 0/1 flags, not a select, which would become a masked store
+/// (slow on some CPUs).
+#[inline(always)]
+fn event_value<'a, const ADD: bool>(
+    out: &mut [f64],
+    discount: f64,
+    thresholds: &[(usize, f64)],
+    above: bool,
+    levels: impl Fn(usize) -> &'a [f64],
+) {
+    let flag = |s: f64, h: f64| f64::from(u8::from(if above { s >= h } else { s < h }));
+    let put = |o: &mut f64, v: f64| *o = if ADD { *o + v } else { v };
+    let n = out.len();
+    let at = |(a, h): (usize, f64)| (levels(a), h);
+    match *thresholds {
+        [t0] => {
+            let (s0, h0) = at(t0);
+            for (o, &s0) in out.iter_mut().zip(&s0[..n]) {
+                put(o, discount * flag(s0, h0));
+            }
+        }
+        [t0, t1] => {
+            let ((s0, h0), (s1, h1)) = (at(t0), at(t1));
+            for ((o, &s0), &s1) in out.iter_mut().zip(&s0[..n]).zip(&s1[..n]) {
+                put(o, discount * flag(s0, h0) * flag(s1, h1));
+            }
+        }
+        [t0, t1, t2] => {
+            let ((s0, h0), (s1, h1), (s2, h2)) = (at(t0), at(t1), at(t2));
+            for (((o, &s0), &s1), &s2) in out.iter_mut().zip(&s0[..n]).zip(&s1[..n]).zip(&s2[..n]) {
+                put(o, discount * flag(s0, h0) * flag(s1, h1) * flag(s2, h2));
+            }
+        }
+        _ => {
+            for (i, o) in out.iter_mut().enumerate() {
+                put(o, thresholds.iter().fold(discount, |v, &(a, h)| v * flag(levels(a)[i], h)));
             }
         }
     }
