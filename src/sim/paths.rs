@@ -2008,9 +2008,10 @@ impl Controls {
 /// `discount` times the indicator that every listed asset's level (`levels(asset)`, from
 /// the first lane) is at or above its threshold (`above`), or every one below, per lane:
 /// written into `out`, or added to it (`ADD`). One pass over the lanes, vectorised for
-/// up to three underlyings (an event has at most three, [`super::digital`]); the
-/// indicator a product of 0/1 flags, not a select, which would become a masked store
-/// (slow on some CPUs).
+/// up to three underlyings (an event has at most three, [`super::digital`]): the
+/// comparisons' masks combined, then `discount` or 0 selected as a value and stored
+/// whole (a select of what is kept in `out` would become a masked store, slow on some
+/// CPUs).
 #[inline(always)]
 fn event_value<'a, const ADD: bool>(
     out: &mut [f64],
@@ -2019,32 +2020,35 @@ fn event_value<'a, const ADD: bool>(
     above: bool,
     levels: impl Fn(usize) -> &'a [f64],
 ) {
-    let flag = |s: f64, h: f64| f64::from(u8::from(if above { s >= h } else { s < h }));
-    let put = |o: &mut f64, v: f64| *o = if ADD { *o + v } else { v };
+    let hit = |s: f64, h: f64| if above { s >= h } else { s < h };
+    let put = |o: &mut f64, all: bool| {
+        let v = if all { discount } else { 0.0 };
+        *o = if ADD { *o + v } else { v };
+    };
     let n = out.len();
     let at = |(a, h): (usize, f64)| (levels(a), h);
     match *thresholds {
         [t0] => {
             let (s0, h0) = at(t0);
             for (o, &s0) in out.iter_mut().zip(&s0[..n]) {
-                put(o, discount * flag(s0, h0));
+                put(o, hit(s0, h0));
             }
         }
         [t0, t1] => {
             let ((s0, h0), (s1, h1)) = (at(t0), at(t1));
             for ((o, &s0), &s1) in out.iter_mut().zip(&s0[..n]).zip(&s1[..n]) {
-                put(o, discount * flag(s0, h0) * flag(s1, h1));
+                put(o, hit(s0, h0) & hit(s1, h1));
             }
         }
         [t0, t1, t2] => {
             let ((s0, h0), (s1, h1), (s2, h2)) = (at(t0), at(t1), at(t2));
             for (((o, &s0), &s1), &s2) in out.iter_mut().zip(&s0[..n]).zip(&s1[..n]).zip(&s2[..n]) {
-                put(o, discount * flag(s0, h0) * flag(s1, h1) * flag(s2, h2));
+                put(o, hit(s0, h0) & hit(s1, h1) & hit(s2, h2));
             }
         }
         _ => {
             for (i, o) in out.iter_mut().enumerate() {
-                put(o, thresholds.iter().fold(discount, |v, &(a, h)| v * flag(levels(a)[i], h)));
+                put(o, thresholds.iter().all(|&(a, h)| hit(levels(a)[i], h)));
             }
         }
     }
