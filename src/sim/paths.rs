@@ -1202,12 +1202,7 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
     stopped.dedup_by(|x, y| x.0 == y.0 && x.1 == y.1);
     for (a, h) in stopped.into_iter().take(MOST_STOPPED) {
         let (total_drift, total_var) = (model.total_drift[last][a], model.total_variance[last][a]);
-        let rest = (0..=last)
-            .map(|k| {
-                let var = (total_var - model.total_variance[k][a]).max(0.0);
-                (total_drift - model.total_drift[k][a], var.sqrt())
-            })
-            .collect();
+        let rest = to_last(&model, a).map(|(drift, var)| (drift, var.sqrt())).collect();
         let log_threshold = h.ln();
         let chance = norm_cdf_hart((model.log_spot[a] + total_drift - log_threshold) / total_var.sqrt());
         list.push(Control {
@@ -1234,13 +1229,7 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
         if !(total_var > 0.0 && k > 0.0) {
             continue;
         }
-        let rest = (0..=last)
-            .map(|j| {
-                let var = (total_var - model.total_variance[j][a]).max(0.0);
-                let drift = total_drift - model.total_drift[j][a];
-                (drift, var.sqrt(), (drift + 0.5 * var).exp())
-            })
-            .collect();
+        let rest = to_last(&model, a).map(|(drift, var)| (drift, var.sqrt(), (drift + 0.5 * var).exp())).collect();
         // Black's formula on the last level's forward and total variance (unit time, no
         // rate: the discount factor is applied apart).
         let forward = (model.log_spot[a] + total_drift + 0.5 * total_var).exp();
@@ -1258,6 +1247,14 @@ fn add_digitals(p: &Program, discount: f64, list: &mut Vec<Control>) -> Option<I
         });
     }
     inner
+}
+
+/// Per grid index `k`, the drift and the variance of asset `a`'s log level from `tₖ` to
+/// the last date.
+fn to_last(model: &Model, a: usize) -> impl Iterator<Item = (f64, f64)> + '_ {
+    let last = model.total_drift.len() - 1;
+    let (total_drift, total_var) = (model.total_drift[last][a], model.total_variance[last][a]);
+    (0..=last).map(move |k| (total_drift - model.total_drift[k][a], (total_var - model.total_variance[k][a]).max(0.0)))
 }
 
 impl Inner {
@@ -1367,12 +1364,7 @@ impl Inner {
         let mut factor = [[0.0f64; CHUNK]; TERMS * TERMS];
         let mut estimate = [0.0f64; CHUNK];
         for start in (0..lanes).step_by(CHUNK) {
-            // The lanes that ended early, without a branch on each.
-            let mut m = 0;
-            for lane in start..(start + CHUNK).min(lanes) {
-                early[m] = lane;
-                m += usize::from(stop[lane] < last as f64);
-            }
+            let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
             let early = &early[..m];
             for e in 0..m {
                 for u in &mut u[..uniforms] {
@@ -1400,6 +1392,18 @@ impl Inner {
             }
         }
     }
+}
+
+/// The lanes of `range` that ended before grid index `last` (`stop[lane] < last`), in
+/// order, into the front of `early`; their count. Without a branch on each lane.
+#[inline(always)]
+fn ended_early(stop: &[f64], range: std::ops::Range<usize>, last: usize, early: &mut [usize]) -> usize {
+    let mut m = 0;
+    for lane in range {
+        early[m] = lane;
+        m += usize::from(stop[lane] < last as f64);
+    }
+    m
 }
 
 /// A uniform in `(0, 1)`, symmetric about ½: the top 53 bits of a draw, plus ½, times 2⁻⁵³.
@@ -1822,12 +1826,7 @@ impl Controls {
                 *o = c.discount * (strike - s).max(0.0);
             }
             for start in (0..lanes).step_by(CHUNK) {
-                // The lanes that ended early, without a branch on each.
-                let mut m = 0;
-                for lane in start..(start + CHUNK).min(lanes) {
-                    early[m] = lane;
-                    m += usize::from(stop[lane] < last as f64);
-                }
+                let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
                 for (i, &lane) in early[..m].iter().enumerate() {
                     let k = stop[lane] as usize;
                     let (drift, sd, growth) = rest[k];
