@@ -317,3 +317,40 @@ fn a_small_standard_error_is_shown_with_two_significant_digits() {
     assert!(row.contains(&format!(" {price_text} USD ")), "{row}");
     assert!(row.contains(&format!(" {se_text} ")), "{row}");
 }
+
+#[test]
+fn the_avx512_lane_loops_give_the_bits_of_the_avx2_ones() {
+    // Where the CPU has AVX-512 the lane loops (paths, operations, controls) run on it;
+    // `PATHFOLD_NO_AVX512` holds them to AVX2. The same IEEE operations either way, so
+    // every demo payoff prices to the same bits, in each sampling mode. (On a CPU without
+    // AVX-512 both runs take AVX2 and this compares a run with itself.)
+    let strip = |out: std::process::Output| -> String {
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8_lossy(&out.stdout).lines().filter(|l| !l.contains("elapsed")).collect::<Vec<_>>().join("\n")
+    };
+    let mut priced = 0;
+    for entry in
+        std::fs::read_dir(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("payoffs")).expect("the demo library")
+    {
+        let file = entry.expect("a demo file").path();
+        if file.extension().is_none_or(|e| e != "payoff") {
+            continue;
+        }
+        for mode in [&[][..], &["--no-antithetic"], &["--sampler", "sobol"]] {
+            let mut args = vec!["price", file.to_str().expect("a UTF-8 path"), "--paths", "3000", "--seed", "9"];
+            args.extend_from_slice(&["--threads", "1", "--format", "json"]);
+            args.extend_from_slice(mode);
+            let run = |narrow: bool| {
+                let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_pathfold"));
+                c.args(&args).current_dir(env!("CARGO_MANIFEST_DIR"));
+                if narrow {
+                    c.env("PATHFOLD_NO_AVX512", "1");
+                }
+                strip(c.output().expect("the binary runs"))
+            };
+            assert_eq!(run(false), run(true), "{} {mode:?}", file.display());
+            priced += 1;
+        }
+    }
+    assert!(priced >= 60, "demo payoffs priced: {priced}");
+}

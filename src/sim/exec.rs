@@ -364,6 +364,11 @@ impl Workspace {
     ) {
         #[cfg(target_arch = "x86_64")]
         {
+            if super::wide_lanes() {
+                // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+                unsafe { self.execute_avx512(p, controls, lanes, result, stepping) };
+                return;
+            }
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
                 unsafe { self.execute_avx2(p, controls, lanes, result, stepping) };
@@ -376,6 +381,19 @@ impl Workspace {
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
     unsafe fn execute_avx2(
+        &mut self,
+        p: &Program,
+        controls: &Controls,
+        lanes: usize,
+        result: &mut BlockResult,
+        stepping: Option<Stepping<'_>>,
+    ) {
+        self.execute_generic(p, controls, lanes, result, stepping);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+    unsafe fn execute_avx512(
         &mut self,
         p: &Program,
         controls: &Controls,
@@ -954,6 +972,11 @@ fn flag(b: bool) -> f64 {
 fn binary(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
     #[cfg(target_arch = "x86_64")]
     {
+        if super::wide_lanes() {
+            // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+            unsafe { binary_avx512(op, out, a, b) };
+            return;
+        }
         if std::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been checked for AVX2.
             unsafe { binary_avx2(op, out, a, b) };
@@ -966,6 +989,12 @@ fn binary(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
 unsafe fn binary_avx2(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
+    binary_generic(op, out, a, b);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+unsafe fn binary_avx512(op: Bin, out: &mut [f64], a: Arg<'_>, b: Arg<'_>) {
     binary_generic(op, out, a, b);
 }
 
@@ -1020,8 +1049,8 @@ mod tests {
         }
     }
 
-    /// Every operator gives the baseline build's bits with the build for this CPU, on
-    /// ordinary numbers and on the awkward ones (±0, ±∞, NaN, tiny and huge values), with
+    /// Every operator gives the baseline build's bits with the build for this CPU (and
+    /// AVX2's, where that is AVX-512's), on ordinary numbers and on the awkward ones (±0, ±∞, NaN, tiny and huge values), with
     /// either operand one value for all lanes.
     #[test]
     fn operators_give_the_baseline_bits_on_this_cpu() {
@@ -1058,6 +1087,13 @@ mod tests {
                 binary(op, &mut fast, x, y);
                 binary_generic(op, &mut plain, x, y);
                 assert!(fast.iter().zip(&plain).all(|(f, p)| f.to_bits() == p.to_bits()), "{op:?}");
+                // Where the build for this CPU is AVX-512's, AVX2's too.
+                #[cfg(target_arch = "x86_64")]
+                if std::is_x86_feature_detected!("avx2") {
+                    // SAFETY: the CPU has just been checked for AVX2.
+                    unsafe { binary_avx2(op, &mut fast, x, y) };
+                    assert!(fast.iter().zip(&plain).all(|(f, p)| f.to_bits() == p.to_bits()), "{op:?}, AVX2");
+                }
             }
         }
     }

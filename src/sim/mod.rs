@@ -37,6 +37,24 @@ use stats::BlockResult;
 
 /// Paths per block. Part of the definition of a seed's result: changing it changes the
 /// numbers every seed gives.
+/// Whether the lane loops run on the AVX-512 subsets they are also built for
+/// (foundation, doubleword and quadword, vector length): when the CPU has them, unless
+/// the environment sets `PATHFOLD_NO_AVX512` (then AVX2 at most, as on a CPU without
+/// them). Twice AVX2's lanes per instruction for the same IEEE additions,
+/// multiplications, divisions and selects, never fused: the same bits either way
+/// (tested by pricing with and without). Decided once per process.
+#[cfg(target_arch = "x86_64")]
+#[inline]
+pub(crate) fn wide_lanes() -> bool {
+    static WIDE: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *WIDE.get_or_init(|| {
+        std::env::var_os("PATHFOLD_NO_AVX512").is_none()
+            && std::is_x86_feature_detected!("avx512f")
+            && std::is_x86_feature_detected!("avx512dq")
+            && std::is_x86_feature_detected!("avx512vl")
+    })
+}
+
 pub const BLOCK: usize = 256;
 
 /// Blocks handed to the thread pool at a time; bounds memory for any path count.

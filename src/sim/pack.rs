@@ -48,7 +48,7 @@ impl Packing {
         self.masks.clear();
         #[cfg(target_arch = "x86_64")]
         {
-            if std::is_x86_feature_detected!("avx512f") {
+            if super::wide_lanes() {
                 // SAFETY: the CPU has just been checked for AVX-512F.
                 unsafe { self.masks_avx512(ended_at, after) };
             } else {
@@ -123,7 +123,7 @@ impl Packing {
         assert!(values.len() >= self.lanes);
         #[cfg(target_arch = "x86_64")]
         {
-            if std::is_x86_feature_detected!("avx512f") {
+            if super::wide_lanes() {
                 // SAFETY: the CPU has just been checked for AVX-512F, and `values` holds
                 // every lane the masks cover.
                 unsafe { self.front_avx512(values) };
@@ -141,7 +141,7 @@ impl Packing {
         let mut held = std::mem::take(&mut self.held);
         #[cfg(target_arch = "x86_64")]
         {
-            if std::is_x86_feature_detected!("avx512f") {
+            if super::wide_lanes() {
                 // SAFETY: the CPU has just been checked for AVX-512F.
                 unsafe { self.ended_avx512(values, &mut held) };
             } else {

@@ -311,6 +311,11 @@ impl PathBuffers {
     ) {
         #[cfg(target_arch = "x86_64")]
         {
+            if super::wide_lanes() {
+                // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+                unsafe { self.step_avx512(p, model, k, lanes, antithetic, block, given) };
+                return;
+            }
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
                 unsafe { self.step_avx2(p, model, k, lanes, antithetic, block, given) };
@@ -326,6 +331,22 @@ impl PathBuffers {
     #[target_feature(enable = "avx2")]
     #[allow(clippy::too_many_arguments)]
     unsafe fn step_avx2(
+        &mut self,
+        p: &Program,
+        model: &Model,
+        k: usize,
+        lanes: usize,
+        antithetic: bool,
+        block: usize,
+        given: Option<&[f64]>,
+    ) {
+        self.step_generic(p, model, k, lanes, antithetic, block, given);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+    #[allow(clippy::too_many_arguments)]
+    unsafe fn step_avx512(
         &mut self,
         p: &Program,
         model: &Model,
@@ -547,6 +568,11 @@ impl PathBuffers {
     fn step_some(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
         #[cfg(target_arch = "x86_64")]
         {
+            if super::wide_lanes() {
+                // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+                unsafe { self.step_some_avx512(p, model, k, lanes, block) };
+                return;
+            }
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
                 unsafe { self.step_some_avx2(p, model, k, lanes, block) };
@@ -560,6 +586,12 @@ impl PathBuffers {
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
     unsafe fn step_some_avx2(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
+        self.step_some_generic(p, model, k, lanes, block);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+    unsafe fn step_some_avx512(&mut self, p: &Program, model: &Model, k: usize, lanes: usize, block: usize) {
         self.step_some_generic(p, model, k, lanes, block);
     }
 
@@ -1480,6 +1512,11 @@ fn add_hedges(p: &Program, list: &mut Vec<Control>) -> Option<Hedge> {
 fn hedge_step3(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
     #[cfg(target_arch = "x86_64")]
     {
+        if super::wide_lanes() {
+            // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+            unsafe { hedge_step3_avx512(out, x, c) };
+            return;
+        }
         if std::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been checked for AVX2.
             unsafe { hedge_step3_avx2(out, x, c) };
@@ -1492,6 +1529,12 @@ fn hedge_step3(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
 unsafe fn hedge_step3_avx2(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
+    hedge_step3_generic(out, x, c);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+unsafe fn hedge_step3_avx512(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
     hedge_step3_generic(out, x, c);
 }
 
@@ -1689,12 +1732,33 @@ impl Controls {
     ) {
         #[cfg(target_arch = "x86_64")]
         {
+            if super::wide_lanes() {
+                // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+                unsafe { self.fill_avx512(p, paths, stop, rng, lanes, block, columns) };
+                return;
+            }
             if std::is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has just been checked for AVX2.
                 unsafe { self.fill_avx2(p, paths, stop, rng, lanes, block, columns) };
                 return;
             }
         }
+        self.fill_generic(p, paths, stop, rng, lanes, block, columns);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+    #[allow(clippy::too_many_arguments)]
+    unsafe fn fill_avx512(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        rng: &mut Pcg64,
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
         self.fill_generic(p, paths, stop, rng, lanes, block, columns);
     }
 

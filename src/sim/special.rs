@@ -19,6 +19,11 @@ use super::sobol::{ACKLAM_A, ACKLAM_B, ACKLAM_C, ACKLAM_D, ACKLAM_LOW};
 pub(super) fn exp_into(out: &mut [f64], x: &[f64]) {
     #[cfg(target_arch = "x86_64")]
     {
+        if super::wide_lanes() {
+            // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+            unsafe { exp_into_avx512(out, x) };
+            return;
+        }
         if std::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been checked for AVX2.
             unsafe { exp_into_avx2(out, x) };
@@ -31,6 +36,12 @@ pub(super) fn exp_into(out: &mut [f64], x: &[f64]) {
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
 unsafe fn exp_into_avx2(out: &mut [f64], x: &[f64]) {
+    exp_into_generic(out, x);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+unsafe fn exp_into_avx512(out: &mut [f64], x: &[f64]) {
     exp_into_generic(out, x);
 }
 
