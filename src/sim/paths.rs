@@ -1864,8 +1864,9 @@ impl Controls {
     }
 
     /// The stopped puts ([`ControlKind::StoppedPut`]): the payoff on the lanes that run
-    /// to the last date, Black's formula on the others, gathered per chunk of lanes so
-    /// that the normal probabilities run over those lanes alone and vectorise.
+    /// to the last date, Black's formula on the others, gathered once per chunk of lanes
+    /// for every put, so that the normal probabilities run over those lanes alone and
+    /// vectorise.
     #[inline(always)]
     fn stopped_put_values(
         &self,
@@ -1883,14 +1884,23 @@ impl Controls {
         // Per early lane (packed): the standardised log-moneyness of the strike's leg and
         // of the share's, and the level grown to the last date.
         let (mut near, mut far, mut grown) = ([0.0f64; CHUNK], [0.0f64; CHUNK], [0.0f64; CHUNK]);
-        for (c, col) in self.list.iter().zip(columns.iter_mut()) {
-            let ControlKind::StoppedPut { asset, strike, log_strike, rest } = &c.kind else { continue };
+        let puts = || {
+            self.list.iter().enumerate().filter_map(|(j, c)| match &c.kind {
+                ControlKind::StoppedPut { asset, strike, log_strike, rest } => {
+                    Some((j, c.discount, *asset, *strike, *log_strike, rest))
+                }
+                _ => None,
+            })
+        };
+        for (j, discount, asset, strike, ..) in puts() {
             let at_last = &paths.levels[(last * na + asset) * block..][..lanes];
-            for (o, &s) in col[..lanes].iter_mut().zip(at_last) {
-                *o = c.discount * (strike - s).max(0.0);
+            for (o, &s) in columns[j][..lanes].iter_mut().zip(at_last) {
+                *o = discount * (strike - s).max(0.0);
             }
-            for start in (0..lanes).step_by(CHUNK) {
-                let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
+        }
+        for start in (0..lanes).step_by(CHUNK) {
+            let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
+            for (j, discount, asset, strike, log_strike, rest) in puts() {
                 for (i, &lane) in early[..m].iter().enumerate() {
                     let k = stop[lane] as usize;
                     let (drift, sd, growth) = rest[k];
@@ -1903,10 +1913,10 @@ impl Controls {
                     grown[i] = level * growth;
                 }
                 for ((d2, d1), f) in near[..m].iter_mut().zip(&far[..m]).zip(&grown[..m]) {
-                    *d2 = c.discount * (strike * norm_cdf_hart_select(-*d2) - f * norm_cdf_hart_select(-d1));
+                    *d2 = discount * (strike * norm_cdf_hart_select(-*d2) - f * norm_cdf_hart_select(-d1));
                 }
                 for (&lane, &v) in early[..m].iter().zip(&near[..m]) {
-                    col[lane] = v;
+                    columns[j][lane] = v;
                 }
             }
         }
