@@ -7,6 +7,7 @@
 
 use rand_pcg::Pcg64;
 
+use super::condition::{self, Condition};
 use super::pack::Packing;
 use super::paths::{Controls, Model, PathBuffers};
 use super::rule;
@@ -41,6 +42,8 @@ pub struct Workspace {
     /// date it ended on (infinite while it runs).
     stops_early: bool,
     reads_to: Vec<usize>,
+    /// Per operation, the condition whose chain of operations starts there.
+    conditions: Vec<Option<Condition>>,
     end_dates: Vec<usize>,
     ended_at: Vec<f64>,
     /// While paths are stepped as they run: the lanes the operations ran over last (the
@@ -193,6 +196,7 @@ impl Workspace {
             qmc_scratch: Vec::new(),
             stops_early,
             reads_to: reads_to(p),
+            conditions: condition::conditions(p, &reads_to(p)),
             end_dates: end_dates(p).unwrap_or_default(),
             ended_at: vec![f64::INFINITY; BLOCK],
             active: BLOCK,
@@ -431,13 +435,22 @@ impl Workspace {
         // as they run).
         let all = lanes;
         let mut lanes = lanes;
-        for (index, op) in p.ops.iter().enumerate() {
+        let conditions = std::mem::take(&mut self.conditions);
+        let mut next = 0;
+        while let Some(op) = p.ops.get(next) {
+            let index = next;
             if let Some(st) = &mut stepping {
                 let to = self.reads_to[index];
                 if to > self.paths.stepped() {
                     lanes = self.advance(p, controls, st.model, index, to, lanes, all);
                 }
             }
+            if let Some(c) = &conditions[index] {
+                self.condition(c, lanes);
+                next += c.len;
+                continue;
+            }
+            next += 1;
             match *op {
                 Op::Bin { op, dst, a, b } => {
                     let mut out = std::mem::take(&mut self.regs[dst as usize]);
@@ -599,7 +612,24 @@ impl Workspace {
                 }
             }
         }
+        self.conditions = conditions;
         self.active = lanes;
+    }
+
+    /// Runs a condition's chain of operations in one pass ([`condition`]).
+    fn condition(&mut self, c: &Condition, lanes: usize) {
+        let mut out = std::mem::take(&mut self.regs[c.dst as usize]);
+        // Every lane of the block: the chain reads whole chunks of lanes.
+        let lanes_of = |src: Src| match self.arg(src, BLOCK) {
+            Arg::Lanes(s) => s,
+            Arg::Same(_) => unreachable!("a condition's sources are lanes"),
+        };
+        let mut terms: [&[f64]; condition::MOST_TERMS] = [&[]; condition::MOST_TERMS];
+        for (t, s) in terms.iter_mut().zip(&c.terms) {
+            *t = lanes_of(s.0);
+        }
+        condition::run(c, &mut out[..lanes], &terms[..c.terms.len()], c.mask.map(lanes_of));
+        self.regs[c.dst as usize] = out;
     }
 
     /// Steps the paths still running among the first `lanes` to grid index `to`, for the
@@ -1139,6 +1169,84 @@ mod tests {
         let market = std::path::Path::new("payoffs").join(market);
         let data = crate::market::Market::load(&market).expect("the demo market loads");
         Some(crate::compile::compile(&product, &data, &market).expect("a demo payoff compiles"))
+    }
+
+    /// Every demo payoff priced with its conditions' chains run in one pass gives the
+    /// bits of running their operations one by one: every block result and every path's
+    /// payoff, in each sampling mode, for whole and partial blocks.
+    #[test]
+    fn a_condition_run_in_one_pass_gives_the_bits_of_its_operations() {
+        let runs = [
+            Settings::default(),
+            Settings { antithetic: false, ..Settings::default() },
+            Settings { antithetic: false, control_variates: false, ..Settings::default() },
+        ];
+        let mut chained = 0;
+        for entry in std::fs::read_dir("payoffs").expect("the demo library") {
+            let file = entry.expect("a demo file").path();
+            if file.extension().is_none_or(|e| e != "payoff") {
+                continue;
+            }
+            let Some(p) = &demo_program(&file) else { continue };
+            let model = Model::new(p);
+            for settings in &runs {
+                let controls = Controls::for_run(p, settings);
+                let mut ws = Workspace::new(p, &model, &controls);
+                if settings.control_variates && ws.conditions.iter().any(Option::is_some) {
+                    chained += 1;
+                }
+                let mut one_by_one = Workspace::new(p, &model, &controls);
+                one_by_one.conditions.iter_mut().for_each(|c| *c = None);
+                for (block, lanes) in [(0, BLOCK), (1, BLOCK), (2, 77)] {
+                    let chain = ws.run_block(p, &model, &controls, settings, block, lanes);
+                    let ops = one_by_one.run_block(p, &model, &controls, settings, block, lanes);
+                    assert_eq!(chain, ops, "{}, block {block}", file.display());
+                    let bits = |w: &Workspace| w.payoffs()[..lanes].iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+                    assert_eq!(bits(&ws), bits(&one_by_one), "{}, block {block}", file.display());
+                }
+            }
+        }
+        assert!(chained >= 5, "demo payoffs with a condition run in one pass: {chained}");
+    }
+
+    /// A condition's chain is run in one pass only when nothing reads its links
+    /// afterwards: not the `min` of the values, not the comparison's outcome before the
+    /// `and`.
+    #[test]
+    fn a_condition_chain_is_taken_only_when_nothing_reads_its_links_later() {
+        let mut p = demo_program(std::path::Path::new("payoffs/worst_of_autocall.payoff")).expect("a market");
+        p.registers = 12;
+        let chain = vec![
+            Op::Bin { op: Bin::Add, dst: 5, a: Src::LogLevel(3), b: Src::Const(-4.6) },
+            Op::Bin { op: Bin::Add, dst: 6, a: Src::Const(-3.9), b: Src::LogLevel(4) },
+            Op::Bin { op: Bin::Min, dst: 7, a: Src::Reg(5), b: Src::Reg(6) },
+            Op::Bin { op: Bin::Ge, dst: 8, a: Src::Reg(7), b: Src::Const(0.0) },
+            Op::Bin { op: Bin::And, dst: 9, a: Src::Reg(ALIVE), b: Src::Reg(8) },
+            Op::Pay { mask: 9, amount: Src::Const(100.0), slot: 0, discount: 1.0, site: 0 },
+            Op::End { mask: 9, slot: 0 },
+        ];
+        let found = |p: &Program| condition::conditions(p, &vec![0; p.ops.len()]);
+        p.ops = chain.clone();
+        let c = found(&p)[0].clone().expect("a chain");
+        assert_eq!((c.len, c.dst, c.mask), (5, 9, Some(Src::Reg(ALIVE))));
+        assert_eq!(c.terms, vec![(Src::LogLevel(3), Some(-4.6)), (Src::LogLevel(4), Some(-3.9))]);
+        // The worst value is paid as well: the chain from there on is taken (the
+        // comparison and the `and`), not the whole one.
+        p.ops = chain.clone();
+        p.ops.push(Op::Pay { mask: ALIVE, amount: Src::Reg(7), slot: 0, discount: 1.0, site: 1 });
+        let found_here = found(&p);
+        assert!(found_here[..3].iter().all(Option::is_none), "{found_here:?}");
+        let c = found_here[3].clone().expect("the shorter chain");
+        assert_eq!((c.len, c.terms), (2, vec![(Src::Reg(7), None)]));
+        // The outcome before the `and` is read by an `else`.
+        p.ops = chain.clone();
+        p.ops.push(Op::Bin { op: Bin::AndNot, dst: 10, a: Src::Reg(ALIVE), b: Src::Reg(8) });
+        assert!(found(&p)[0].is_none());
+        // Written whole before anything reads it again: dead, and taken.
+        p.ops = chain;
+        p.ops.push(Op::Bin { op: Bin::Ge, dst: 8, a: Src::LogLevel(5), b: Src::Const(4.0) });
+        p.ops.push(Op::Pay { mask: 8, amount: Src::Const(1.0), slot: 0, discount: 1.0, site: 1 });
+        assert_eq!(found(&p)[0].as_ref().map(|c| c.len), Some(5));
     }
 
     /// Every control of the demo autocallables averages over the paths to the mean the

@@ -8,6 +8,7 @@
 //! same seed gives the same bits on any number of threads. Memory is bounded by the
 //! blocks in flight, not by the path count.
 
+mod condition;
 pub mod digital;
 pub mod exec;
 pub mod exercise;
