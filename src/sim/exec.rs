@@ -12,7 +12,7 @@ use super::pack::Packing;
 use super::paths::{Controls, Model, PathBuffers};
 use super::rule;
 use super::sobol::Qmc;
-use super::stats::{sum, BlockResult, Moments};
+use super::stats::{sum, sums, BlockResult, Moments};
 use super::{Settings, BLOCK};
 use crate::compile::{Acc, Bin, Op, Program, Src, Un, ALIVE};
 use crate::typing::{max_or_nan, min_or_nan};
@@ -26,6 +26,8 @@ pub struct Workspace {
     pv: Vec<f64>,
     /// Scratch lanes: one payment's amounts, or the lanes one `end` closes.
     paid: Vec<f64>,
+    /// Scratch lanes: the lanes a redemption closes (its amounts are in `paid`).
+    gone: Vec<f64>,
     columns: Vec<Vec<f64>>,
     /// The lanes an early-exercise decision reads (`may end`).
     choice: rule::Lanes,
@@ -44,6 +46,9 @@ pub struct Workspace {
     reads_to: Vec<usize>,
     /// Per operation, the condition whose chain of operations starts there.
     conditions: Vec<Option<Condition>>,
+    /// Whether a payment and the end of the same paths run as one pass ([`Self::redeem`];
+    /// a test runs them one by one).
+    redeems: bool,
     end_dates: Vec<usize>,
     ended_at: Vec<f64>,
     /// While paths are stepped as they run: the lanes the operations ran over last (the
@@ -189,6 +194,7 @@ impl Workspace {
             path_values: vec![vec![0.0; BLOCK]; p.path_values.len()],
             pv: vec![0.0; BLOCK],
             paid: vec![0.0; BLOCK],
+            gone: vec![0.0; BLOCK],
             columns: vec![vec![0.0; BLOCK]; 1 + controls.len()],
             choice: rule::Lanes::new(p.choices.iter().map(|c| c.using.len()).max().unwrap_or(0), BLOCK),
             stop: vec![0.0; BLOCK],
@@ -197,6 +203,7 @@ impl Workspace {
             stops_early,
             reads_to: reads_to(p),
             conditions: condition::conditions(p, &reads_to(p)),
+            redeems: true,
             end_dates: end_dates(p).unwrap_or_default(),
             ended_at: vec![f64::INFINITY; BLOCK],
             active: BLOCK,
@@ -524,6 +531,22 @@ impl Workspace {
                     self.regs[dst as usize] = out;
                 }
                 Op::Pay { mask, amount, slot, discount, site } => {
+                    // A payment to the paths that end just after (a redemption): one pass.
+                    if let Some(&Op::End { mask: ends, slot: end_slot }) = p.ops.get(next) {
+                        if ends == mask && mask != ALIVE && self.redeems {
+                            let end = End { slot: end_slot, index: next, early };
+                            self.redeem(
+                                p,
+                                controls,
+                                Payment { mask, amount, slot, discount, site },
+                                end,
+                                lanes,
+                                result,
+                            );
+                            next += 1;
+                            continue;
+                        }
+                    }
                     // Branch-free over lanes: the discounted amount where the mask is set,
                     // else 0, kept in `paid` for the total.
                     let (mut paid, mut pvs) = (std::mem::take(&mut self.paid), std::mem::take(&mut self.pv));
@@ -538,17 +561,7 @@ impl Workspace {
                         *pv += v;
                     }
                     let total = sum(&paid[..lanes]);
-                    result.paid[slot as usize] += total;
-                    result.note_total(total, site);
-                    // A non-finite amount makes the total non-finite; only then look closer
-                    // (a total of finite amounts can also overflow).
-                    if !total.is_finite() {
-                        let bad = paid[..lanes].iter().filter(|v| !v.is_finite()).count() as u64;
-                        if bad > 0 {
-                            let sites = p.pay_sites.len() + p.condition_sites.len();
-                            result.note_bad(site as usize, sites, bad);
-                        }
-                    }
+                    book(p, result, &paid[..lanes], total, slot, site);
                     (self.paid, self.pv) = (paid, pvs);
                 }
                 Op::End { mask, slot } => {
@@ -573,26 +586,17 @@ impl Workspace {
                         alive[..lanes].fill(0.0);
                     } else {
                         let m = &self.regs[mask as usize][..lanes];
-                        let gone = &mut self.paid[..lanes];
+                        let mut gone = std::mem::take(&mut self.paid);
                         // Selects, not branches (which lanes end is random): `&` evaluates
                         // both sides, and the loops vectorise.
-                        for (i, (a, g)) in alive[..lanes].iter_mut().zip(gone.iter_mut()).enumerate() {
+                        for (i, (a, g)) in alive[..lanes].iter_mut().zip(gone[..lanes].iter_mut()).enumerate() {
                             let end = (m[i] != 0.0) & (*a != 0.0);
                             *g = flag(end);
                             *a *= flag(!end);
                         }
-                        ended = sum(gone);
-                        if early {
-                            let own = self.end_dates[index] as f64;
-                            for (e, g) in self.ended_at[..lanes].iter_mut().zip(&*gone) {
-                                *e = e.min(if *g != 0.0 { own } else { f64::INFINITY });
-                            }
-                        }
-                        if let Some(from) = controls.end_known_from(index) {
-                            for (s, g) in self.stop[..lanes].iter_mut().zip(&*gone) {
-                                *s = s.min(if *g != 0.0 { from } else { f64::INFINITY });
-                            }
-                        }
+                        ended = sum(&gone[..lanes]);
+                        self.note_ends(controls, &gone[..lanes], End { slot, index, early });
+                        self.paid = gone;
                     }
                     result.ended[slot as usize] += ended;
                     self.regs[ALIVE as usize] = alive;
@@ -630,6 +634,59 @@ impl Workspace {
         }
         condition::run(c, &mut out[..lanes], &terms[..c.terms.len()], c.mask.map(lanes_of));
         self.regs[c.dst as usize] = out;
+    }
+
+    /// Records where the lanes `gone` flags end: their date when the paths are stepped as
+    /// they run, and where the controls learn the product's end.
+    #[inline(always)]
+    fn note_ends(&mut self, controls: &Controls, gone: &[f64], end: End) {
+        let lanes = gone.len();
+        if end.early {
+            let own = self.end_dates[end.index] as f64;
+            for (e, g) in self.ended_at[..lanes].iter_mut().zip(gone) {
+                *e = e.min(if *g != 0.0 { own } else { f64::INFINITY });
+            }
+        }
+        if let Some(from) = controls.end_known_from(end.index) {
+            for (s, g) in self.stop[..lanes].iter_mut().zip(gone) {
+                *s = s.min(if *g != 0.0 { from } else { f64::INFINITY });
+            }
+        }
+    }
+
+    /// A payment and the end of the paths it is paid on (`pay ...` then `end` under one
+    /// mask): the amounts, the present values, the alive flags and the lanes that end
+    /// in one pass, then both totals in another. The arithmetic of the two operations.
+    #[inline(always)]
+    fn redeem(
+        &mut self,
+        p: &Program,
+        controls: &Controls,
+        pay: Payment,
+        end: End,
+        lanes: usize,
+        result: &mut BlockResult,
+    ) {
+        let (mut paid, mut pvs, mut gone) =
+            (std::mem::take(&mut self.paid), std::mem::take(&mut self.pv), std::mem::take(&mut self.gone));
+        let mut alive = std::mem::take(&mut self.regs[ALIVE as usize]);
+        let m = &self.regs[pay.mask as usize][..lanes];
+        let out = Redeemed {
+            alive: &mut alive[..lanes],
+            gone: &mut gone[..lanes],
+            paid: &mut paid[..lanes],
+            pv: &mut pvs[..lanes],
+        };
+        match self.arg(pay.amount, lanes) {
+            Arg::Lanes(a) => redeem_lanes(m, a, pay.discount, out),
+            Arg::Same(x) => redeem_lanes(m, x, pay.discount, out),
+        }
+        let (total, ended) = sums(&paid[..lanes], &gone[..lanes]);
+        book(p, result, &paid[..lanes], total, pay.slot, pay.site);
+        self.note_ends(controls, &gone[..lanes], end);
+        result.ended[end.slot as usize] += ended;
+        (self.paid, self.pv, self.gone) = (paid, pvs, gone);
+        self.regs[ALIVE as usize] = alive;
     }
 
     /// Steps the paths still running among the first `lanes` to grid index `to`, for the
@@ -702,6 +759,67 @@ impl Workspace {
             Src::Const(x) => Arg::Same(x),
             Src::Monitor(m) => Arg::Lanes(&self.monitors[m as usize][..lanes]),
             Src::Path(v) => Arg::Lanes(&self.path_values[v as usize][..lanes]),
+        }
+    }
+}
+
+/// A `pay` operation's fields.
+#[derive(Clone, Copy)]
+struct Payment {
+    mask: u32,
+    amount: Src,
+    slot: u32,
+    discount: f64,
+    site: u32,
+}
+
+/// An `end` operation: its event slot, its place among the operations, and whether the
+/// paths are stepped as they run (then each lane's end date is kept).
+#[derive(Clone, Copy)]
+struct End {
+    slot: u32,
+    index: usize,
+    early: bool,
+}
+
+/// The lanes a redemption writes.
+struct Redeemed<'a> {
+    alive: &'a mut [f64],
+    gone: &'a mut [f64],
+    paid: &'a mut [f64],
+    pv: &'a mut [f64],
+}
+
+/// One pass of a redemption over the lanes of mask `m`: the discounted amount where it is
+/// set (else 0) paid and added to the present value, and the lanes alive there ended.
+/// Selects, not branches: which lanes are set is random.
+#[inline(always)]
+fn redeem_lanes(m: &[f64], amount: impl Lane, discount: f64, out: Redeemed<'_>) {
+    let n = m.len();
+    let (alive, gone, paid, pv) = (&mut out.alive[..n], &mut out.gone[..n], &mut out.paid[..n], &mut out.pv[..n]);
+    for i in 0..n {
+        let set = m[i] != 0.0;
+        let v = if set { amount.lane(i) * discount } else { 0.0 };
+        paid[i] = v;
+        pv[i] += v;
+        let ends = set & (alive[i] != 0.0);
+        gone[i] = flag(ends);
+        alive[i] *= flag(!ends);
+    }
+}
+
+/// Adds a payment's total over the block to the result, noting its size and, when the
+/// total is not a finite number, the paths whose amount was not.
+fn book(p: &Program, result: &mut BlockResult, paid: &[f64], total: f64, slot: u32, site: u32) {
+    result.paid[slot as usize] += total;
+    result.note_total(total, site);
+    // A non-finite amount makes the total non-finite; only then look closer (a total of
+    // finite amounts can also overflow).
+    if !total.is_finite() {
+        let bad = paid.iter().filter(|v| !v.is_finite()).count() as u64;
+        if bad > 0 {
+            let sites = p.pay_sites.len() + p.condition_sites.len();
+            result.note_bad(site as usize, sites, bad);
         }
     }
 }
@@ -1171,17 +1289,18 @@ mod tests {
         Some(crate::compile::compile(&product, &data, &market).expect("a demo payoff compiles"))
     }
 
-    /// Every demo payoff priced with its conditions' chains run in one pass gives the
-    /// bits of running their operations one by one: every block result and every path's
-    /// payoff, in each sampling mode, for whole and partial blocks.
+    /// Every demo payoff priced with its conditions' chains and its redemptions (a
+    /// payment and the end of the same paths) run in one pass gives the bits of running
+    /// their operations one by one: every block result and every path's payoff, in each
+    /// sampling mode, for whole and partial blocks.
     #[test]
-    fn a_condition_run_in_one_pass_gives_the_bits_of_its_operations() {
+    fn chains_run_in_one_pass_give_the_bits_of_their_operations() {
         let runs = [
             Settings::default(),
             Settings { antithetic: false, ..Settings::default() },
             Settings { antithetic: false, control_variates: false, ..Settings::default() },
         ];
-        let mut chained = 0;
+        let (mut chained, mut redeemed) = (0, 0);
         for entry in std::fs::read_dir("payoffs").expect("the demo library") {
             let file = entry.expect("a demo file").path();
             if file.extension().is_none_or(|e| e != "payoff") {
@@ -1195,8 +1314,15 @@ mod tests {
                 if settings.control_variates && ws.conditions.iter().any(Option::is_some) {
                     chained += 1;
                 }
+                let redeems = p.ops.windows(2).any(|w| {
+                    matches!((w[0], w[1]), (Op::Pay { mask, .. }, Op::End { mask: ends, .. }) if mask == ends && mask != ALIVE)
+                });
+                if settings.control_variates && redeems {
+                    redeemed += 1;
+                }
                 let mut one_by_one = Workspace::new(p, &model, &controls);
                 one_by_one.conditions.iter_mut().for_each(|c| *c = None);
+                one_by_one.redeems = false;
                 for (block, lanes) in [(0, BLOCK), (1, BLOCK), (2, 77)] {
                     let chain = ws.run_block(p, &model, &controls, settings, block, lanes);
                     let ops = one_by_one.run_block(p, &model, &controls, settings, block, lanes);
@@ -1207,6 +1333,7 @@ mod tests {
             }
         }
         assert!(chained >= 5, "demo payoffs with a condition run in one pass: {chained}");
+        assert!(redeemed >= 3, "demo payoffs with a redemption: {redeemed}");
     }
 
     /// A condition's chain is run in one pass only when nothing reads its links
