@@ -42,30 +42,37 @@ pub(super) fn chunk(
     let n = terms.len();
     debug_assert!(n <= MOST_TERMS);
     out[..m].fill(0.0);
+    // The term's event is `l·Zᵢ ≥ gap` (above) or `l·Zᵢ < gap` (below); the first term's
+    // gap reads no draw, so its chance is the same for a draw and its mirror.
+    let gap_of = |gap: &mut [f64; CHUNK], (pos, h): (usize, f64)| {
+        for (g, x) in gap[..m].iter_mut().zip(&x[pos][..m]) {
+            *g = h - x;
+        }
+    };
+    let mut first = [0.0f64; CHUNK];
+    if let Some(&term) = terms.first() {
+        let mut gap = [0.0f64; CHUNK];
+        gap_of(&mut gap, term);
+        first = chances(&gap[..m], &factor[0][..m], above);
+    }
     for mirror in [false, true] {
         let mut product = [1.0f64; CHUNK];
         let mut z = [[0.0f64; CHUNK]; MOST_TERMS];
         let mut gap = [0.0f64; CHUNK];
-        for (i, &(pos, h)) in terms.iter().enumerate() {
-            // The term's event is `l·Zᵢ ≥ gap` (above) or `l·Zᵢ < gap` (below). One
-            // straight loop per step, so each vectorises.
-            let gap = &mut gap[..m];
-            for (g, x) in gap.iter_mut().zip(&x[pos][..m]) {
-                *g = h - x;
-            }
-            for (j, zj) in z[..i].iter().enumerate() {
-                for ((g, f), zj) in gap.iter_mut().zip(&factor[i * n + j][..m]).zip(&zj[..m]) {
-                    *g -= f * zj;
-                }
-            }
+        for (i, &term) in terms.iter().enumerate() {
             let pivot = &factor[i * n + i][..m];
-            let mut chance = [0.0f64; CHUNK];
-            for ((c, &g), &l) in chance[..m].iter_mut().zip(&*gap).zip(pivot) {
-                let a = g / if l > 0.0 { l } else { 1.0 };
-                let p = norm_cdf_hart_select(if above { -a } else { a });
-                let known = if above { g <= 0.0 } else { g > 0.0 };
-                *c = if l > 0.0 { p } else { f64::from(u8::from(known)) };
-            }
+            // One straight loop per step, so each vectorises.
+            let chance = if i == 0 {
+                first
+            } else {
+                gap_of(&mut gap, term);
+                for (j, zj) in z[..i].iter().enumerate() {
+                    for ((g, f), zj) in gap[..m].iter_mut().zip(&factor[i * n + j][..m]).zip(&zj[..m]) {
+                        *g -= f * zj;
+                    }
+                }
+                chances(&gap[..m], pivot, above)
+            };
             for (p, c) in product[..m].iter_mut().zip(&chance[..m]) {
                 *p *= c;
             }
@@ -84,6 +91,20 @@ pub(super) fn chunk(
             *o += 0.5 * p;
         }
     }
+}
+
+/// Per lane, the chance `P(l·Z ≥ gap)` (`above`) or `P(l·Z < gap)` for a standard
+/// normal `Z`: known from the gap's sign when the pivot `l` is zero.
+#[inline(always)]
+fn chances(gap: &[f64], pivot: &[f64], above: bool) -> [f64; CHUNK] {
+    let mut chance = [0.0f64; CHUNK];
+    for ((c, &g), &l) in chance.iter_mut().zip(gap).zip(pivot) {
+        let a = g / if l > 0.0 { l } else { 1.0 };
+        let p = norm_cdf_hart_select(if above { -a } else { a });
+        let known = if above { g <= 0.0 } else { g > 0.0 };
+        *c = if l > 0.0 { p } else { f64::from(u8::from(known)) };
+    }
+    chance
 }
 
 #[cfg(test)]

@@ -199,19 +199,18 @@ pub(super) fn quantile_select(u: f64) -> f64 {
     let (a, b, c, d) = (ACKLAM_A, ACKLAM_B, ACKLAM_C, ACKLAM_D);
     let q = u - 0.5;
     let r = q * q;
-    let centre = q * (((((a[0] * r + a[1]) * r + a[2]) * r + a[3]) * r + a[4]) * r + a[5])
-        / (((((b[0] * r + b[1]) * r + b[2]) * r + b[3]) * r + b[4]) * r + 1.0);
+    let centre = (
+        q * (((((a[0] * r + a[1]) * r + a[2]) * r + a[3]) * r + a[4]) * r + a[5]),
+        (((((b[0] * r + b[1]) * r + b[2]) * r + b[3]) * r + b[4]) * r + 1.0),
+    );
     let low = u < 0.5;
     let p = if low { u } else { 1.0 - u };
     let s = (-2.0 * ln_poly(p)).sqrt();
-    let tail = (((((c[0] * s + c[1]) * s + c[2]) * s + c[3]) * s + c[4]) * s + c[5])
-        / ((((d[0] * s + d[1]) * s + d[2]) * s + d[3]) * s + 1.0);
-    let tail = if low { tail } else { -tail };
-    if u > ACKLAM_LOW && u < 1.0 - ACKLAM_LOW {
-        centre
-    } else {
-        tail
-    }
+    let top = ((((c[0] * s + c[1]) * s + c[2]) * s + c[3]) * s + c[4]) * s + c[5];
+    // `-(t / b)` is `(-t) / b` exactly: one division for both regions.
+    let tail = (if low { top } else { -top }, (((d[0] * s + d[1]) * s + d[2]) * s + d[3]) * s + 1.0);
+    let (top, bottom) = if u > ACKLAM_LOW && u < 1.0 - ACKLAM_LOW { centre } else { tail };
+    top / bottom
 }
 
 /// `ln x` for a positive normal number `x`, in plain arithmetic that vectorises:
