@@ -187,6 +187,7 @@ impl Workspace {
         paths.compute_levels_on(levels_read(p, controls));
         let stops_early = stops_early(p, controls);
         paths.steps_running_lanes(stops_early);
+        let reads_to = reads_to(p);
         Workspace {
             paths,
             regs: vec![vec![0.0; BLOCK]; p.registers],
@@ -201,8 +202,8 @@ impl Workspace {
             given: Vec::new(),
             qmc_scratch: Vec::new(),
             stops_early,
-            reads_to: reads_to(p),
-            conditions: condition::conditions(p, &reads_to(p)),
+            conditions: condition::conditions(p, &reads_to),
+            reads_to,
             redeems: true,
             end_dates: end_dates(p).unwrap_or_default(),
             ended_at: vec![f64::INFINITY; BLOCK],
