@@ -1417,7 +1417,7 @@ impl Inner {
                         factor[t][e] = *f;
                     }
                 }
-                orthant::chunk(&d.terms, d.above, &x, &factor, &u, m, &mut estimate);
+                orthant::chunk(&d.terms, d.above, &x, &factor, &u, whole_vectors(m), &mut estimate);
                 for (e, &lane) in early.iter().enumerate() {
                     columns[d.column][lane] = d.discount * estimate[e];
                 }
@@ -1436,6 +1436,16 @@ fn ended_early(stop: &[f64], range: std::ops::Range<usize>, last: usize, early: 
         m += usize::from(stop[lane] < last as f64);
     }
     m
+}
+
+/// `m` lanes of a chunk rounded up to whole vectors of eight: the lane-by-lane loops over
+/// a chunk's packed lanes run over that many, so none is left to a scalar remainder loop
+/// (eight times the cost per lane). The lanes past `m` hold what earlier lanes left there
+/// and their results are never read: each lane's arithmetic is its own, so the lanes
+/// that count get the same bits.
+#[inline(always)]
+fn whole_vectors(m: usize) -> usize {
+    ((m + 7) & !7).min(orthant::CHUNK)
 }
 
 /// A uniform in `(0, 1)`, symmetric about ½: the top 53 bits of a draw, plus ½, times 2⁻⁵³.
@@ -1877,7 +1887,7 @@ impl Controls {
         block: usize,
         columns: &mut [Vec<f64>],
     ) {
-        const CHUNK: usize = 64;
+        const CHUNK: usize = orthant::CHUNK;
         let na = p.assets.len();
         let last = p.grid.len() - 1;
         let mut early = [0usize; CHUNK];
@@ -1912,7 +1922,8 @@ impl Controls {
                     far[i] = standardised(x + sd * sd, sd);
                     grown[i] = level * growth;
                 }
-                for ((d2, d1), f) in near[..m].iter_mut().zip(&far[..m]).zip(&grown[..m]) {
+                let w = whole_vectors(m);
+                for ((d2, d1), f) in near[..w].iter_mut().zip(&far[..w]).zip(&grown[..w]) {
                     *d2 = discount * (strike * norm_cdf_hart_select(-*d2) - f * norm_cdf_hart_select(-d1));
                 }
                 for (&lane, &v) in early[..m].iter().zip(&near[..m]) {
