@@ -148,6 +148,28 @@ fn an_autocall_written_with_end_agrees_with_its_writing_without() {
 }
 
 #[test]
+fn controls_valued_when_the_product_ends_agree_whether_the_paths_keep_log_levels_or_not() {
+    // Two writings of one worst-of autocall: `worst >= 1.02` is compared in log levels
+    // (the paths keep them), `sqrt(worst) >= sqrt(1.02)` on the levels (the paths keep
+    // none, and the controls valued when the product ends take the logarithms
+    // themselves). The same draws, the same events up to a level within an ulp of a
+    // threshold, and the same controls up to the logarithm's last bits: prices and
+    // standard errors agree to 1e-9.
+    let body = |call: &str, barrier: &str| {
+        format!("dates q = 6 steps from start to 1.5y\nfor each t in q {{\n let worst = min(perf(PAIRA), perf(PAIRB))\n if {call} {{\n  pay 100 + 3 * position(t)\n  end\n }}\n if t == last(q) {{\n  pay if {barrier} then 100 else 100 * worst\n }}\n}}\n")
+    };
+    let args = ["--paths", "40000"];
+    let logs = price_text("compared_in_logs.payoff", "PAIRA, PAIRB", &body("worst >= 1.02", "worst >= 0.7"), &args);
+    let (call, barrier) = (format!("sqrt(worst) >= {}", 1.02f64.sqrt()), format!("sqrt(worst) >= {}", 0.7f64.sqrt()));
+    let levels = price_text("compared_in_levels.payoff", "PAIRA, PAIRB", &body(&call, &barrier), &args);
+    assert_eq!(controls(&logs), controls(&levels));
+    let ended = controls(&logs).iter().filter(|c| c.contains("valued when the product ends")).count();
+    assert!(ended >= 3, "digitals and puts valued when the product ends: {:?}", controls(&logs));
+    let ((p1, se1), (p2, se2)) = (price_se(&logs), price_se(&levels));
+    assert!((p1 - p2).abs() <= 1e-9 * p1.abs() && (se1 - se2).abs() <= 1e-9 * se1, "{p1} ± {se1} vs {p2} ± {se2}");
+}
+
+#[test]
 fn stopped_paths_give_the_same_bits_on_any_thread_count() {
     let body = "dates q = 8 steps from start to 2y\nfor each t in q {\n if min(perf(PAIRA), perf(PAIRB)) >= 1 {\n  pay 100 + position(t)\n  end\n }\n if t == last(q) {\n  pay 100\n }\n}\n";
     let run = |threads: &str| {

@@ -9,7 +9,7 @@ use rand_pcg::Pcg64;
 use super::normals::Normals;
 use super::orthant;
 use super::pack::Packing;
-use super::special::{exp_into, exp_one, norm_cdf_hart, norm_cdf_hart_select};
+use super::special::{exp_into, exp_one, ln_into, norm_cdf_hart, norm_cdf_hart_select};
 use crate::closed_form::{
     black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
 };
@@ -1013,6 +1013,8 @@ struct InnerDigital {
     above: bool,
     discount: f64,
     factor: Vec<Vec<f64>>,
+    /// Whether `factor` is the previous digital's (the same underlyings in the same order).
+    factor_as_before: bool,
 }
 
 /// The most assets [`Inner`] values digitals on, and the most terms one of them may have.
@@ -1360,69 +1362,87 @@ impl Inner {
                         semidefinite_cholesky(&sub, t)
                     })
                     .collect();
-                digitals.push(InnerDigital { column, terms, above: *above, discount: c.discount, factor });
+                let factor_as_before = digitals.last().is_some_and(|d: &InnerDigital| d.factor == factor);
+                digitals.push(InnerDigital {
+                    column,
+                    terms,
+                    above: *above,
+                    discount: c.discount,
+                    factor,
+                    factor_as_before,
+                });
                 c.name.push_str(", valued when the product ends");
             }
         }
         Some(Inner { assets, drift, digitals })
     }
 
-    /// Overwrites each digital's value on the lanes that ended before the last date with
-    /// the estimate of its probability given the levels the end is known at
-    /// ([`orthant::chunk`]). The uniforms are drawn after everything else the block draws:
-    /// lane by lane, one per term but the last of the digital with the most.
+    /// Overwrites each digital's value on a chunk's lanes that ended before the last date
+    /// (`early`, packed) with the estimate of its probability given the levels the end is
+    /// known at ([`orthant::chunk`]); `logs[a][e]` is asset `a`'s log level on the date
+    /// packed lane `e` ended. The uniforms are drawn after everything else the block
+    /// draws: lane by lane, one per term but the last of the digital with the most.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn values(
+    fn chunk(
         &self,
-        p: &Program,
-        paths: &PathBuffers,
         stop: &[f64],
+        early: &[usize],
+        logs: &[[f64; orthant::CHUNK]],
         rng: &mut Pcg64,
-        lanes: usize,
-        block: usize,
+        scratch: &mut InnerScratch,
         columns: &mut [Vec<f64>],
     ) {
-        use orthant::CHUNK;
-        const TERMS: usize = orthant::MOST_TERMS;
-        let (na, last) = (p.assets.len(), p.grid.len() - 1);
         let digitals = &self.digitals[..self.digitals.len().min(INNER_MOST)];
         let uniforms = digitals.iter().map(|d| d.terms.len() - 1).max().unwrap_or(0);
-        let mut early = [0usize; CHUNK];
-        // Per early lane (packed): each asset's log level at the end plus its drift to the
-        // last date, the uniforms, one digital's factor entries and its estimates.
-        let mut x = [[0.0f64; CHUNK]; TERMS];
-        let mut u = [[0.0f64; CHUNK]; TERMS];
-        let mut factor = [[0.0f64; CHUNK]; TERMS * TERMS];
-        let mut estimate = [0.0f64; CHUNK];
-        for start in (0..lanes).step_by(CHUNK) {
-            let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
-            let early = &early[..m];
-            for e in 0..m {
-                for u in &mut u[..uniforms] {
-                    u[e] = open_unit(rng);
-                }
+        let InnerScratch { x, u, factor, estimate } = scratch;
+        let m = early.len();
+        for e in 0..m {
+            for u in &mut u[..uniforms] {
+                u[e] = open_unit(rng);
             }
+        }
+        for (i, &a) in self.assets.iter().enumerate() {
             for (e, &lane) in early.iter().enumerate() {
-                let k = stop[lane] as usize;
-                for (i, &a) in self.assets.iter().enumerate() {
-                    let cell = (k * na + a) * block + lane;
-                    let log = if paths.logs.is_empty() { paths.levels[cell].ln() } else { paths.logs[cell] };
-                    x[i][e] = log + self.drift[k][i];
-                }
+                x[i][e] = logs[a][e] + self.drift[stop[lane] as usize][i];
             }
-            for d in digitals {
+        }
+        for (j, d) in digitals.iter().enumerate() {
+            // Digitals on the same underlyings in the same order share their factors.
+            if j == 0 || !d.factor_as_before {
                 for (e, &lane) in early.iter().enumerate() {
                     for (t, f) in d.factor[stop[lane] as usize].iter().enumerate() {
                         factor[t][e] = *f;
                     }
                 }
-                orthant::chunk(&d.terms, d.above, &x, &factor, &u, whole_vectors(m), &mut estimate);
-                for (e, &lane) in early.iter().enumerate() {
-                    columns[d.column][lane] = d.discount * estimate[e];
-                }
+            }
+            orthant::chunk(&d.terms, d.above, x, factor, u, whole_vectors(m), estimate);
+            for (e, &lane) in early.iter().enumerate() {
+                columns[d.column][lane] = d.discount * estimate[e];
             }
         }
+    }
+}
+
+/// [`Inner::chunk`]'s packed lanes: each asset's log level at the end plus its drift to
+/// the last date, the uniforms, one digital's factor entries and its estimates. Kept from
+/// chunk to chunk, so the lanes past a chunk's count hold finite values left there.
+struct InnerScratch {
+    x: [[f64; orthant::CHUNK]; orthant::MOST_TERMS],
+    u: [[f64; orthant::CHUNK]; orthant::MOST_TERMS],
+    factor: [[f64; orthant::CHUNK]; orthant::MOST_TERMS * orthant::MOST_TERMS],
+    estimate: [f64; orthant::CHUNK],
+}
+
+impl InnerScratch {
+    fn new() -> Box<Self> {
+        const ZERO: [f64; orthant::CHUNK] = [0.0; orthant::CHUNK];
+        Box::new(InnerScratch {
+            x: [ZERO; orthant::MOST_TERMS],
+            u: [ZERO; orthant::MOST_TERMS],
+            factor: [ZERO; orthant::MOST_TERMS * orthant::MOST_TERMS],
+            estimate: ZERO,
+        })
     }
 }
 
@@ -1807,11 +1827,8 @@ impl Controls {
         }
         if let Some(h) = &self.hedge {
             self.stopped_values(p, paths, stop, lanes, block, columns);
-            self.stopped_put_values(p, paths, stop, lanes, block, columns);
             self.hedge_values(h, p, paths, stop, lanes, block, columns);
-            if let Some(inner) = &self.inner {
-                inner.values(p, paths, stop, rng, lanes, block, columns);
-            }
+            self.early_values(p, paths, stop, rng, lanes, block, columns);
         }
     }
 
@@ -1873,62 +1890,96 @@ impl Controls {
         }
     }
 
-    /// The stopped puts ([`ControlKind::StoppedPut`]): the payoff on the lanes that run
-    /// to the last date, Black's formula on the others, gathered once per chunk of lanes
-    /// for every put, so that the normal probabilities run over those lanes alone and
-    /// vectorise.
+    /// The stopped puts ([`ControlKind::StoppedPut`]) and [`Inner`]'s digitals: on the
+    /// lanes that run to the last date, the puts' payoff (the digitals keep their
+    /// indicator); on the others, a chunk of lanes at a time and packed, Black's formula
+    /// and the digitals' estimates on the levels the product ended on. Each asset those
+    /// read has its level and log level on that date gathered once per chunk for all of
+    /// them, the logarithms in one pass, so that they and the normal probabilities run
+    /// over the packed lanes alone and vectorise.
+    #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn stopped_put_values(
+    fn early_values(
         &self,
         p: &Program,
         paths: &PathBuffers,
         stop: &[f64],
+        rng: &mut Pcg64,
         lanes: usize,
         block: usize,
         columns: &mut [Vec<f64>],
     ) {
-        const CHUNK: usize = orthant::CHUNK;
+        use orthant::CHUNK;
         let na = p.assets.len();
         let last = p.grid.len() - 1;
-        let mut early = [0usize; CHUNK];
-        // Per early lane (packed): the standardised log-moneyness of the strike's leg and
-        // of the share's, and the level grown to the last date.
-        let (mut near, mut far, mut grown) = ([0.0f64; CHUNK], [0.0f64; CHUNK], [0.0f64; CHUNK]);
-        let puts = || {
-            self.list.iter().enumerate().filter_map(|(j, c)| match &c.kind {
+        let puts: Vec<_> = self
+            .list
+            .iter()
+            .enumerate()
+            .filter_map(|(j, c)| match &c.kind {
                 ControlKind::StoppedPut { asset, strike, log_strike, rest } => {
                     Some((j, c.discount, *asset, *strike, *log_strike, rest))
                 }
                 _ => None,
             })
-        };
-        for (j, discount, asset, strike, ..) in puts() {
+            .collect();
+        if puts.is_empty() && self.inner.is_none() {
+            return;
+        }
+        for &(j, discount, asset, strike, ..) in &puts {
             let at_last = &paths.levels[(last * na + asset) * block..][..lanes];
             for (o, &s) in columns[j][..lanes].iter_mut().zip(at_last) {
                 *o = discount * (strike - s).max(0.0);
             }
         }
+        let mut read = vec![false; na];
+        for &(_, _, asset, ..) in &puts {
+            read[asset] = true;
+        }
+        for &a in self.inner.iter().flat_map(|i| &i.assets) {
+            read[a] = true;
+        }
+        // Per asset read and packed lane: the level and the log level on the lane's end
+        // date (ones and zeros to start with, so the lanes past a chunk's count stay finite).
+        let mut level = vec![[1.0f64; CHUNK]; na];
+        let mut log = vec![[0.0f64; CHUNK]; na];
+        let mut early = [0usize; CHUNK];
+        // Per packed lane: the standardised log-moneyness of a put's strike leg and of its
+        // share leg, and the level grown to the last date.
+        let (mut near, mut far, mut grown) = ([0.0f64; CHUNK], [0.0f64; CHUNK], [0.0f64; CHUNK]);
+        let mut scratch = self.inner.as_ref().map(|_| InnerScratch::new());
         for start in (0..lanes).step_by(CHUNK) {
             let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
-            for (j, discount, asset, strike, log_strike, rest) in puts() {
-                for (i, &lane) in early[..m].iter().enumerate() {
-                    let k = stop[lane] as usize;
-                    let (drift, sd, growth) = rest[k];
-                    let cell = (k * na + asset) * block + lane;
-                    let level = paths.levels[cell];
-                    let log = if paths.logs.is_empty() { level.ln() } else { paths.logs[cell] };
-                    let x = log - log_strike + drift;
-                    near[i] = standardised(x, sd);
-                    far[i] = standardised(x + sd * sd, sd);
-                    grown[i] = level * growth;
+            let (early, w) = (&early[..m], whole_vectors(m));
+            for a in (0..na).filter(|&a| read[a]) {
+                for (e, &lane) in early.iter().enumerate() {
+                    let cell = (stop[lane] as usize * na + a) * block + lane;
+                    level[a][e] = paths.levels[cell];
+                    if !paths.logs.is_empty() {
+                        log[a][e] = paths.logs[cell];
+                    }
                 }
-                let w = whole_vectors(m);
+                if paths.logs.is_empty() {
+                    ln_into(&mut log[a][..w], &level[a][..w]);
+                }
+            }
+            for &(j, discount, asset, strike, log_strike, rest) in &puts {
+                for (e, &lane) in early.iter().enumerate() {
+                    let (drift, sd, growth) = rest[stop[lane] as usize];
+                    let x = log[asset][e] - log_strike + drift;
+                    near[e] = standardised(x, sd);
+                    far[e] = standardised(x + sd * sd, sd);
+                    grown[e] = level[asset][e] * growth;
+                }
                 for ((d2, d1), f) in near[..w].iter_mut().zip(&far[..w]).zip(&grown[..w]) {
                     *d2 = discount * (strike * norm_cdf_hart_select(-*d2) - f * norm_cdf_hart_select(-d1));
                 }
-                for (&lane, &v) in early[..m].iter().zip(&near[..m]) {
+                for (&lane, &v) in early.iter().zip(&near[..m]) {
                     columns[j][lane] = v;
                 }
+            }
+            if let (Some(inner), Some(scratch)) = (&self.inner, &mut scratch) {
+                inner.chunk(stop, early, &log, rng, scratch, columns);
             }
         }
     }

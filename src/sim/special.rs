@@ -213,6 +213,26 @@ pub(super) fn quantile_select(u: f64) -> f64 {
     top / bottom
 }
 
+/// `ln x` for each value of `x`, into `out`: [`ln_poly`] over all of them (the loop
+/// vectorises), then the library's logarithm where a value is not a positive normal
+/// finite number (zero, subnormal, infinite, negative or NaN), so those get the
+/// library's answers.
+#[inline(always)]
+pub(super) fn ln_into(out: &mut [f64], x: &[f64]) {
+    let mut normal = true;
+    for (o, &x) in out.iter_mut().zip(x) {
+        normal &= (f64::MIN_POSITIVE..=f64::MAX).contains(&x);
+        *o = ln_poly(x);
+    }
+    if !normal {
+        for (o, &x) in out.iter_mut().zip(x) {
+            if !(f64::MIN_POSITIVE..=f64::MAX).contains(&x) {
+                *o = x.ln();
+            }
+        }
+    }
+}
+
 /// `ln x` for a positive normal number `x`, in plain arithmetic that vectorises:
 /// `x = 2ᵉ·m` with `m` in `[√½, √2)` from the bits, then `ln m = 2·atanh(s)`,
 /// `s = (m − 1)/(m + 1)`, by its series to `s²¹` (|s| ≤ 0.172: the next term is below
@@ -337,6 +357,28 @@ mod tests {
             );
         }
         assert_eq!(ln_poly(1.0), 0.0);
+    }
+
+    #[test]
+    fn the_lanes_logarithm_is_the_librarys_on_every_kind_of_value() {
+        // Positive normal numbers within the polynomial's few units in the last place; the
+        // others (zero, subnormal, infinite, negative, NaN) exactly the library's answers.
+        let x = [0.0, -0.0, 1e-310, f64::MIN_POSITIVE, 0.7, 1.0, 123.4, f64::MAX, f64::INFINITY, -2.0, f64::NAN];
+        let mut out = [0.0; 11];
+        ln_into(&mut out, &x);
+        for (&x, &got) in x.iter().zip(&out) {
+            let want = x.ln();
+            if (f64::MIN_POSITIVE..=f64::MAX).contains(&x) {
+                assert!((got - want).abs() <= 4.0 * f64::EPSILON * want.abs() || got == want, "ln {x}: {got}");
+            } else {
+                assert!(got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()), "ln {x}: {got} for {want}");
+            }
+        }
+        // All positive normal: the polynomial's own bits.
+        let x = [0.25, 3.0, 1e-200, 7.5e250];
+        let mut out = [0.0; 4];
+        ln_into(&mut out, &x);
+        assert!(x.iter().zip(&out).all(|(&x, &got)| got.to_bits() == ln_poly(x).to_bits()));
     }
 
     #[test]
