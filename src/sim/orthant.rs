@@ -16,7 +16,7 @@
 //! (relative error below 1.2e-9), which is the only departure from exactness: it moves a
 //! probability by about that fraction of itself.
 
-use super::special::{norm_cdf_hart_select, quantile_select};
+use super::special::{norm_cdfs_into, quantiles_into};
 
 /// Lanes per chunk.
 pub(super) const CHUNK: usize = 64;
@@ -79,9 +79,14 @@ pub(super) fn chunk(
             if i + 1 < n {
                 // Zᵢ on the event's side of `a`: the quantile of a uniform share of the
                 // chance (kept above the smallest normal number: finite).
-                for (((zi, &u), &c), &l) in z[i][..m].iter_mut().zip(&u[i][..m]).zip(&chance[..m]).zip(pivot) {
+                let mut share = [0.0f64; CHUNK];
+                for ((s, &u), &c) in share[..m].iter_mut().zip(&u[i][..m]).zip(&chance[..m]) {
                     let v = if mirror { 1.0 - u } else { u };
-                    let q = quantile_select((v * c).max(f64::MIN_POSITIVE));
+                    *s = (v * c).max(f64::MIN_POSITIVE);
+                }
+                let mut q = [0.0f64; CHUNK];
+                quantiles_into(&mut q[..m], &share[..m]);
+                for ((zi, &q), &l) in z[i][..m].iter_mut().zip(&q[..m]).zip(pivot) {
                     let drawn = if above { -q } else { q };
                     *zi = if l > 0.0 { drawn } else { 0.0 };
                 }
@@ -97,12 +102,17 @@ pub(super) fn chunk(
 /// normal `Z`: known from the gap's sign when the pivot `l` is zero.
 #[inline(always)]
 fn chances(gap: &[f64], pivot: &[f64], above: bool) -> [f64; CHUNK] {
-    let mut chance = [0.0f64; CHUNK];
-    for ((c, &g), &l) in chance.iter_mut().zip(gap).zip(pivot) {
+    let m = gap.len();
+    let mut x = [0.0f64; CHUNK];
+    for ((x, &g), &l) in x[..m].iter_mut().zip(gap).zip(pivot) {
         let a = g / if l > 0.0 { l } else { 1.0 };
-        let p = norm_cdf_hart_select(if above { -a } else { a });
+        *x = if above { -a } else { a };
+    }
+    let mut chance = [0.0f64; CHUNK];
+    norm_cdfs_into(&mut chance[..m], &x[..m]);
+    for ((c, &g), &l) in chance[..m].iter_mut().zip(gap).zip(pivot) {
         let known = if above { g <= 0.0 } else { g > 0.0 };
-        *c = if l > 0.0 { p } else { f64::from(u8::from(known)) };
+        *c = if l > 0.0 { *c } else { f64::from(u8::from(known)) };
     }
     chance
 }

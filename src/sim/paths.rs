@@ -9,7 +9,7 @@ use rand_pcg::Pcg64;
 use super::normals::Normals;
 use super::orthant;
 use super::pack::Packing;
-use super::special::{exp_into, exp_one, ln_into, norm_cdf_hart, norm_cdf_hart_select};
+use super::special::{exp_into, exp_one, ln_into, norm_cdf_hart, norm_cdfs_into};
 use crate::closed_form::{
     black_scholes, geometric_asian_discrete, geometric_average_forward, normal_orthant, OptionKind,
 };
@@ -1535,59 +1535,6 @@ fn add_hedges(p: &Program, list: &mut Vec<Control>) -> Option<Hedge> {
     hedge
 }
 
-/// One step of the three hedges of one asset over a block's lanes: `out` = (while alive,
-/// while worst, scaled by the worst), `x` = (level at the step's start, at its end, the
-/// worst performance at its start, the grid index the path stops at), `c` = (martingale
-/// factors at both ends, 1/spot, the step's grid index).
-fn hedge_step3(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if super::wide_lanes() {
-            // SAFETY: the CPU has just been checked for these AVX-512 subsets.
-            unsafe { hedge_step3_avx512(out, x, c) };
-            return;
-        }
-        if std::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU has just been checked for AVX2.
-            unsafe { hedge_step3_avx2(out, x, c) };
-            return;
-        }
-    }
-    hedge_step3_generic(out, x, c);
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn hedge_step3_avx2(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
-    hedge_step3_generic(out, x, c);
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f,avx512dq,avx512vl")]
-unsafe fn hedge_step3_avx512(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
-    hedge_step3_generic(out, x, c);
-}
-
-/// Additions, multiplications and selects only, never fused: the same bits with or
-/// without AVX2.
-#[inline(always)]
-fn hedge_step3_generic(out: [&mut [f64]; 3], x: [&[f64]; 4], c: [f64; 4]) {
-    let [alive, low, scaled] = out;
-    let [s0, s1, worst, stop] = x;
-    let [f0, f1, inv, now] = c;
-    let n = alive.len();
-    let (low, scaled, s0, s1, worst, stop) =
-        (&mut low[..n], &mut scaled[..n], &s0[..n], &s1[..n], &worst[..n], &stop[..n]);
-    for i in 0..n {
-        let step = s1[i] * f1 - s0[i] * f0;
-        let d = if now < stop[i] { step } else { 0.0 };
-        let w = if s0[i] * inv == worst[i] { d } else { 0.0 };
-        alive[i] += d;
-        low[i] += w;
-        scaled[i] += (worst[i] - 1.0) * w;
-    }
-}
-
 impl Controls {
     pub fn none() -> Self {
         Controls::default()
@@ -1883,8 +1830,10 @@ impl Controls {
                     let x = paths.logs[(k * na + asset) * block + lane] - log_threshold + drift;
                     *z = standardised(x, sd);
                 }
-                for (o, &z) in col[start..start + n].iter_mut().zip(&z[..n]) {
-                    *o = c.discount * norm_cdf_hart_select(z);
+                let mut chance = [0.0f64; CHUNK];
+                norm_cdfs_into(&mut chance[..n], &z[..n]);
+                for (o, &q) in col[start..start + n].iter_mut().zip(&chance[..n]) {
+                    *o = c.discount * q;
                 }
             }
         }
@@ -1967,12 +1916,15 @@ impl Controls {
                 for (e, &lane) in early.iter().enumerate() {
                     let (drift, sd, growth) = rest[stop[lane] as usize];
                     let x = log[asset][e] - log_strike + drift;
-                    near[e] = standardised(x, sd);
-                    far[e] = standardised(x + sd * sd, sd);
+                    near[e] = -standardised(x, sd);
+                    far[e] = -standardised(x + sd * sd, sd);
                     grown[e] = level[asset][e] * growth;
                 }
-                for ((d2, d1), f) in near[..w].iter_mut().zip(&far[..w]).zip(&grown[..w]) {
-                    *d2 = discount * (strike * norm_cdf_hart_select(-*d2) - f * norm_cdf_hart_select(-d1));
+                let (mut n2, mut n1) = ([0.0f64; CHUNK], [0.0f64; CHUNK]);
+                norm_cdfs_into(&mut n2[..w], &near[..w]);
+                norm_cdfs_into(&mut n1[..w], &far[..w]);
+                for ((v, n2), (n1, f)) in near[..w].iter_mut().zip(&n2[..w]).zip(n1[..w].iter().zip(&grown[..w])) {
+                    *v = discount * (strike * n2 - f * n1);
                 }
                 for (&lane, &v) in early.iter().zip(&near[..m]) {
                     columns[j][lane] = v;
@@ -2008,43 +1960,53 @@ impl Controls {
         if per_asset == 0 {
             return;
         }
-        let level = |k: usize, a: usize| &paths.levels[(k * na + a) * block..][..lanes];
         let inv_spot: Vec<f64> = p.assets.iter().map(|m| 1.0 / m.spot).collect();
-        let stop = &stop[..lanes];
-        let mut worst = vec![0.0; lanes];
-        // From the valuation date: the steps before it are fixings, known on every path
-        // (their gains would be a constant, not a zero-mean control).
-        for k in p.past..p.grid.len() - 1 {
-            worst.fill(f64::INFINITY);
-            for (a, inv) in inv_spot.iter().enumerate() {
-                for (w, s) in worst.iter_mut().zip(level(k, a)) {
-                    *w = w.min(s * inv);
+        // A group of lanes at a time, every step: each level is read once (the end of a
+        // step is the start of the next) and each hedge's gains add up in a small array
+        // that stays in the first-level cache, stored once. Per lane the same additions
+        // in the same order as step by step over the block: the same bits.
+        const GROUP: usize = 64;
+        // Per asset: the gains while alive, while the worst, scaled by the worst (the
+        // second unused with one asset).
+        let mut gains = vec![[[0.0f64; GROUP]; 3]; na];
+        let three = per_asset == 3;
+        for start in (0..lanes).step_by(GROUP) {
+            let g = GROUP.min(lanes - start);
+            let level = |k: usize, a: usize| &paths.levels[(k * na + a) * block + start..][..g];
+            let ends = &stop[start..start + g];
+            gains.fill([[0.0; GROUP]; 3]);
+            // From the valuation date: the steps before it are fixings, known on every
+            // path (their gains would be a constant, not a zero-mean control).
+            for k in p.past..p.grid.len() - 1 {
+                let mut worst = [f64::INFINITY; GROUP];
+                for (a, inv) in inv_spot.iter().enumerate() {
+                    for (w, s) in worst[..g].iter_mut().zip(level(k, a)) {
+                        *w = w.min(s * inv);
+                    }
+                }
+                let now = k as f64;
+                for (a, &inv) in inv_spot.iter().enumerate() {
+                    let (f0, f1) = (h.factor[k * na + a], h.factor[(k + 1) * na + a]);
+                    let (s0, s1, worst) = (level(k, a), level(k + 1, a), &worst[..g]);
+                    let [alive, low, scaled] = &mut gains[a];
+                    let (alive, low, scaled) = (&mut alive[..g], &mut low[..g], &mut scaled[..g]);
+                    // Held while the path is alive at the step's start: its end is known
+                    // from `stop` on, so `k < stop` is known at tₖ. Selects, not branches,
+                    // so the loop vectorises.
+                    for i in 0..g {
+                        let step = s1[i] * f1 - s0[i] * f0;
+                        let d = if now < ends[i] { step } else { 0.0 };
+                        let w = if !three || s0[i] * inv == worst[i] { d } else { 0.0 };
+                        alive[i] += d;
+                        low[i] += w;
+                        scaled[i] += (worst[i] - 1.0) * w;
+                    }
                 }
             }
-            for (a, inv) in inv_spot.iter().enumerate() {
-                let (f0, f1) = (h.factor[k * na + a], h.factor[(k + 1) * na + a]);
-                let (s0, s1) = (level(k, a), level(k + 1, a));
-                let cols = &mut columns[first + a * per_asset..first + (a + 1) * per_asset];
-                let (s0, s1, worst) = (&s0[..lanes], &s1[..lanes], &worst[..lanes]);
-                let now = k as f64;
-                // Held while the path is alive at the step's start: its end is known from
-                // `stop` on, so `k < stop` is known at tₖ. Selects, not branches, so the
-                // loops vectorise.
-                let stop = &stop[..lanes];
-                if let [alive, low, scaled] = cols {
-                    hedge_step3(
-                        [&mut alive[..lanes], &mut low[..lanes], &mut scaled[..lanes]],
-                        [s0, s1, worst, stop],
-                        [f0, f1, *inv, now],
-                    );
-                } else if let [alive, scaled] = cols {
-                    let (alive, scaled) = (&mut alive[..lanes], &mut scaled[..lanes]);
-                    for i in 0..lanes {
-                        let step = s1[i] * f1 - s0[i] * f0;
-                        let d = if now < stop[i] { step } else { 0.0 };
-                        alive[i] += d;
-                        scaled[i] += (worst[i] - 1.0) * d;
-                    }
+            for (a, [alive, low, scaled]) in gains.iter().enumerate() {
+                let sums: &[&[f64; GROUP]] = if three { &[alive, low, scaled] } else { &[alive, scaled] };
+                for (j, sum) in sums.iter().enumerate() {
+                    columns[first + a * per_asset + j][start..start + g].copy_from_slice(&sum[..g]);
                 }
             }
         }
