@@ -996,23 +996,24 @@ pub struct Controls {
 struct Inner {
     /// The assets the digitals read (at most three).
     assets: Vec<usize>,
-    /// Per grid index `k`: the drift of each of those assets' log level from `tₖ` to the
-    /// last date.
-    drift: Vec<Vec<f64>>,
+    /// The drift of each of those assets' log level from `tₖ` to the last date, at
+    /// `k·assets + i` for grid index `k` and asset `i`.
+    drift: Vec<f64>,
     digitals: Vec<InnerDigital>,
 }
 
 /// One digital [`Inner`] values: its column, its thresholds as (position in
-/// `Inner::assets`, log threshold), its side, its discount factor, and per grid index `k`
-/// the lower Cholesky factor (row by row, `terms²`) of the covariance of its terms' log
-/// returns from `tₖ` to the last date: `ρₐᵦ·Σⱼ₍ₖ,last₎ sⱼₐ·sⱼᵦ` over the model's steps.
+/// `Inner::assets`, log threshold), its side, its discount factor, and for each grid index
+/// `k` (from `k·terms²` on) the lower Cholesky factor (row by row) of the covariance of
+/// its terms' log returns from `tₖ` to the last date: `ρₐᵦ·Σⱼ₍ₖ,last₎ sⱼₐ·sⱼᵦ` over the
+/// model's steps.
 #[derive(Clone, Debug, PartialEq)]
 struct InnerDigital {
     column: usize,
     terms: Vec<(usize, f64)>,
     above: bool,
     discount: f64,
-    factor: Vec<Vec<f64>>,
+    factor: Vec<f64>,
     /// Whether `factor` is the previous digital's (the same underlyings in the same order).
     factor_as_before: bool,
 }
@@ -1325,10 +1326,10 @@ impl Inner {
         };
         // Per grid index, each asset's drift to the last date and the covariance of the
         // log returns from there (`cov[k][i·n + j]`).
-        let mut drift = Vec::with_capacity(last + 1);
+        let mut drift = Vec::with_capacity((last + 1) * n);
         let mut cov = Vec::with_capacity(last + 1);
         for k in 0..=last {
-            drift.push(assets.iter().map(|&a| model.total_drift[last][a] - model.total_drift[k][a]).collect());
+            drift.extend(assets.iter().map(|&a| model.total_drift[last][a] - model.total_drift[k][a]));
             let mut c = vec![0.0; n * n];
             for (i, &a) in assets.iter().enumerate() {
                 for (j, &b) in assets.iter().enumerate() {
@@ -1357,7 +1358,7 @@ impl Inner {
                 let t = terms.len();
                 let factor = cov
                     .iter()
-                    .map(|c| {
+                    .flat_map(|c| {
                         let sub: Vec<f64> = (0..t * t).map(|ij| c[terms[ij / t].0 * n + terms[ij % t].0]).collect();
                         semidefinite_cholesky(&sub, t)
                     })
@@ -1386,8 +1387,8 @@ impl Inner {
     #[inline(always)]
     fn chunk(
         &self,
-        stop: &[f64],
         early: &[usize],
+        ended: &[usize],
         logs: &[[f64; orthant::CHUNK]],
         rng: &mut Pcg64,
         scratch: &mut InnerScratch,
@@ -1402,17 +1403,19 @@ impl Inner {
                 u[e] = open_unit(rng);
             }
         }
+        let n = self.assets.len();
         for (i, &a) in self.assets.iter().enumerate() {
-            for (e, &lane) in early.iter().enumerate() {
-                x[i][e] = logs[a][e] + self.drift[stop[lane] as usize][i];
+            for ((x, &log), &k) in x[i][..m].iter_mut().zip(&logs[a][..m]).zip(&ended[..m]) {
+                *x = log + self.drift[k * n + i];
             }
         }
         for (j, d) in digitals.iter().enumerate() {
             // Digitals on the same underlyings in the same order share their factors.
             if j == 0 || !d.factor_as_before {
-                for (e, &lane) in early.iter().enumerate() {
-                    for (t, f) in d.factor[stop[lane] as usize].iter().enumerate() {
-                        factor[t][e] = *f;
+                let cells = d.terms.len() * d.terms.len();
+                for (t, factor) in factor[..cells].iter_mut().enumerate() {
+                    for (f, &k) in factor[..m].iter_mut().zip(&ended[..m]) {
+                        *f = d.factor[k * cells + t];
                     }
                 }
             }
@@ -1893,6 +1896,8 @@ impl Controls {
         let mut level = vec![[1.0f64; CHUNK]; na];
         let mut log = vec![[0.0f64; CHUNK]; na];
         let mut early = [0usize; CHUNK];
+        // Per packed lane: the grid index it ended at.
+        let mut ended = [0usize; CHUNK];
         // Per packed lane: the standardised log-moneyness of a put's strike leg and of its
         // share leg, and the level grown to the last date.
         let (mut near, mut far, mut grown) = ([0.0f64; CHUNK], [0.0f64; CHUNK], [0.0f64; CHUNK]);
@@ -1900,9 +1905,13 @@ impl Controls {
         for start in (0..lanes).step_by(CHUNK) {
             let m = ended_early(stop, start..(start + CHUNK).min(lanes), last, &mut early);
             let (early, w) = (&early[..m], whole_vectors(m));
+            for (k, &lane) in ended.iter_mut().zip(early) {
+                *k = stop[lane] as usize;
+            }
+            let ended = &ended[..m];
             for a in (0..na).filter(|&a| read[a]) {
-                for (e, &lane) in early.iter().enumerate() {
-                    let cell = (stop[lane] as usize * na + a) * block + lane;
+                for (e, (&lane, &k)) in early.iter().zip(ended).enumerate() {
+                    let cell = (k * na + a) * block + lane;
                     level[a][e] = paths.levels[cell];
                     if !paths.logs.is_empty() {
                         log[a][e] = paths.logs[cell];
@@ -1913,8 +1922,8 @@ impl Controls {
                 }
             }
             for &(j, discount, asset, strike, log_strike, rest) in &puts {
-                for (e, &lane) in early.iter().enumerate() {
-                    let (drift, sd, growth) = rest[stop[lane] as usize];
+                for (e, &k) in ended.iter().enumerate() {
+                    let (drift, sd, growth) = rest[k];
                     let x = log[asset][e] - log_strike + drift;
                     near[e] = -standardised(x, sd);
                     far[e] = -standardised(x + sd * sd, sd);
@@ -1931,7 +1940,7 @@ impl Controls {
                 }
             }
             if let (Some(inner), Some(scratch)) = (&self.inner, &mut scratch) {
-                inner.chunk(stop, early, &log, rng, scratch, columns);
+                inner.chunk(early, ended, &log, rng, scratch, columns);
             }
         }
     }
