@@ -55,10 +55,11 @@ pub(super) fn chunk(
         gap_of(&mut gap, term);
         first = chances(&gap[..m], &factor[0][..m], above);
     }
+    // The draws: each term's is written before the terms after it read it.
+    let mut z = [[0.0f64; CHUNK]; MOST_TERMS];
+    let mut gap = [0.0f64; CHUNK];
     for mirror in [false, true] {
         let mut product = [1.0f64; CHUNK];
-        let mut z = [[0.0f64; CHUNK]; MOST_TERMS];
-        let mut gap = [0.0f64; CHUNK];
         for (i, &term) in terms.iter().enumerate() {
             let pivot = &factor[i * n + i][..m];
             // One straight loop per step, so each vectorises.

@@ -1970,52 +1970,51 @@ impl Controls {
             return;
         }
         let inv_spot: Vec<f64> = p.assets.iter().map(|m| 1.0 / m.spot).collect();
-        // A group of lanes at a time, every step: each level is read once (the end of a
-        // step is the start of the next) and each hedge's gains add up in a small array
-        // that stays in the first-level cache, stored once. Per lane the same additions
+        // A group of lanes at a time through every step, the gains added up in the
+        // columns, whose group stays in the first-level cache. Per lane the same additions
         // in the same order as step by step over the block: the same bits.
         const GROUP: usize = 64;
-        // Per asset: the gains while alive, while the worst, scaled by the worst (the
-        // second unused with one asset).
-        let mut gains = vec![[[0.0f64; GROUP]; 3]; na];
-        let three = per_asset == 3;
         for start in (0..lanes).step_by(GROUP) {
-            let g = GROUP.min(lanes - start);
-            let level = |k: usize, a: usize| &paths.levels[(k * na + a) * block + start..][..g];
-            let ends = &stop[start..start + g];
-            gains.fill([[0.0; GROUP]; 3]);
+            let end = (start + GROUP).min(lanes);
+            let level = |k: usize, a: usize| &paths.levels[(k * na + a) * block..][start..end];
+            let ends = &stop[start..end];
             // From the valuation date: the steps before it are fixings, known on every
             // path (their gains would be a constant, not a zero-mean control).
             for k in p.past..p.grid.len() - 1 {
                 let mut worst = [f64::INFINITY; GROUP];
+                let worst = &mut worst[..end - start];
                 for (a, inv) in inv_spot.iter().enumerate() {
-                    for (w, s) in worst[..g].iter_mut().zip(level(k, a)) {
+                    for (w, s) in worst.iter_mut().zip(level(k, a)) {
                         *w = w.min(s * inv);
                     }
                 }
                 let now = k as f64;
                 for (a, &inv) in inv_spot.iter().enumerate() {
                     let (f0, f1) = (h.factor[k * na + a], h.factor[(k + 1) * na + a]);
-                    let (s0, s1, worst) = (level(k, a), level(k + 1, a), &worst[..g]);
-                    let [alive, low, scaled] = &mut gains[a];
-                    let (alive, low, scaled) = (&mut alive[..g], &mut low[..g], &mut scaled[..g]);
+                    let (s0, s1) = (level(k, a), level(k + 1, a));
+                    let cols = &mut columns[first + a * per_asset..first + (a + 1) * per_asset];
                     // Held while the path is alive at the step's start: its end is known
                     // from `stop` on, so `k < stop` is known at tₖ. Selects, not branches,
-                    // so the loop vectorises.
-                    for i in 0..g {
-                        let step = s1[i] * f1 - s0[i] * f0;
-                        let d = if now < ends[i] { step } else { 0.0 };
-                        let w = if !three || s0[i] * inv == worst[i] { d } else { 0.0 };
-                        alive[i] += d;
-                        low[i] += w;
-                        scaled[i] += (worst[i] - 1.0) * w;
+                    // so the loops vectorise.
+                    if let [alive, low, scaled] = cols {
+                        let (alive, low, scaled) = (&mut alive[start..end], &mut low[start..end], &mut scaled[start..end]);
+                        for i in 0..alive.len() {
+                            let step = s1[i] * f1 - s0[i] * f0;
+                            let d = if now < ends[i] { step } else { 0.0 };
+                            let w = if s0[i] * inv == worst[i] { d } else { 0.0 };
+                            alive[i] += d;
+                            low[i] += w;
+                            scaled[i] += (worst[i] - 1.0) * w;
+                        }
+                    } else if let [alive, scaled] = cols {
+                        let (alive, scaled) = (&mut alive[start..end], &mut scaled[start..end]);
+                        for i in 0..alive.len() {
+                            let step = s1[i] * f1 - s0[i] * f0;
+                            let d = if now < ends[i] { step } else { 0.0 };
+                            alive[i] += d;
+                            scaled[i] += (worst[i] - 1.0) * d;
+                        }
                     }
-                }
-            }
-            for (a, [alive, low, scaled]) in gains.iter().enumerate() {
-                let sums: &[&[f64; GROUP]] = if three { &[alive, low, scaled] } else { &[alive, scaled] };
-                for (j, sum) in sums.iter().enumerate() {
-                    columns[first + a * per_asset + j][start..start + g].copy_from_slice(&sum[..g]);
                 }
             }
         }
