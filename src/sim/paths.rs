@@ -258,6 +258,26 @@ impl PathBuffers {
     /// Puts every lane at the valuation date: past dates hold their fixings, the
     /// valuation date the spot. The block's normals are seeded from `rng`'s next draws.
     pub fn start(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if super::wide_lanes() {
+                // SAFETY: the CPU has just been checked for these AVX-512 subsets.
+                unsafe { self.start_avx512(p, model, rng, lanes, block) };
+                return;
+            }
+        }
+        self.start_generic(p, model, rng, lanes, block);
+    }
+
+    /// [`PathBuffers::start`]'s fills with the widest stores.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512dq,avx512vl")]
+    unsafe fn start_avx512(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
+        self.start_generic(p, model, rng, lanes, block);
+    }
+
+    #[inline(always)]
+    fn start_generic(&mut self, p: &Program, model: &Model, rng: &mut Pcg64, lanes: usize, block: usize) {
         self.normals.reseed(rng);
         let na = p.assets.len();
         for a in 0..na {
@@ -445,7 +465,10 @@ impl PathBuffers {
             }
         }
         self.stepped = k;
-        self.unit_last[..drawn].fill(k as u32);
+        // Read only by the paths stepped as they run (`keeps_units`).
+        if self.keeps_units {
+            self.unit_last[..drawn].fill(k as u32);
+        }
     }
 
     /// The bridge uniforms of the watched assets, drawn after every normal of the paths.
@@ -1997,7 +2020,8 @@ impl Controls {
                     // from `stop` on, so `k < stop` is known at tₖ. Selects, not branches,
                     // so the loops vectorise.
                     if let [alive, low, scaled] = cols {
-                        let (alive, low, scaled) = (&mut alive[start..end], &mut low[start..end], &mut scaled[start..end]);
+                        let (alive, low, scaled) =
+                            (&mut alive[start..end], &mut low[start..end], &mut scaled[start..end]);
                         for i in 0..alive.len() {
                             let step = s1[i] * f1 - s0[i] * f0;
                             let d = if now < ends[i] { step } else { 0.0 };
