@@ -133,6 +133,61 @@ impl Levels {
 /// The distinct events compared on the program's last grid date, over at most three
 /// assets each: at most [`MOST`] of them, the first in an order of the events themselves.
 pub fn last_date_events(p: &Program) -> Vec<Event> {
+    let last = p.grid.len().saturating_sub(1);
+    let mut events: Vec<Event> =
+        compared_events(p).into_iter().filter(|(date, _)| *date == last).map(|(_, e)| e).collect();
+    in_order(&mut events);
+    events.truncate(MOST);
+    events
+}
+
+/// The distinct events compared on the program's grid dates after the valuation date,
+/// over at most three assets each, with the dates each is compared on (in order): at most
+/// [`MOST`] of them, the first in an order of the events themselves.
+pub fn dated_events(p: &Program) -> Vec<(Event, Vec<usize>)> {
+    let mut events: Vec<Event> = Vec::new();
+    let compared = compared_events(p);
+    for (_, e) in &compared {
+        if !events.iter().any(|x| same_event(x, e)) {
+            events.push(e.clone());
+        }
+    }
+    in_order(&mut events);
+    events.truncate(MOST);
+    events
+        .into_iter()
+        .map(|e| {
+            let mut dates: Vec<usize> =
+                compared.iter().filter(|(_, x)| same_event(x, &e)).map(|(date, _)| *date).collect();
+            dates.sort_unstable();
+            dates.dedup();
+            (e, dates)
+        })
+        .collect()
+}
+
+/// In an order of their own, not the program's: two writings of one payoff that compare
+/// the same things get the same controls.
+fn in_order(events: &mut [Event]) {
+    events.sort_by(|x, y| {
+        y.above.cmp(&x.above).then_with(|| {
+            let key = |e: &Event| e.thresholds.iter().map(|t| (t.0, t.1.to_bits())).collect::<Vec<_>>();
+            key(x).cmp(&key(y))
+        })
+    });
+}
+
+/// Whether two events are one: the same side, the same assets, thresholds equal to
+/// within rounding.
+fn same_event(x: &Event, y: &Event) -> bool {
+    x.above == y.above
+        && x.thresholds.len() == y.thresholds.len()
+        && x.thresholds.iter().zip(&y.thresholds).all(|(a, b)| a.0 == b.0 && (a.1 - b.1).abs() <= 1e-12 * b.1)
+}
+
+/// Every (grid date, event) compared in the program after the valuation date, each pair
+/// once, in the program's order.
+fn compared_events(p: &Program) -> Vec<(usize, Event)> {
     let na = p.assets.len();
     let last = p.grid.len().saturating_sub(1);
     if na == 0 || last <= p.past {
@@ -161,7 +216,7 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
     // Only the comparisons whose outcome reaches a payment or an end.
     let choice_reads: Vec<Vec<Src>> = p.choices.iter().map(|c| c.using.clone()).collect();
     let live = crate::compile::live_ops(&p.ops, p.registers, &choice_reads, |_| false);
-    let mut events: Vec<Event> = Vec::new();
+    let mut events: Vec<(usize, Event)> = Vec::new();
     let mut compared = |regs: &[Option<Levels>], op: Bin, a: Src, b: Src| {
         if matches!(op, Bin::Lt | Bin::Le | Bin::Gt | Bin::Ge) {
             let pair = match (read(regs, a), read(regs, b)) {
@@ -170,7 +225,7 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
                 _ => None,
             };
             if let Some((l, c)) = pair {
-                note(&mut events, l, c, last);
+                note(&mut events, l, c, p.past);
             }
         }
     };
@@ -229,31 +284,18 @@ pub fn last_date_events(p: &Program) -> Vec<Event> {
             *r = value;
         }
     }
-    // In an order of their own, not the program's: two writings of one payoff that
-    // compare the same things get the same controls.
-    events.sort_by(|x, y| {
-        y.above.cmp(&x.above).then_with(|| {
-            let key = |e: &Event| e.thresholds.iter().map(|t| (t.0, t.1.to_bits())).collect::<Vec<_>>();
-            key(x).cmp(&key(y))
-        })
-    });
-    events.truncate(MOST);
     events
 }
 
-/// Records the event `l` compared with `c`, when it is on the last date and new.
-fn note(events: &mut Vec<Event>, l: Levels, c: f64, last: usize) {
+/// Records the event `l` compared with `c`, when it is after the valuation date (`past`)
+/// and new on its date.
+fn note(events: &mut Vec<(usize, Event)>, l: Levels, c: f64, past: usize) {
     let Some(c) = l.after.iter().rev().try_fold(c, |c, step| step.before(c)) else { return };
-    if l.date != last || !(c.is_finite() && c > 0.0) || l.terms.len() > 3 {
+    if l.date <= past || !(c.is_finite() && c > 0.0) || l.terms.len() > 3 {
         return;
     }
     let event = Event { thresholds: l.terms.iter().map(|&(a, w)| (a, c / w)).collect(), above: l.shape != Shape::Max };
-    let same = |e: &Event| {
-        e.above == event.above
-            && e.thresholds.len() == event.thresholds.len()
-            && e.thresholds.iter().zip(&event.thresholds).all(|(x, y)| x.0 == y.0 && (x.1 - y.1).abs() <= 1e-12 * y.1)
-    };
-    if !events.iter().any(same) {
-        events.push(event);
+    if !events.iter().any(|(date, e)| *date == l.date && same_event(e, &event)) {
+        events.push((l.date, event));
     }
 }

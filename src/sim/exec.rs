@@ -1383,8 +1383,8 @@ mod tests {
     /// Haug's worked examples), the puts valued when the product ends (Black's formula on the last
     /// level's forward, the same function), the digitals valued when the product ends
     /// and on earlier dates (normal orthant probabilities, `closed_form`, tested against
-    /// Genz's bivariate routine's values and quadrature) and the stopped hedges (mean zero: common
-    /// practice, optional stopping). A control whose paths missed its mean by more than
+    /// Genz's bivariate routine's values and quadrature), the stopped hedges and the
+    /// surprises (mean zero: common practice, optional stopping and one-step conditioning). A control whose paths missed its mean by more than
     /// six errors would be left out of the regression with a warning; this holds each to
     /// four, one by one (1,000 blocks: a 60% put of the demo is held to about 1%).
     #[test]

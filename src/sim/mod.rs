@@ -349,10 +349,81 @@ impl Drop for Lease<'_> {
     }
 }
 
+/// Blocks of the trial that decides whether the surprises pay for their time.
+const TRIAL_BLOCKS: u64 = 16;
+
+/// The block streams of that trial: none a run's own blocks use (a pseudo-random run's
+/// from 0, a Sobol run's from 2⁴⁰).
+const TRIAL_STREAMS: u64 = 1 << 62;
+
+/// What one normal probability of a surprise (with its gathers) costs against one step of
+/// one asset of a run with controls: 0.8 on the yardstick's W3 (5.7 ns against 7 ns),
+/// 0.5 on the demo autocallables (5.5 ns against 11 ns); the larger taken.
+const SURPRISE_COST: f64 = 0.8;
+
+/// The controls of a run: [`Controls::for_run`]'s, the surprises
+/// ([`paths::Controls::surprises`]) kept only when they pay for their time.
+///
+/// They cut the variance of an autocallable whose end is its main risk (W3: a cut of
+/// 35× becomes 64×) but cost a normal probability per asset on each date a path is alive
+/// at, which on a product with many dated events costs more than it saves (the demo
+/// autocallables: 87× becomes 95× for twice the time). So a trial of 4,096 paths, on
+/// streams of its own and the same for any thread count, regresses the payoff with and
+/// without them; they stay when the variance ratio beats `1 + cost`, the cost their
+/// normal probabilities per path (from the trial's own ends) against the run's
+/// asset-steps, at [`SURPRISE_COST`]. The decision does not depend on the path count, so
+/// a run grown to a target error gets the controls of a run of its final size. Products
+/// with early exercise (whose fitted rule would need the trial first) go without them.
+pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
+    let controls = Controls::for_run(program, settings);
+    let trial_paths = TRIAL_BLOCKS * BLOCK as u64;
+    if controls.surprises().is_empty() {
+        return controls;
+    }
+    if !program.choices.is_empty() {
+        return controls.without_surprises();
+    }
+    let model = paths::Model::new(program);
+    let mut ws = Workspace::new(program, &model, &controls);
+    let mut total = BlockResult::new(1 + controls.len(), program.events.len(), program.payments.len());
+    let mut one = BlockResult::new(0, 0, 0);
+    for b in 0..TRIAL_BLOCKS {
+        ws.run_block_into(program, &model, &controls, settings, TRIAL_STREAMS | b, BLOCK, None, &mut one);
+        total.merge(&one);
+    }
+    let known = |j: usize| regress::Known { mean: controls.mean(j), scale: controls.scale(j) };
+    let with = regress::regress(&total.moments, &(0..controls.len()).map(known).collect::<Vec<_>>()).std_error;
+    let surprises = controls.surprises();
+    let others: Vec<usize> = (0..controls.len()).filter(|j| !surprises.contains(j)).collect();
+    let (n, mean, m2) = total.moments.parts();
+    let d = 1 + controls.len();
+    let rows: Vec<usize> = std::iter::once(0).chain(others.iter().map(|&j| 1 + j)).collect();
+    let sub_mean = rows.iter().map(|&i| mean[i]).collect();
+    let sub_m2 = rows.iter().flat_map(|&i| rows.iter().map(move |&j| m2[i * d + j])).collect();
+    let without = stats::Moments::from_parts(n, sub_mean, sub_m2)
+        .map(|m| regress::regress(&m, &others.iter().map(|&j| known(j)).collect::<Vec<_>>()).std_error);
+    // The fraction of paths alive at each grid date, from the trial's ends.
+    let mut alive = vec![1.0; program.grid.len()];
+    for (slot, e) in program.events.iter().enumerate() {
+        let gone = total.ended[slot] / trial_paths as f64;
+        for (a, &t) in alive.iter_mut().zip(&program.grid) {
+            if e.time < t - 1e-12 {
+                *a -= gone;
+            }
+        }
+    }
+    let steps = (program.grid.len() - 1 - program.past) * program.assets.len();
+    let cost = SURPRISE_COST * controls.surprise_work(&alive) / steps.max(1) as f64;
+    match without {
+        Some(without) if with > 0.0 && (without / with).powi(2) >= 1.0 + cost => controls,
+        _ => controls.without_surprises(),
+    }
+}
+
 impl<'a> Run<'a> {
     fn new(program: &'a Program, settings: &'a Settings) -> Self {
         let model = paths::Model::new(program);
-        let controls = Controls::for_run(program, settings);
+        let controls = controls_for(program, settings);
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
         Run {

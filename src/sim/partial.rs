@@ -14,7 +14,7 @@ use std::time::Instant;
 use rayon::prelude::*;
 
 use super::exec::Workspace;
-use super::paths::{self, Controls};
+use super::paths;
 use super::stats::{BlockResult, Moments};
 use super::{Estimate, Run, Settings, BLOCK, BLOCKS_IN_FLIGHT};
 use crate::compile::Program;
@@ -55,7 +55,7 @@ pub struct Shape {
 
 impl Shape {
     pub fn of(program: &Program, settings: &Settings) -> Shape {
-        let controls = Controls::for_run(program, settings);
+        let controls = super::controls_for(program, settings);
         Shape {
             dims: 1 + controls.len(),
             events: program.events.len(),
@@ -79,7 +79,7 @@ pub fn simulate_blocks(program: &Program, settings: &Settings, range: Range<u64>
     let fitted = super::exercise::prepare(program, settings);
     let program = &*fitted;
     let model = paths::Model::new(program);
-    let controls = Controls::for_run(program, settings);
+    let controls = super::controls_for(program, settings);
     let paths = paths_run(settings);
     let mut out = Vec::with_capacity((range.end - range.start) as usize);
     let mut next = range.start;

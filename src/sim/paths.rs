@@ -962,6 +962,62 @@ enum ControlKind {
     /// those dates. It reads every date of every path, so it is made only for runs that
     /// simulate every path to its last date ([`Controls::for_run`]).
     Dated { thresholds: Vec<(usize, f64)>, above: bool, dates: Vec<(usize, f64)> },
+    /// An event the payoff compares on some dates (every listed asset at or above its
+    /// threshold, `above`, or every one below), read as its surprises step by step: on
+    /// each of those dates `tₖ` that a path is alive at (its end not known before `tₖ`),
+    /// the discounted sum over the event's assets `c` of the indicator less the chance
+    /// of it given the levels at `tₖ₋₁` and the other assets' moves over the step, that
+    /// is `1{event} − 1{the others' conditions}·P(c's condition | the others' moves)`.
+    /// Given all that was known before `c`'s own move, each term has mean zero, and the
+    /// weights (alive, discount) are known at `tₖ₋₁`: the control's mean is exactly zero
+    /// (common practice, as for the stopped hedges). `terms` = (asset, log threshold).
+    Surprise { terms: Vec<(usize, f64)>, above: bool, steps: Vec<SurpriseStep> },
+}
+
+/// One date of a [`ControlKind::Surprise`]: its grid index and discount factor, each
+/// term's drift over the step ending there, and per term `c` the law of `c`'s move given
+/// the others' (the model's joint normal law of the step): its mean is
+/// `drift_c + Σᵢ given[c].0[i]·(moveᵢ − driftᵢ)` and its standard deviation `given[c].1`.
+#[derive(Clone, Debug, PartialEq)]
+struct SurpriseStep {
+    k: usize,
+    discount: f64,
+    drift: Vec<f64>,
+    given: Vec<(Vec<f64>, f64)>,
+}
+
+impl SurpriseStep {
+    /// The step ending at grid index `k` for the event's `assets`.
+    fn new(model: &Model, assets: &[usize], k: usize, discount: f64) -> Self {
+        let t = assets.len();
+        let rho =
+            |a: usize, b: usize| -> f64 { model.cholesky[a].iter().zip(&model.cholesky[b]).map(|(x, y)| x * y).sum() };
+        let cov = |a: usize, b: usize| rho(a, b) * model.scale[k][a] * model.scale[k][b];
+        let given = (0..t)
+            .map(|c| {
+                // The others first, `c` last: with the lower factor `L` of their covariance,
+                // the others' moves give their normals by forward substitution, and `c`'s
+                // move is `L[c]·Z`, its own normal's part `L[c][c]·Z_c` left random. Run on
+                // each unit move, the substitution gives the coefficients of the mean.
+                let order: Vec<usize> = (0..t).filter(|&i| i != c).chain([c]).collect();
+                let sub: Vec<f64> = (0..t * t).map(|ij| cov(assets[order[ij / t]], assets[order[ij % t]])).collect();
+                let l = semidefinite_cholesky(&sub, t);
+                let mut beta = vec![0.0; t];
+                for (u, &unit) in order[..t - 1].iter().enumerate() {
+                    let mut z = vec![0.0; t - 1];
+                    for i in 0..t - 1 {
+                        let moved = if i == u { 1.0 } else { 0.0 };
+                        let known: f64 = (0..i).map(|j| l[i * t + j] * z[j]).sum();
+                        let pivot = l[i * t + i];
+                        z[i] = if pivot > 0.0 { (moved - known) / pivot } else { 0.0 };
+                    }
+                    beta[unit] = (0..t - 1).map(|j| l[(t - 1) * t + j] * z[j]).sum();
+                }
+                (beta, l[t * t - 1])
+            })
+            .collect();
+        SurpriseStep { k, discount, drift: assets.iter().map(|&a| model.drift[k][a]).collect(), given }
+    }
 }
 
 /// The most stopped digitals one program gets: each costs a normal probability on every
@@ -1623,13 +1679,66 @@ impl Controls {
                 scale: 1.0,
             });
         }
+        for (event, on) in super::digital::dated_events(p) {
+            let assets: Vec<usize> = event.thresholds.iter().map(|t| t.0).collect();
+            let steps: Vec<SurpriseStep> = on
+                .iter()
+                .filter(|&&k| k > p.past)
+                .map(|&k| SurpriseStep::new(&model, &assets, k, discount_to(p, k)))
+                .collect();
+            if steps.is_empty() {
+                continue;
+            }
+            dated.push(Control {
+                name: format!(
+                    "{}, surprises on {} date{} while alive",
+                    event_name(p, &event.thresholds, event.above),
+                    steps.len(),
+                    if steps.len() == 1 { "" } else { "s" }
+                ),
+                kind: ControlKind::Surprise {
+                    terms: event.thresholds.iter().map(|&(a, h)| (a, h.ln())).collect(),
+                    above: event.above,
+                    steps,
+                },
+                discount: 1.0,
+                mean: 0.0,
+                scale: 1.0,
+            });
+        }
         self.list.extend(dated);
+    }
+
+    /// The columns of the surprises ([`ControlKind::Surprise`]), the last in the list.
+    pub fn surprises(&self) -> Vec<usize> {
+        (0..self.list.len()).filter(|&j| matches!(self.list[j].kind, ControlKind::Surprise { .. })).collect()
+    }
+
+    /// The controls without the surprises: the others keep their columns.
+    pub fn without_surprises(mut self) -> Self {
+        self.list.retain(|c| !matches!(c.kind, ControlKind::Surprise { .. }));
+        self
+    }
+
+    /// The normal probabilities the surprises take per path, when `alive[k]` is the
+    /// fraction of paths alive at grid date `k`: one per asset of the event on each of
+    /// its dates a path is alive at.
+    pub fn surprise_work(&self, alive: &[f64]) -> f64 {
+        self.list
+            .iter()
+            .map(|c| match &c.kind {
+                ControlKind::Surprise { terms, steps, .. } => {
+                    steps.iter().map(|s| alive.get(s.k).copied().unwrap_or(1.0)).sum::<f64>() * terms.len() as f64
+                }
+                _ => 0.0,
+            })
+            .sum()
     }
 
     /// Whether a control reads the levels of every date of every path, also after the
     /// path has ended ([`ControlKind::Dated`]).
     pub fn reads_every_date(&self) -> bool {
-        self.list.iter().any(|c| matches!(c.kind, ControlKind::Dated { .. }))
+        self.list.iter().any(|c| matches!(c.kind, ControlKind::Dated { .. } | ControlKind::Surprise { .. }))
     }
 
     /// For each underlying: its discounted last level (expectation `S₀e^{−qT}`) and the
@@ -1802,6 +1911,7 @@ impl Controls {
             self.stopped_values(p, paths, stop, lanes, block, columns);
             self.hedge_values(h, p, paths, stop, lanes, block, columns);
             self.early_values(p, paths, stop, rng, lanes, block, columns);
+            self.surprise_values(p, paths, stop, lanes, block, columns);
         }
     }
 
@@ -1968,6 +2078,124 @@ impl Controls {
         }
     }
 
+    /// The surprises ([`ControlKind::Surprise`]): date by date, a chunk of the lanes alive
+    /// at it at a time, packed, the event's log levels at the date and the one before
+    /// gathered, then the chances of each asset's condition given the others' moves, all
+    /// in straight loops over the packed lanes.
+    #[inline(always)]
+    fn surprise_values(
+        &self,
+        p: &Program,
+        paths: &PathBuffers,
+        stop: &[f64],
+        lanes: usize,
+        block: usize,
+        columns: &mut [Vec<f64>],
+    ) {
+        use orthant::{CHUNK, MOST_TERMS};
+        let na = p.assets.len();
+        let mut alive = [0usize; CHUNK];
+        // Per term and packed lane: the log level before the step and after it (ones to
+        // start with: the lanes past a chunk's count stay finite), the move less its
+        // drift, whether the term's condition is met, and its chance given the others'
+        // moves; per lane, the value.
+        let mut before = [[1.0f64; CHUNK]; MOST_TERMS];
+        let mut after = [[1.0f64; CHUNK]; MOST_TERMS];
+        let mut chance = [[0.0f64; CHUNK]; MOST_TERMS];
+        let (mut moved, mut met) = ([[0.0f64; CHUNK]; MOST_TERMS], [[0.0f64; CHUNK]; MOST_TERMS]);
+        let mut value = [0.0f64; CHUNK];
+        for (j, c) in self.list.iter().enumerate() {
+            let ControlKind::Surprise { terms, above, steps } = &c.kind else { continue };
+            let above = *above;
+            let t = terms.len();
+            columns[j][..lanes].fill(0.0);
+            for step in steps {
+                let k = step.k;
+                for start in (0..lanes).step_by(CHUNK) {
+                    let mut m = 0;
+                    for lane in start..(start + CHUNK).min(lanes) {
+                        alive[m] = lane;
+                        m += usize::from(stop[lane] >= k as f64);
+                    }
+                    if m == 0 {
+                        continue;
+                    }
+                    let w = whole_vectors(m);
+                    for (i, &(a, _)) in terms.iter().enumerate() {
+                        for (date, out) in [(k - 1, &mut before[i]), (k, &mut after[i])] {
+                            let cell = (date * na + a) * block;
+                            if paths.logs.is_empty() {
+                                let mut level = [1.0f64; CHUNK];
+                                for (l, &lane) in level.iter_mut().zip(&alive[..m]) {
+                                    *l = paths.levels[cell + lane];
+                                }
+                                ln_into(&mut out[..w], &level[..w]);
+                            } else {
+                                for (o, &lane) in out.iter_mut().zip(&alive[..m]) {
+                                    *o = paths.logs[cell + lane];
+                                }
+                            }
+                        }
+                    }
+                    // Each term's move less its drift, and whether its condition is met.
+                    for i in 0..t {
+                        let (lh, drift) = (terms[i].1, step.drift[i]);
+                        for (((mv, hit), &a), &b) in
+                            moved[i][..w].iter_mut().zip(&mut met[i][..w]).zip(&after[i][..w]).zip(&before[i][..w])
+                        {
+                            *mv = (a - b) - drift;
+                            *hit = f64::from(u8::from(if above { a >= lh } else { a < lh }));
+                        }
+                    }
+                    for (c, (beta, sd)) in step.given.iter().enumerate() {
+                        let mut z = [0.0f64; CHUNK];
+                        for (z, &b) in z[..w].iter_mut().zip(&before[c][..w]) {
+                            *z = b + step.drift[c];
+                        }
+                        for (i, &beta) in beta.iter().enumerate().filter(|&(i, _)| i != c) {
+                            for (z, &mv) in z[..w].iter_mut().zip(&moved[i][..w]) {
+                                *z += beta * mv;
+                            }
+                        }
+                        let lh = terms[c].1;
+                        for z in &mut z[..w] {
+                            let gap = *z - lh;
+                            *z = standardised(if above { gap } else { -gap }, *sd);
+                        }
+                        norm_cdfs_into(&mut chance[c][..w], &z[..w]);
+                    }
+                    // Σ_c (1{all} − 1{all but c}·chance_c), discounted.
+                    let mut all = [1.0f64; CHUNK];
+                    for met in &met[..t] {
+                        for (a, &h) in all[..w].iter_mut().zip(&met[..w]) {
+                            *a *= h;
+                        }
+                    }
+                    value[..w].fill(0.0);
+                    for (c, chance) in chance[..t].iter().enumerate() {
+                        let mut others = [1.0f64; CHUNK];
+                        for met in met[..t].iter().enumerate().filter(|&(i, _)| i != c).map(|(_, m)| m) {
+                            for (o, &h) in others[..w].iter_mut().zip(&met[..w]) {
+                                *o *= h;
+                            }
+                        }
+                        for (((v, &a), &o), &q) in
+                            value[..w].iter_mut().zip(&all[..w]).zip(&others[..w]).zip(&chance[..w])
+                        {
+                            *v += a - o * q;
+                        }
+                    }
+                    for v in &mut value[..w] {
+                        *v *= step.discount;
+                    }
+                    for (&lane, &v) in alive[..m].iter().zip(&value[..m]) {
+                        columns[j][lane] += v;
+                    }
+                }
+            }
+        }
+    }
+
     /// The stopped-hedge controls, all in one pass over the steps.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
@@ -2100,7 +2328,10 @@ impl Controls {
                 }
             }
             // Filled for all assets at once by `hedge_values`; by `stopped_values`.
-            ControlKind::Hedge { .. } | ControlKind::StoppedDigital { .. } | ControlKind::StoppedPut { .. } => {}
+            ControlKind::Hedge { .. }
+            | ControlKind::StoppedDigital { .. }
+            | ControlKind::StoppedPut { .. }
+            | ControlKind::Surprise { .. } => {}
             ControlKind::Dated { thresholds, above, dates } => {
                 let out = &mut out[..lanes];
                 out.fill(0.0);
@@ -2250,6 +2481,54 @@ fn curve_controls(p: &Program, c: &crate::dynamics::GridCurves) -> Vec<Control> 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A model of one step with the given scales and correlation factor.
+    fn one_step(scale: Vec<f64>, cholesky: Vec<Vec<f64>>) -> Model {
+        let n = scale.len();
+        Model {
+            drift: vec![vec![0.0; n], vec![0.01; n]],
+            scale: vec![vec![0.0; n], scale.clone()],
+            log_spot: vec![0.0; n],
+            cholesky,
+            uncorrelated: false,
+            watched: Vec::new(),
+            total_drift: vec![vec![0.0; n], vec![0.01; n]],
+            total_variance: vec![vec![0.0; n], scale.iter().map(|s| s * s).collect()],
+        }
+    }
+
+    #[test]
+    fn a_surprise_step_has_the_law_of_one_move_given_the_others() {
+        // Against the textbook conditional normal law (common practice): the mean of X_c
+        // given the others X_o is Σ_co Σ_oo⁻¹ (x_o − μ_o) and its variance
+        // Σ_cc − Σ_co Σ_oo⁻¹ Σ_oc, the 2×2 inverse written out.
+        let rho = [[1.0, 0.5, -0.3], [0.5, 1.0, 0.6], [-0.3, 0.6, 1.0]];
+        let l = semidefinite_cholesky(&rho.concat(), 3);
+        let chol: Vec<Vec<f64>> = (0..3).map(|i| l[i * 3..i * 3 + 3].to_vec()).collect();
+        let sd = vec![0.1, 0.15, 0.2];
+        let model = one_step(sd.clone(), chol);
+        let step = SurpriseStep::new(&model, &[0, 1, 2], 1, 1.0);
+        let cov = |i: usize, j: usize| rho[i][j] * sd[i] * sd[j];
+        for c in 0..3 {
+            let o: Vec<usize> = (0..3).filter(|&i| i != c).collect();
+            let (a, b, d) = (cov(o[0], o[0]), cov(o[0], o[1]), cov(o[1], o[1]));
+            let det = a * d - b * b;
+            let inv = [[d / det, -b / det], [-b / det, a / det]];
+            let beta: Vec<f64> = (0..2).map(|j| (0..2).map(|i| cov(c, o[i]) * inv[i][j]).sum()).collect();
+            let var = cov(c, c) - (0..2).map(|j| beta[j] * cov(o[j], c)).sum::<f64>();
+            let (got_beta, got_sd) = &step.given[c];
+            assert_eq!(got_beta[c], 0.0);
+            for (j, &i) in o.iter().enumerate() {
+                assert!((got_beta[i] - beta[j]).abs() < 1e-12, "c {c}: β {got_beta:?} for {beta:?}");
+            }
+            assert!((got_sd - var.sqrt()).abs() < 1e-12, "c {c}: sd {got_sd} for {}", var.sqrt());
+        }
+        // Two perfectly correlated assets: each is its partner's move scaled, none left random.
+        let model = one_step(vec![0.1, 0.3], vec![vec![1.0, 0.0], vec![1.0, 0.0]]);
+        let step = SurpriseStep::new(&model, &[0, 1], 1, 1.0);
+        assert!((step.given[0].0[1] - 1.0 / 3.0).abs() < 1e-12 && step.given[0].1.abs() < 1e-9, "{:?}", step.given);
+        assert!((step.given[1].0[0] - 3.0).abs() < 1e-12 && step.given[1].1.abs() < 1e-9, "{:?}", step.given);
+    }
 
     #[test]
     fn the_semidefinite_factor_reproduces_its_matrix() {
