@@ -42,16 +42,24 @@ fn a_two_date_autocall_on_one_asset_matches_its_bivariate_closed_form() {
     // a(t) = μ√t/σ: price = 105·e^{−0.5r}·N(a(0.5)) + 110·e^{−r}·M(−a(0.5), a(1); −√0.5),
     // M the bivariate normal distribution (src/closed_form, checked against published
     // values there) (common practice: the joint law of a Brownian motion at two dates).
-    let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if perf(BOOKA) >= 1 {\n  pay 100 + 5 * position(t)\n  end\n }\n}\n";
+    let v = price_text("two_dates.payoff", "BOOKA", TWO_DATES, &["--paths", "200000"]);
+    let (p, se) = price_se(&v);
+    assert!(controls(&v).iter().any(|c| c.contains("hedge")), "{v}");
+    assert_within("two-date autocall", p, se, two_dates_reference(), 4.0);
+}
+
+/// A two-date autocall on BOOKA: 105 at 0.5y if at or above its initial level, else 110
+/// at 1y if it is.
+const TWO_DATES: &str =
+    "dates obs = 0.5y, 1y\nfor each t in obs {\n if perf(BOOKA) >= 1 {\n  pay 100 + 5 * position(t)\n  end\n }\n}\n";
+
+/// [`TWO_DATES`]' closed form: `105·e^{−0.5r}·N(a(0.5)) + 110·e^{−r}·M(−a(0.5), a(1); −√0.5)`.
+fn two_dates_reference() -> f64 {
     let (sigma, q) = (0.25, 0.04);
     let mu = R - q - 0.5 * sigma * sigma;
     let a = |t: f64| mu * t.sqrt() / sigma;
-    let reference = 105.0 * (-0.5 * R).exp() * norm_cdf(a(0.5))
-        + 110.0 * (-R).exp() * bivariate_norm_cdf(-a(0.5), a(1.0), -(0.5f64).sqrt());
-    let v = price_text("two_dates.payoff", "BOOKA", body, &["--paths", "200000"]);
-    let (p, se) = price_se(&v);
-    assert!(controls(&v).iter().any(|c| c.contains("hedge")), "{v}");
-    assert_within("two-date autocall", p, se, reference, 4.0);
+    105.0 * (-0.5 * R).exp() * norm_cdf(a(0.5))
+        + 110.0 * (-R).exp() * bivariate_norm_cdf(-a(0.5), a(1.0), -(0.5f64).sqrt())
 }
 
 #[test]
@@ -61,20 +69,20 @@ fn the_surprises_of_an_autocall_keep_its_bivariate_closed_form() {
     // practice as for the stopped hedges): the same reference (the bivariate normal law of
     // a Brownian motion at two dates, common practice), within 4 standard errors that
     // the surprises make about half as wide as without them.
-    let body = "dates obs = 0.5y, 1y\nfor each t in obs {\n if perf(BOOKA) >= 1 {\n  pay 100 + 5 * position(t)\n  end\n }\n}\n";
-    let (sigma, q) = (0.25, 0.04);
-    let mu = R - q - 0.5 * sigma * sigma;
-    let a = |t: f64| mu * t.sqrt() / sigma;
-    let reference = 105.0 * (-0.5 * R).exp() * norm_cdf(a(0.5))
-        + 110.0 * (-R).exp() * bivariate_norm_cdf(-a(0.5), a(1.0), -(0.5f64).sqrt());
-    let v =
-        common::price_body("surprises.payoff", "BOOKA", body, MarketArg::File(MARKET), "37", &["--paths", "300000"]);
+    let v = common::price_body(
+        "surprises.payoff",
+        "BOOKA",
+        TWO_DATES,
+        MarketArg::File(MARKET),
+        "37",
+        &["--paths", "300000"],
+    );
     let (p, se) = price_se(&v);
     assert!(
         controls(&v).iter().any(|c| c == "BOOKA at or above 100% of spot, surprises on 2 dates while alive"),
         "{v}"
     );
-    assert_within("two-date autocall with surprises", p, se, reference, 4.0);
+    assert_within("two-date autocall with surprises", p, se, two_dates_reference(), 4.0);
     assert!(v["variance_reduction"].as_f64().unwrap() > 200.0, "{v}");
 }
 
