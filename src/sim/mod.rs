@@ -218,14 +218,16 @@ fn simulate_sobol(program: &Program, settings: &Settings, started: Instant) -> R
     let qmc = sobol::Qmc::new(&program.grid, program.assets.len(), settings.seed);
     let count = sobol::RANDOMISATIONS as u64;
     let per = settings.paths.div_ceil(count).div_ceil(BLOCK as u64) * BLOCK as u64;
+    // The controls once for every randomisation (their trial runs once).
+    let controls = controls_for(program, settings);
     let mut runs = Vec::with_capacity(sobol::RANDOMISATIONS);
     for r in 0..sobol::RANDOMISATIONS {
-        let mut run = Run::new(program, settings);
+        let mut run = Run::with_controls(program, settings, controls.clone());
         run.points = Some((&qmc, r));
         run.extend_to(per);
         runs.push(run);
     }
-    let mut pooled = Run::new(program, settings);
+    let mut pooled = Run::with_controls(program, settings, controls);
     for run in &runs {
         pooled.total.merge(&run.total);
     }
@@ -349,8 +351,14 @@ impl Drop for Lease<'_> {
     }
 }
 
-/// Blocks of the trial that decides whether the surprises pay for their time.
+/// Blocks of the trial that decides whether the surprises pay for their time, at most:
+/// 16 (4,096 paths), fewer on a long schedule, so that the trial simulates at most
+/// [`TRIAL_BLOCK_DATES`] block-dates (one block on a schedule of 64 dates or more: a run
+/// of the fewest paths allowed, one block, then costs at most twice its own time).
 const TRIAL_BLOCKS: u64 = 16;
+
+/// The most block-dates (blocks times grid dates) a trial simulates.
+const TRIAL_BLOCK_DATES: u64 = 1024;
 
 /// The block streams of that trial: none a run's own blocks use (a pseudo-random run's
 /// from 0, a Sobol run's from 2⁴⁰).
@@ -367,16 +375,17 @@ const SURPRISE_COST: f64 = 0.8;
 /// They cut the variance of an autocallable whose end is its main risk (W3: a cut of
 /// 35× becomes 64×) but cost a normal probability per asset on each date a path is alive
 /// at, which on a product with many dated events costs more than it saves (the demo
-/// autocallables: 87× becomes 95× for twice the time). So a trial of 4,096 paths, on
-/// streams of its own and the same for any thread count, regresses the payoff with and
-/// without them; they stay when the variance ratio beats `1 + cost`, the cost their
-/// normal probabilities per path (from the trial's own ends) against the run's
-/// asset-steps, at [`SURPRISE_COST`]. The decision does not depend on the path count, so
+/// autocallables: 87× becomes 95× for twice the time). So a trial of up to 4,096 paths
+/// ([`TRIAL_BLOCKS`]), on streams of its own and the same for any thread count, regresses
+/// the payoff with and without them; they stay when the variance ratio beats `1 + cost`,
+/// the cost their normal probabilities per path (from the trial's own ends) against the
+/// run's asset-steps, at [`SURPRISE_COST`]. The decision does not depend on the path count, so
 /// a run grown to a target error gets the controls of a run of its final size. Products
 /// with early exercise (whose fitted rule would need the trial first) go without them.
 pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
     let controls = Controls::for_run(program, settings);
-    let trial_paths = TRIAL_BLOCKS * BLOCK as u64;
+    let blocks = (TRIAL_BLOCK_DATES / program.grid.len().max(1) as u64).clamp(1, TRIAL_BLOCKS);
+    let trial_paths = blocks * BLOCK as u64;
     if controls.surprises().is_empty() {
         return controls;
     }
@@ -387,7 +396,7 @@ pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
     let mut ws = Workspace::new(program, &model, &controls);
     let mut total = BlockResult::new(1 + controls.len(), program.events.len(), program.payments.len());
     let mut one = BlockResult::new(0, 0, 0);
-    for b in 0..TRIAL_BLOCKS {
+    for b in 0..blocks {
         ws.run_block_into(program, &model, &controls, settings, TRIAL_STREAMS | b, BLOCK, None, &mut one);
         total.merge(&one);
     }
@@ -422,8 +431,11 @@ pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
 
 impl<'a> Run<'a> {
     fn new(program: &'a Program, settings: &'a Settings) -> Self {
+        Run::with_controls(program, settings, controls_for(program, settings))
+    }
+
+    fn with_controls(program: &'a Program, settings: &'a Settings, controls: Controls) -> Self {
         let model = paths::Model::new(program);
-        let controls = controls_for(program, settings);
         let dims = 1 + controls.len();
         let total = BlockResult::new(dims, program.events.len(), program.payments.len());
         Run {
