@@ -309,9 +309,18 @@ pub fn on_deep_stack<T: Send>(f: impl FnOnce() -> T + Send) -> T {
     }
 }
 
+/// The most rule calls the parser may make on one file. A file is read in time linear in
+/// its length, about 1,000 calls a line, so this is plenty for any term sheet; but calls
+/// opened and never closed (`if lowest(` on line after line) make it try each level's
+/// readings of a name and `(` (a window's extreme, an aggregate, a call) again for every
+/// reading of the level above: twice the time per level, days for forty. The bound turns
+/// that into an error found in a fraction of a second.
+const PARSE_CALLS: usize = 5_000_000;
+
 /// Parses a payoff file's text into a syntax tree.
 pub fn parse(source: &str) -> Result<File, Diagnostic> {
     check_nesting(source)?;
+    pest::set_call_limit(std::num::NonZeroUsize::new(PARSE_CALLS));
     let mut pairs = PayoffParser::parse(Rule::file, source).map_err(|e| from_pest(e, source))?;
     let file = pairs.next().expect("the file rule always yields one pair");
     let mut lowering = Lowering { errors: Vec::new() };
@@ -320,6 +329,27 @@ pub fn parse(source: &str) -> Result<File, Diagnostic> {
         Some(e) => Err(e),
         None => Ok(File { items }),
     }
+}
+
+/// The first `(` of `source` never closed, outside comments and strings.
+fn unclosed_paren(source: &str) -> Option<usize> {
+    let mut open: Vec<usize> = Vec::new();
+    let (mut comment, mut string) = (false, false);
+    for (i, c) in source.char_indices() {
+        match c {
+            '\n' => comment = false,
+            _ if comment => {}
+            '"' => string = !string,
+            _ if string => {}
+            '#' => comment = true,
+            '(' => open.push(i),
+            ')' => {
+                open.pop();
+            }
+            _ => {}
+        }
+    }
+    open.first().copied()
 }
 
 /// A cheap scan of the raw text that refuses nesting deeper than [`MAX_NESTING`] before the
@@ -1004,6 +1034,15 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         InputLocation::Pos(p) => p,
         InputLocation::Span((s, _)) => s,
     };
+    if matches!(&err.variant, ErrorVariant::CustomError { message } if message.starts_with("call limit")) {
+        // Where the parser gave up says little: point at the first `(` never closed.
+        let open = unclosed_paren(source).unwrap_or(at.min(source.len()));
+        return Diagnostic::at(
+            Span::new(open, (open + 1).min(source.len())),
+            "brackets opened here and after it are never closed, in a way the parser cannot read in reasonable time",
+        )
+        .with_fix("close each `(` where its call or group ends; a long expression reads more easily split with `let`");
+    }
     if let Some(d) = slip(source, at).or_else(|| choice_slip(source, at)) {
         return d;
     }
