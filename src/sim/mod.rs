@@ -379,9 +379,10 @@ const SURPRISE_COST: f64 = 0.8;
 /// ([`TRIAL_BLOCKS`]), on streams of its own and the same for any thread count, regresses
 /// the payoff with and without them; they stay when the variance ratio beats `1 + cost`,
 /// the cost their normal probabilities per path (from the trial's own ends) against the
-/// run's asset-steps, at [`SURPRISE_COST`]. The decision does not depend on the path count, so
-/// a run grown to a target error gets the controls of a run of its final size. Products
-/// with early exercise (whose fitted rule would need the trial first) go without them.
+/// run's asset-steps, at [`SURPRISE_COST`]. The decision does not depend on the path
+/// count, so a run grown to a target error gets the controls of a run of its final size.
+/// Products with early exercise (whose fitted rule would need the trial first) go
+/// without them.
 pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
     let controls = Controls::for_run(program, settings);
     let blocks = (TRIAL_BLOCK_DATES / program.grid.len().max(1) as u64).clamp(1, TRIAL_BLOCKS);
@@ -421,7 +422,7 @@ pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
             }
         }
     }
-    let steps = (program.grid.len() - 1 - program.past) * program.assets.len();
+    let steps = program.grid.len().saturating_sub(1 + program.past) * program.assets.len();
     let cost = SURPRISE_COST * controls.surprise_work(&alive) / steps.max(1) as f64;
     match without {
         Some(without) if with > 0.0 && (without / with).powi(2) >= 1.0 + cost => controls,
