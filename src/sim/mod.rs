@@ -36,8 +36,6 @@ use exec::Workspace;
 use paths::Controls;
 use stats::BlockResult;
 
-/// Paths per block. Part of the definition of a seed's result: changing it changes the
-/// numbers every seed gives.
 /// Whether the lane loops run on the AVX-512 subsets they are also built for
 /// (foundation, doubleword and quadword, vector length): when the CPU has them, unless
 /// the environment sets `PATHFOLD_NO_AVX512` (then AVX2 at most, as on a CPU without
@@ -56,6 +54,8 @@ pub(crate) fn wide_lanes() -> bool {
     })
 }
 
+/// Paths per block. Part of the definition of a seed's result: changing it changes the
+/// numbers every seed gives.
 pub const BLOCK: usize = 256;
 
 /// Blocks handed to the thread pool at a time; bounds memory for any path count.

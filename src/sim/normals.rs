@@ -126,7 +126,8 @@ impl Normals {
 
     /// The four lanes' steps and fast tests in registers; a group with a miss finishes
     /// its missed lanes one by one, in lane order, each from its own lane. The layers'
-    /// edges are gathered (`GATHER`) or loaded one by one: the same numbers either way.
+    /// edges are gathered (`GATHER`) or loaded lane by lane (both of a lane's edges in one
+    /// load): the same numbers either way.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
     unsafe fn groups_avx2<const GATHER: bool>(&mut self, out: &mut [f64]) {
@@ -158,11 +159,11 @@ impl Normals {
                 let layer = _mm256_and_si256(d, _mm256_set1_epi64x(0xff));
                 (_mm256_i64gather_pd::<8>(X.as_ptr(), layer), _mm256_i64gather_pd::<8>(X.as_ptr().add(1), layer))
             } else {
-                let l = draws.map(|d| (d & 0xff) as usize);
-                (
-                    _mm256_set_pd(X[l[3]], X[l[2]], X[l[1]], X[l[0]]),
-                    _mm256_set_pd(X[l[3] + 1], X[l[2] + 1], X[l[1] + 1], X[l[0] + 1]),
-                )
+                // One 16-byte load per lane reads both of its edges, `X[l]` and `X[l + 1]`;
+                // two interleaves sort them into the four lanes' edges and inner edges.
+                let edges = |i: usize| _mm_loadu_pd(X.as_ptr().add((draws[i] & 0xff) as usize));
+                let (even, odd) = (_mm256_set_m128d(edges(2), edges(0)), _mm256_set_m128d(edges(3), edges(1)));
+                (_mm256_unpacklo_pd(even, odd), _mm256_unpackhi_pd(even, odd))
             };
             let v = _mm256_castsi256_pd(_mm256_or_si256(_mm256_srli_epi64::<12>(d), one));
             let x = _mm256_mul_pd(_mm256_sub_pd(_mm256_mul_pd(two, v), three), edge);
