@@ -310,11 +310,12 @@ pub fn on_deep_stack<T: Send>(f: impl FnOnce() -> T + Send) -> T {
 }
 
 /// The most rule calls the parser may make on one file. A file is read in time linear in
-/// its length, about 1,000 calls a line, so this is plenty for any term sheet; but calls
-/// opened and never closed (`if lowest(` on line after line) make it try each level's
-/// readings of a name and `(` (a window's extreme, an aggregate, a call) again for every
-/// reading of the level above: twice the time per level, days for forty. The bound turns
-/// that into an error found in a fraction of a second.
+/// its length, about 1,000 calls a line, so this is plenty for any term sheet. It guards
+/// against a grammar rule that reads the same text in two ways at each level of nesting:
+/// twice the time per level, days for forty (`highest(` and `lowest(` once opened both a
+/// window's extreme and an aggregate, and `if lowest(` on line after line took a second
+/// for eighteen lines; one rule now reads both). The bound turns any such slip into an
+/// error found in a fraction of a second.
 const PARSE_CALLS: usize = 5_000_000;
 
 /// Parses a payoff file's text into a syntax tree.
@@ -873,10 +874,18 @@ impl Lowering {
                 let mut inner = children(pair);
                 let up = inner.next().unwrap().as_str() == "highest";
                 let (observed, dc) = self.expr_depth(inner.next().unwrap());
-                let (from, df) = self.expr_depth(inner.next().unwrap());
-                let (to, dt) = self.expr_depth(inner.next().unwrap());
-                depth = dc.max(df).max(dt);
-                ExprKind::Extreme { up, observed: Box::new(observed), from: Box::new(from), to: Box::new(to) }
+                let tail = inner.next().unwrap();
+                if tail.as_rule() == Rule::over_dates {
+                    depth = dc;
+                    let agg = if up { Aggregate::Highest } else { Aggregate::Lowest };
+                    ExprKind::Aggregate(agg, Box::new(observed), name(children(tail).next().unwrap()))
+                } else {
+                    let mut window = children(tail);
+                    let (from, df) = self.expr_depth(window.next().unwrap());
+                    let (to, dt) = self.expr_depth(window.next().unwrap());
+                    depth = dc.max(df).max(dt);
+                    ExprKind::Extreme { up, observed: Box::new(observed), from: Box::new(from), to: Box::new(to) }
+                }
             }
             Rule::aggregate => {
                 let mut inner = children(pair);
@@ -884,8 +893,6 @@ impl Lowering {
                     "average" => Aggregate::Average,
                     "geometric_average" => Aggregate::GeometricAverage,
                     "sum" => Aggregate::Sum,
-                    "highest" => Aggregate::Highest,
-                    "lowest" => Aggregate::Lowest,
                     "count" => Aggregate::Count,
                     "any" => Aggregate::Any,
                     _ => Aggregate::All,
@@ -1067,6 +1074,11 @@ fn from_pest(err: pest::error::Error<Rule>, source: &str) -> Diagnostic {
         .with_fix(format!(
             "pick another name, such as `{word}_level`; the reserved words are listed in grammar/REFERENCE.md"
         ));
+    }
+    // A bracket left open before the place the parser stopped is the likeliest cause.
+    if let Some(open) = unclosed_paren(source).filter(|&open| open < at) {
+        return Diagnostic::at(Span::new(open, open + 1), "this `(` is never closed")
+            .with_fix("close it with `)` where its call or group ends");
     }
     let mut expected = match &err.variant {
         ErrorVariant::ParsingError { positives, .. } => {
@@ -1279,6 +1291,10 @@ fn describe(rule: Rule) -> Option<String> {
         Rule::or | Rule::and | Rule::le | Rule::ge | Rule::ne | Rule::eq | Rule::lt | Rule::gt
         | Rule::add | Rule::sub | Rule::mul | Rule::div => "an operator",
         Rule::number | Rule::percent => "a number",
+        // After `highest(x`: a window (`from .. to ..`) or a schedule (`over dates`).
+        Rule::kw_from => "`from`",
+        Rule::kw_to => "`to`",
+        Rule::kw_over => "`over`",
         _ => return None,
     };
     Some(s.to_string())
@@ -1455,6 +1471,32 @@ mod tests {
         assert!(parse(&ifs(" else ", 1_000)).is_err());
         // Brackets inside comments and texts do not count.
         assert!(parse(&format!("product \"{}\" # {}", "(".repeat(500), "(".repeat(500))).is_ok());
+    }
+
+    #[test]
+    fn windows_and_aggregates_nest_as_deep_as_brackets_may() {
+        // `highest(` and `lowest(` open both a window's extreme and an aggregate; each
+        // level must be read once, not once per reading of the level above (that took
+        // twice the time per level and refused fourteen levels as never closed).
+        let nested =
+            |open: &str, close: &str, n: usize| format!("at 1y {{ pay {}perf(X){} }}", open.repeat(n), close.repeat(n));
+        let deep = MAX_NESTING - 5;
+        for (open, close) in [
+            ("lowest(", " over s)"),
+            ("highest(", " from start to 1y)"),
+            ("lowest(highest(", " from start to 1y) over s)"),
+            ("average(max(1, ", ") over s)"),
+            ("touched(1 < ", " from start to 1y)"),
+        ] {
+            let n = if open.matches('(').count() == 2 { deep / 2 } else { deep };
+            let file = parse(&nested(open, close, n)).unwrap_or_else(|e| panic!("{open}: {}", e.message));
+            assert_eq!(file.items.len(), 1);
+        }
+        // The two readings of one name give their two trees.
+        assert_eq!(expr_of("lowest(perf(X) over s)"), "(lowest (perf X) s)");
+        assert_eq!(expr_of("highest(perf(X) over s)"), "(highest (perf X) s)");
+        assert_eq!(expr_of("highest(perf(X) from start to 1y)"), "(highest-continuous (perf X) Start Years(1.0))");
+        assert_eq!(expr_of("lowest(highest(x from 1 to 2) over s)"), "(lowest (highest-continuous x 1 2) s)");
     }
 
     #[test]
