@@ -1,8 +1,11 @@
 //! Solving for a parameter: the value at which the price equals a target.
 //!
-//! Every trial prices on the same paths (same seed and block streams, plain Monte Carlo),
-//! so the price is a deterministic function of the parameter and its root is well
-//! defined. The search first checks whether the price is affine in the parameter (three
+//! Every trial prices on the same paths (same seed and block streams), with the control
+//! variates of `price` unless they are turned off, so the price is a deterministic
+//! function of the parameter and its root is well defined. The controls are the same in
+//! every trial (the first trial's decision on the surprises holds for all), so a price
+//! affine in the parameter stays affine: the regression's coefficients are affine in the
+//! payoff. The search first checks whether the price is affine in the parameter (three
 //! prices on a line, checked again at the solution) and then takes one step; otherwise
 //! Brent's method on the bracket.
 
@@ -10,8 +13,7 @@ use std::path::Path;
 
 use crate::diagnostic::{closest, Diagnostic};
 use crate::pricing::{self, Failure, Loaded, Target};
-use crate::sim::joint::simulate_joint;
-use crate::sim::Settings;
+use crate::sim::{simulate_sharing, Estimate, Sampler, Settings};
 use crate::typing::{self, Override};
 
 /// What was solved.
@@ -41,6 +43,12 @@ pub struct Solved {
     pub bracket: (f64, f64),
     pub paths: u64,
     pub seed: u64,
+    /// Whether the trials used control variates.
+    pub control_variates: bool,
+    /// The control variates of the trial at the value (every trial has the same set; the
+    /// regression may leave out a different few).
+    pub controls: Vec<String>,
+    pub sampler: Sampler,
 }
 
 /// Why a solve failed: bad input (exit 2), with the diagnostics to show.
@@ -106,9 +114,15 @@ pub fn solve_file(
         (-1.0, 1.0)
     });
     let log: std::cell::RefCell<Vec<(f64, (f64, f64))>> = std::cell::RefCell::new(Vec::new());
+    // Each trial's control variates, in the order of `log`.
+    let used: std::cell::RefCell<Vec<Vec<String>>> = std::cell::RefCell::new(Vec::new());
+    let mut surprises = None;
     let mut price_at = |x: f64| -> Result<(f64, f64), Failure> {
-        let p = price_with(&loaded, overrides, parameter, x, settings)?;
+        let (estimate, kept) = price_sharing(&loaded, overrides, parameter, x, settings, surprises)?;
+        surprises = Some(kept);
+        let p = (estimate.price, estimate.std_error);
         log.borrow_mut().push((x, p));
+        used.borrow_mut().push(estimate.controls);
         Ok(p)
     };
     let f = |p: (f64, f64)| p.0 - target_amount;
@@ -154,6 +168,11 @@ pub fn solve_file(
     let (up, down) = (price_at(value + h)?, price_at(value - h)?);
     let evaluations = log.borrow().len();
     let (value, at) = found.unwrap_or_else(|| best(&log.borrow()[..evaluations - 2]));
+    let controls = log.borrow()[..evaluations - 2]
+        .iter()
+        .position(|&(x, _)| x.to_bits() == value.to_bits())
+        .map(|i| used.borrow()[i].clone())
+        .unwrap_or_default();
     let slope = (up.0 - down.0) / (2.0 * h);
     let std_error = if slope != 0.0 { at.1 / slope.abs() } else { f64::INFINITY };
     Ok(Solved {
@@ -174,6 +193,9 @@ pub fn solve_file(
         bracket: (lo, hi),
         paths: settings.paths,
         seed: settings.seed,
+        control_variates: settings.control_variates,
+        controls,
+        sampler: settings.sampler,
     })
 }
 
@@ -185,14 +207,26 @@ pub fn price_with(
     x: f64,
     settings: &Settings,
 ) -> Result<(f64, f64), Failure> {
+    price_sharing(loaded, overrides, parameter, x, settings, None).map(|(e, _)| (e.price, e.std_error))
+}
+
+/// [`price_with`], the surprises kept or dropped as `surprises` says when it is given
+/// ([`simulate_sharing`]); with the decision taken.
+fn price_sharing(
+    loaded: &Loaded,
+    overrides: &[Override],
+    parameter: &str,
+    x: f64,
+    settings: &Settings,
+    surprises: Option<bool>,
+) -> Result<(Estimate, bool), Failure> {
     let mut all: Vec<Override> = overrides.iter().filter(|o| o.name != parameter).cloned().collect();
     all.push(Override { name: parameter.to_string(), value: format!("{x}") });
     let tree = crate::syntax::parse(&loaded.source).map_err(|d| loaded.failure(d))?;
     let product = typing::check(&tree, &all).map_err(|mut ds| loaded.failure(ds.remove(0)))?;
     let trial = Loaded { product, ..loaded.clone() };
     let program = trial.compile(&trial.market, &Default::default())?;
-    let joint = simulate_joint(&[program], settings).map_err(|d| loaded.failure(d))?;
-    Ok((joint.price(0), joint.std_error(0)))
+    simulate_sharing(&program, settings, surprises).map_err(|d| loaded.failure(d))
 }
 
 type Eval<'a> = dyn FnMut(f64) -> Result<(f64, f64), Failure> + 'a;

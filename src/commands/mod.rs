@@ -35,6 +35,16 @@ pub enum SamplerArg {
     Sobol,
 }
 
+impl SamplerArg {
+    /// The engine's sampler of this choice.
+    pub fn sampler(self) -> Sampler {
+        match self {
+            SamplerArg::Random => Sampler::Random,
+            SamplerArg::Sobol => Sampler::Sobol,
+        }
+    }
+}
+
 /// The options every command that prices one or more files shares.
 #[derive(Debug, Args)]
 pub struct SharedArgs {
@@ -142,10 +152,7 @@ fn request(args: &PricingArgs) -> Result<Request, String> {
     let overrides = args.shared.overrides()?;
     let settings = Settings {
         control_variates: !args.no_control,
-        sampler: match args.sampler {
-            SamplerArg::Random => Sampler::Random,
-            SamplerArg::Sobol => Sampler::Sobol,
-        },
+        sampler: args.sampler.sampler(),
         ..args.shared.settings(args.paths)
     };
     settings.validate().map_err(|e| e + "\n")?;

@@ -5,6 +5,7 @@ use std::io::{self, Write};
 use serde_json::json;
 
 use super::{decimals, group, Format, CAUTION};
+use crate::sim::Sampler;
 use crate::solve::Solved;
 
 pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Result<()> {
@@ -72,10 +73,12 @@ pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Resu
             )?;
             writeln!(
                 out,
-                "{} pricings on the same {} paths (seed {}), searched in [{}, {}]{}",
+                "{} pricings on the same {} paths (seed {}{}{}), searched in [{}, {}]{}",
                 s.evaluations,
                 s.paths,
                 s.seed,
+                if s.sampler == Sampler::Sobol { ", Sobol points" } else { "" },
+                if s.control_variates { ", control variates" } else { ", plain Monte Carlo" },
                 s.bracket.0,
                 s.bracket.1,
                 if s.affine { "; the price is affine in the parameter: one step" } else { "; Brent's method" }
@@ -112,7 +115,13 @@ pub fn to_json(s: &Solved) -> serde_json::Value {
         "between": [s.bracket.0, s.bracket.1],
         "paths": s.paths,
         "seed": s.seed,
-        "method": "every trial on the same paths (plain Monte Carlo); affine check then one step, else Brent's method",
+        "control_variates": s.control_variates,
+        "controls": s.controls,
+        "sampler": match s.sampler {
+            Sampler::Random => "random",
+            Sampler::Sobol => "sobol",
+        },
+        "method": "every trial on the same paths (and the same control variates, if any); affine check then one step, else Brent's method",
         "caution": CAUTION,
     })
 }

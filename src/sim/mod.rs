@@ -198,32 +198,65 @@ pub struct Estimate {
 
 /// Prices a compiled program.
 pub fn simulate(program: &Program, settings: &Settings) -> Result<Estimate, Diagnostic> {
+    simulate_as(program, settings, None, false).map(|(estimate, _)| estimate)
+}
+
+/// [`simulate`] for one of a series of runs of one product on common paths, whose prices
+/// must move smoothly with a parameter (a coupon solved for). Every path is simulated
+/// whole, as in [`joint`]: a run that packs its running paths hands a path other normals
+/// when other paths end, and a parameter that moves an end would move the paths. The
+/// surprises are kept or dropped as `surprises` says, instead of by their trial
+/// ([`controls_for`]), when it is given; the decision the run took comes back with the
+/// estimate, so the series takes its first run's for all the others and a trial near its
+/// threshold cannot change the control set from one run to the next.
+pub fn simulate_sharing(
+    program: &Program,
+    settings: &Settings,
+    surprises: Option<bool>,
+) -> Result<(Estimate, bool), Diagnostic> {
+    simulate_as(program, settings, surprises, true)
+}
+
+fn simulate_as(
+    program: &Program,
+    settings: &Settings,
+    surprises: Option<bool>,
+    whole_paths: bool,
+) -> Result<(Estimate, bool), Diagnostic> {
     let started = Instant::now();
     settings.validate().map_err(Diagnostic::new)?;
     let fitted = exercise::prepare(program, settings);
+    let (controls, kept) = controls_deciding(&fitted, settings, surprises);
     if settings.sampler == Sampler::Sobol {
-        return simulate_sobol(&fitted, settings, started);
+        return simulate_sobol(&fitted, settings, controls, whole_paths, started).map(|e| (e, kept));
     }
-    let mut run = Run::new(&fitted, settings);
+    let mut run = Run::with_controls(&fitted, settings, controls);
+    run.whole_paths = whole_paths;
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     run.extend_to(paths);
-    run.finish(started)
+    run.finish(started).map(|e| (e, kept))
 }
 
 /// [`simulate`] with Sobol points: [`sobol::RANDOMISATIONS`] independent randomisations of
 /// the same points, each `paths / RANDOMISATIONS` rounded up to whole blocks. The control
 /// coefficients are fitted on all of them together; the price is the mean of the
-/// randomisations' controlled estimates and the standard error their spread.
-fn simulate_sobol(program: &Program, settings: &Settings, started: Instant) -> Result<Estimate, Diagnostic> {
+/// randomisations' controlled estimates and the standard error their spread. The controls
+/// are decided once for every randomisation (their trial runs once).
+fn simulate_sobol(
+    program: &Program,
+    settings: &Settings,
+    controls: Controls,
+    whole_paths: bool,
+    started: Instant,
+) -> Result<Estimate, Diagnostic> {
     let qmc = sobol::Qmc::new(&program.grid, program.assets.len(), settings.seed);
     let count = sobol::RANDOMISATIONS as u64;
     let per = settings.paths.div_ceil(count).div_ceil(BLOCK as u64) * BLOCK as u64;
-    // The controls once for every randomisation (their trial runs once).
-    let controls = controls_for(program, settings);
     let mut runs = Vec::with_capacity(sobol::RANDOMISATIONS);
     for r in 0..sobol::RANDOMISATIONS {
         let mut run = Run::with_controls(program, settings, controls.clone());
         run.points = Some((&qmc, r));
+        run.whole_paths = whole_paths;
         run.extend_to(per);
         runs.push(run);
     }
@@ -323,6 +356,8 @@ struct Run<'a> {
     done: Vec<BlockResult>,
     /// Workers' buffers between chunks, so a long run sets them up only once.
     spare: Mutex<Vec<Workspace>>,
+    /// Whether every path is simulated whole ([`simulate_sharing`]).
+    whole_paths: bool,
 }
 
 /// A workspace taken from a run's spares (or new when there is none), handed back when
@@ -384,21 +419,37 @@ const SURPRISE_COST: f64 = 0.8;
 /// Products with early exercise (whose fitted rule would need the trial first) go
 /// without them.
 pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
+    controls_deciding(program, settings, None).0
+}
+
+/// [`controls_for`], the trial replaced by `surprises` when it is given; with whether the
+/// surprises were kept (false for a product that has none).
+fn controls_deciding(program: &Program, settings: &Settings, surprises: Option<bool>) -> (Controls, bool) {
     let controls = Controls::for_run(program, settings);
+    if controls.surprises().is_empty() {
+        return (controls, false);
+    }
+    match surprises {
+        Some(true) => (controls, true),
+        Some(false) => (controls.without_surprises(), false),
+        None if trial_keeps_surprises(program, settings, &controls) => (controls, true),
+        None => (controls.without_surprises(), false),
+    }
+}
+
+/// The trial of [`controls_for`]: whether `controls`' surprises pay for their time.
+fn trial_keeps_surprises(program: &Program, settings: &Settings, controls: &Controls) -> bool {
+    if !program.choices.is_empty() {
+        return false;
+    }
     let blocks = (TRIAL_BLOCK_DATES / program.grid.len().max(1) as u64).clamp(1, TRIAL_BLOCKS);
     let trial_paths = blocks * BLOCK as u64;
-    if controls.surprises().is_empty() {
-        return controls;
-    }
-    if !program.choices.is_empty() {
-        return controls.without_surprises();
-    }
     let model = paths::Model::new(program);
-    let mut ws = Workspace::new(program, &model, &controls);
+    let mut ws = Workspace::new(program, &model, controls);
     let mut total = BlockResult::new(1 + controls.len(), program.events.len(), program.payments.len());
     let mut one = BlockResult::new(0, 0, 0);
     for b in 0..blocks {
-        ws.run_block_into(program, &model, &controls, settings, TRIAL_STREAMS | b, BLOCK, None, &mut one);
+        ws.run_block_into(program, &model, controls, settings, TRIAL_STREAMS | b, BLOCK, None, &mut one);
         total.merge(&one);
     }
     let known = |j: usize| regress::Known { mean: controls.mean(j), scale: controls.scale(j) };
@@ -424,10 +475,7 @@ pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
     }
     let steps = program.grid.len().saturating_sub(1 + program.past) * program.assets.len();
     let cost = SURPRISE_COST * controls.surprise_work(&alive) / steps.max(1) as f64;
-    match without {
-        Some(without) if with > 0.0 && (without / with).powi(2) >= 1.0 + cost => controls,
-        _ => controls.without_surprises(),
-    }
+    matches!(without, Some(without) if with > 0.0 && (without / with).powi(2) >= 1.0 + cost)
 }
 
 impl<'a> Run<'a> {
@@ -450,6 +498,7 @@ impl<'a> Run<'a> {
             slots: Vec::new(),
             done: Vec::new(),
             spare: Mutex::new(Vec::new()),
+            whole_paths: false,
         }
     }
 
@@ -465,7 +514,7 @@ impl<'a> Run<'a> {
         let drawn = if settings.antithetic { BLOCK / 2 } else { BLOCK } as u64;
         let blocks = paths.div_ceil(BLOCK as u64);
         let mut next = self.paths / BLOCK as u64;
-        let spare = &self.spare;
+        let (spare, whole_paths) = (&self.spare, self.whole_paths);
         // Chunk by chunk; a chunk's results are merged (in block order, on one thread)
         // while the next chunk is simulated, so the merge does not leave a core idle.
         let mut waiting = 0;
@@ -480,7 +529,15 @@ impl<'a> Run<'a> {
             rayon::join(
                 || {
                     slots[..count].par_iter_mut().enumerate().for_each_init(
-                        || Lease::take(spare, || Workspace::new(program, model, controls)),
+                        || {
+                            Lease::take(spare, || {
+                                let mut ws = Workspace::new(program, model, controls);
+                                if whole_paths {
+                                    ws.simulate_whole_paths();
+                                }
+                                ws
+                            })
+                        },
                         |lease, (i, slot)| {
                             let b = first + i as u64;
                             let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
