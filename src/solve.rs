@@ -49,6 +49,8 @@ pub struct Solved {
     /// regression may leave out a different few).
     pub controls: Vec<String>,
     pub sampler: Sampler,
+    /// What the trials' estimates warned of, each once.
+    pub warnings: Vec<String>,
 }
 
 /// Why a solve failed: bad input (exit 2), with the diagnostics to show.
@@ -116,6 +118,9 @@ pub fn solve_file(
     let log: std::cell::RefCell<Vec<(f64, (f64, f64))>> = std::cell::RefCell::new(Vec::new());
     // Each trial's control variates, in the order of `log`.
     let used: std::cell::RefCell<Vec<Vec<String>>> = std::cell::RefCell::new(Vec::new());
+    // What any trial's estimate warned of (a control left out, a fall back to the plain
+    // estimate), each once.
+    let warned: std::cell::RefCell<Vec<String>> = std::cell::RefCell::new(Vec::new());
     let mut surprises = None;
     let mut price_at = |x: f64| -> Result<(f64, f64), Failure> {
         let (estimate, kept) = price_sharing(&loaded, overrides, parameter, x, settings, surprises)?;
@@ -123,6 +128,12 @@ pub fn solve_file(
         let p = (estimate.price, estimate.std_error);
         log.borrow_mut().push((x, p));
         used.borrow_mut().push(estimate.controls);
+        let mut warned = warned.borrow_mut();
+        for w in estimate.warnings {
+            if !warned.contains(&w.message) {
+                warned.push(w.message);
+            }
+        }
         Ok(p)
     };
     let f = |p: (f64, f64)| p.0 - target_amount;
@@ -196,6 +207,7 @@ pub fn solve_file(
         control_variates: settings.control_variates,
         controls,
         sampler: settings.sampler,
+        warnings: warned.into_inner(),
     })
 }
 

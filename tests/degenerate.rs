@@ -178,3 +178,18 @@ fn the_fewest_paths_allowed_give_a_finite_standard_error() {
         common::assert_within(&format!("256 paths {extra:?}"), p, se, reference, 4.0);
     }
 }
+
+#[test]
+fn a_solve_reports_the_controls_its_trials_left_out() {
+    // The 500% volatility above, solved for: the trials leave out the same controls as a
+    // pricing does, and the report says so instead of dropping the warning.
+    let market = market_with("vntl-5-solve", "VNTL", "5");
+    let args = ["solve", "payoffs/protected_basket_note.payoff", "--market", market.to_str().unwrap()];
+    let more = ["--for", "participation", "--target", "90%", "--paths", "20000", "--format", "json"];
+    let (stdout, stderr, code) = run(&[&args[..], &more[..]].concat());
+    assert_eq!(code, Some(0), "{stderr}");
+    let v: serde_json::Value = serde_json::from_str(&stdout).unwrap();
+    let warnings: Vec<&str> = v["warnings"].as_array().unwrap().iter().map(|w| w.as_str().unwrap()).collect();
+    assert!(warnings.iter().any(|w| w.contains("`VNTL forward` was left out")), "{warnings:?}");
+    assert_eq!(warnings.len(), 2, "each warning once: {warnings:?}");
+}

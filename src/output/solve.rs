@@ -91,6 +91,9 @@ pub fn write_solved(out: &mut dyn Write, s: &Solved, format: Format) -> io::Resu
                     s.parameter
                 )?;
             }
+            for w in &s.warnings {
+                writeln!(out, "warning: {w}")?;
+            }
             writeln!(out)?;
             writeln!(out, "{CAUTION}")
         }
@@ -117,6 +120,7 @@ pub fn to_json(s: &Solved) -> serde_json::Value {
         "seed": s.seed,
         "control_variates": s.control_variates,
         "controls": s.controls,
+        "warnings": s.warnings,
         "sampler": match s.sampler {
             Sampler::Random => "random",
             Sampler::Sobol => "sobol",
