@@ -1,7 +1,8 @@
 //! Scenario ladders: prices on a grid of market shifts (spot, volatility, rate), one or
 //! two axes, every scenario on the same paths (common random numbers) as the unshifted
 //! market, so the change from the base and its standard error come from paired
-//! differences. Plain Monte Carlo (antithetic pairs if asked, no control variates).
+//! differences. Each scenario's samples use its control variates, with coefficients from a
+//! pilot ([`crate::sim::joint`]), unless they are turned off.
 //!
 //! A spot shift is an instant move of today's level: a trade struck today keeps its
 //! initial levels (as in [`crate::risk`]).
@@ -114,6 +115,8 @@ pub struct Ladder {
     pub points: Vec<Point>,
     pub paths: u64,
     pub seed: u64,
+    /// Whether every scenario's samples use its control variates.
+    pub control_variates: bool,
 }
 
 fn shifted(market: &Market, names: &[String], axes: &[Axis], shifts: &[f64]) -> Result<Market, String> {
@@ -193,6 +196,7 @@ pub fn ladder_file(
         points,
         paths: joint.paths,
         seed: settings.seed,
+        control_variates: settings.control_variates,
     })
 }
 

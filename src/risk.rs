@@ -1,8 +1,8 @@
 //! Sensitivities by central finite differences on common random numbers: the base and
 //! every bumped market are compiled from one product and priced on the same paths
 //! ([`crate::sim::joint`]), so each difference and its standard error come from the
-//! paired differences path by path. Plain Monte Carlo (antithetic pairs if asked, no
-//! control variates).
+//! paired differences path by path. Each scenario's samples use its own control
+//! variates, their coefficients fitted on a pilot beforehand, unless they are turned off.
 //!
 //! A trade whose start is the valuation date counts as struck at today's spots: every
 //! scenario keeps those initial levels ([`crate::compile::Struck`]), so a spot bump moves
@@ -100,11 +100,13 @@ pub struct Risk {
     pub product: String,
     pub currency: String,
     pub notional: f64,
-    /// The base price on the same paths, plain Monte Carlo.
+    /// The base price on the same paths.
     pub price: f64,
     pub price_std_error: f64,
     pub paths: u64,
     pub seed: u64,
+    /// Whether every scenario's samples use its control variates ([`crate::sim::joint`]).
+    pub control_variates: bool,
     pub sensitivities: Vec<Sensitivity>,
     /// Sensitivities that could not be computed, and why.
     pub notes: Vec<String>,
@@ -303,6 +305,7 @@ pub fn risk_of(loaded: &Loaded, settings: &Settings, bumps: &Bumps) -> Result<Ri
         price_std_error: joint.std_error(0),
         paths: joint.paths,
         seed: settings.seed,
+        control_variates: settings.control_variates,
         sensitivities: out,
         notes,
     })

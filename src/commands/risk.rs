@@ -21,6 +21,9 @@ pub struct ScenarioArgs {
     /// Number of paths (every scenario runs on these same paths).
     #[arg(long, default_value_t = 100_000)]
     pub paths: u64,
+    /// Do not use control variates (every scenario plain Monte Carlo).
+    #[arg(long)]
+    pub no_control: bool,
     #[command(flatten)]
     pub shared: SharedArgs,
 }
@@ -29,7 +32,7 @@ impl ScenarioArgs {
     /// The overrides and settings, or the message for a bad option.
     pub fn checked(&self) -> Result<(Vec<Override>, Settings), String> {
         let overrides = self.shared.overrides()?;
-        let settings = self.shared.settings(self.paths);
+        let settings = Settings { control_variates: !self.no_control, ..self.shared.settings(self.paths) };
         settings.validate().map_err(|e| e + "\n")?;
         Ok((overrides, settings))
     }

@@ -26,9 +26,6 @@ pub struct SolveArgs {
     /// to four times the parameter's value.
     #[arg(long, value_name = "LO..HI")]
     pub between: Option<String>,
-    /// Do not use control variates (every trial plain Monte Carlo).
-    #[arg(long)]
-    pub no_control: bool,
     /// Where the paths' random numbers come from: `random` (pseudo-random) or `sobol`
     /// (Sobol points, randomised 16 times, through a Brownian bridge).
     #[arg(long, value_enum, default_value_t = SamplerArg::Random)]
@@ -53,7 +50,7 @@ pub fn run(args: &SolveArgs) -> ExitCode {
     };
     let (overrides, settings) = match a.prepare() {
         Ok((overrides, plain)) => {
-            let settings = Settings { control_variates: !args.no_control, sampler: args.sampler.sampler(), ..plain };
+            let settings = Settings { sampler: args.sampler.sampler(), ..plain };
             if let Err(e) = settings.validate() {
                 eprintln!("{e}");
                 return ExitCode::from(2);

@@ -96,6 +96,7 @@ pub fn to_json(l: &Ladder) -> serde_json::Value {
         "base_std_error": l.base_std_error,
         "paths": l.paths,
         "seed": l.seed,
+        "control_variates": l.control_variates,
         "rows": l.points.iter().map(|p| json!({
             "shifts": p.shifts,
             "price": p.price,

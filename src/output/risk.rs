@@ -59,7 +59,12 @@ pub fn to_json(r: &Risk) -> serde_json::Value {
         "price_std_error": r.price_std_error,
         "paths": r.paths,
         "seed": r.seed,
-        "method": "central finite differences on common random numbers; standard errors from the paired differences path by path; plain Monte Carlo (no control variates)",
+        "control_variates": r.control_variates,
+        "method": if r.control_variates {
+            "central finite differences on common random numbers; standard errors from the paired differences path by path; each scenario with its control variates, coefficients fitted on a pilot of its own"
+        } else {
+            "central finite differences on common random numbers; standard errors from the paired differences path by path; plain Monte Carlo (no control variates)"
+        },
         "sensitivities": list,
         "notes": r.notes,
         "caution": CAUTION,
@@ -104,10 +109,11 @@ fn write_table(out: &mut dyn Write, r: &Risk) -> io::Result<()> {
     let d = decimals(r.price_std_error);
     writeln!(
         out,
-        "price {} {} ± {} (plain Monte Carlo, {} paths, seed {})",
+        "price {} {} ± {} ({}, {} paths, seed {})",
         r.currency,
         group(r.price, d),
         group(r.price_std_error, d),
+        if r.control_variates { "control variates" } else { "plain Monte Carlo" },
         r.paths,
         r.seed
     )?;

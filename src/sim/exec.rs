@@ -228,6 +228,12 @@ impl Workspace {
         &self.pv
     }
 
+    /// The samples of the last block run (a path, or the mean of an antithetic pair; the
+    /// block's first `units` entries of each): the discounted payoff, then each control.
+    pub fn samples(&self) -> &[Vec<f64>] {
+        &self.columns
+    }
+
     /// What the last block's recorded early-exercise date kept ([`rule::Lanes`]).
     pub fn recorded(&self) -> &rule::Lanes {
         &self.choice

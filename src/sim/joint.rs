@@ -5,22 +5,98 @@
 //! paths are those a plain run of it would draw; the discounted payoffs of all `K`
 //! programs are then one vector sample per path (or per antithetic pair), and their means
 //! and co-moments are merged in block order like a single run's. The variance of a
-//! difference `i − j` is `var_i + var_j − 2 cov_ij`, path by path. The estimates are plain
-//! Monte Carlo (antithetic pairs if asked, no control variates). The programs must share
+//! difference `i − j` is `var_i + var_j − 2 cov_ij`, path by path. The programs must share
 //! the number of underlyings and grid points, or their paths would not correspond; the
 //! caller compiles them from one product.
+//!
+//! With control variates, each program's sample is its payoff less its own controls'
+//! deviations from their closed-form means, `y − Σ βⱼ (xⱼ − E xⱼ)`, with coefficients
+//! fitted beforehand by a pilot of its own ([`PILOT_BLOCKS`] blocks on streams no run
+//! uses). Coefficients fixed before the paths are drawn keep every sample's mean the
+//! program's price (no bias from fitting on the same paths: common practice), and the
+//! samples stay one vector per path, so a difference's error is still read off the paths.
+//! The surprises are decided once, by the first program's trial, for all of them.
 
 use rayon::prelude::*;
 
 use super::exec::Workspace;
 use super::paths::{Controls, Model};
+use super::regress::{self, Known};
 use super::stats::{BlockResult, Moments};
-use super::{Settings, BLOCK};
+use super::{controls_deciding, Settings, BLOCK};
 use crate::compile::Program;
 use crate::diagnostic::Diagnostic;
 
 /// Blocks handed to the thread pool at a time.
 const BLOCKS_IN_FLIGHT: usize = 64;
+
+/// Blocks of the pilot that fits a program's control coefficients (4,096 paths).
+const PILOT_BLOCKS: u64 = 16;
+
+/// The block streams of the pilot: none a run (from 0), a Sobol run (from 2⁴⁰) or a trial
+/// of the surprises (from 2⁶²) uses.
+const PILOT_STREAMS: u64 = 1 << 61;
+
+/// A program's controls and the coefficients its pilot fitted: `(control, β)`.
+struct Fitted {
+    controls: Controls,
+    beta: Vec<(usize, f64)>,
+}
+
+impl Fitted {
+    /// The sample of each unit of the block `ws` last ran: the payoff less the controls'
+    /// deviations from their means.
+    fn sample_into(&self, ws: &Workspace, units: usize, out: &mut [f64]) {
+        let samples = ws.samples();
+        out[..units].copy_from_slice(&samples[0][..units]);
+        for &(j, b) in &self.beta {
+            let mean = self.controls.mean(j);
+            for (o, x) in out[..units].iter_mut().zip(&samples[1 + j][..units]) {
+                *o -= b * (x - mean);
+            }
+        }
+    }
+}
+
+/// Each program's controls (none without control variates) and their coefficients, from
+/// a pilot of [`PILOT_BLOCKS`] blocks per program. The programs' pilots run side by side;
+/// each is merged in block order, so the coefficients do not depend on the thread count.
+fn fit(programs: &[Program], models: &[Model], settings: &Settings) -> Vec<Fitted> {
+    if !settings.control_variates {
+        return programs.iter().map(|_| Fitted { controls: Controls::none(), beta: Vec::new() }).collect();
+    }
+    let (first, kept) = controls_deciding(&programs[0], settings, None);
+    let sets: Vec<Controls> = std::iter::once(first)
+        .chain(programs[1..].iter().map(|p| controls_deciding(p, settings, Some(kept)).0))
+        .collect();
+    programs
+        .par_iter()
+        .zip(models)
+        .zip(sets)
+        .map(|((p, m), controls)| {
+            let mut ws = Workspace::new(p, m, &controls);
+            ws.simulate_whole_paths();
+            let mut total = BlockResult::new(1 + controls.len(), p.events.len(), p.payments.len());
+            let mut one = BlockResult::new(0, 0, 0);
+            for b in 0..PILOT_BLOCKS {
+                ws.run_block_into(p, m, &controls, settings, PILOT_STREAMS | b, BLOCK, None, &mut one);
+                total.merge(&one);
+            }
+            let known: Vec<Known> =
+                (0..controls.len()).map(|j| Known { mean: controls.mean(j), scale: controls.scale(j) }).collect();
+            let fitted = regress::regress(&total.moments, &known);
+            // A pilot whose controlled estimate failed the guard (or whose coefficients are
+            // not finite numbers) leaves the program plain.
+            let usable = total.is_finite() && fitted.fell_back.is_none() && fitted.beta.iter().all(|b| b.is_finite());
+            let beta = if usable {
+                fitted.kept.iter().copied().zip(fitted.beta.iter().copied()).collect()
+            } else {
+                Vec::new()
+            };
+            Fitted { controls, beta }
+        })
+        .collect()
+}
 
 /// The joint statistics of several programs on common paths.
 #[derive(Clone, Debug)]
@@ -76,8 +152,7 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
     let k = programs.len();
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     let models: Vec<Model> = programs.iter().map(Model::new).collect();
-    let none = Controls::none();
-    let plain = Settings { control_variates: false, ..settings.clone() };
+    let fitted = fit(programs, &models, settings);
     let blocks = paths.div_ceil(BLOCK as u64);
     let mut total = Moments::new(k);
     let mut next = 0;
@@ -90,8 +165,9 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
                     let spaces: Vec<Workspace> = programs
                         .iter()
                         .zip(&models)
-                        .map(|(p, m)| {
-                            let mut ws = Workspace::new(p, m, &none);
+                        .zip(&fitted)
+                        .map(|((p, m), f)| {
+                            let mut ws = Workspace::new(p, m, &f.controls);
                             ws.simulate_whole_paths();
                             ws
                         })
@@ -100,21 +176,15 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
                 },
                 |(spaces, columns, r), b| {
                     let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
-                    for (j, ((p, m), ws)) in programs.iter().zip(&models).zip(spaces.iter_mut()).enumerate() {
-                        ws.run_block_into(p, m, &none, &plain, b, lanes, None, r);
+                    let units = if settings.antithetic { lanes / 2 } else { lanes };
+                    for (j, (((p, m), ws), f)) in
+                        programs.iter().zip(&models).zip(spaces.iter_mut()).zip(&fitted).enumerate()
+                    {
+                        ws.run_block_into(p, m, &f.controls, settings, b, lanes, None, r);
                         if !r.is_finite() {
                             return Err(j);
                         }
-                        columns[j][..lanes].copy_from_slice(&ws.payoffs()[..lanes]);
-                    }
-                    let units = if plain.antithetic { lanes / 2 } else { lanes };
-                    if plain.antithetic {
-                        for col in columns.iter_mut() {
-                            let (first, mirror) = col[..2 * units].split_at_mut(units);
-                            for (x, y) in first.iter_mut().zip(&*mirror) {
-                                *x = 0.5 * (*x + y);
-                            }
-                        }
+                        f.sample_into(ws, units, &mut columns[j]);
                     }
                     let cols: Vec<&[f64]> = columns.iter().map(|c| &c[..units]).collect();
                     Ok(Moments::of_columns(&cols))

@@ -396,7 +396,7 @@ const TRIAL_BLOCKS: u64 = 16;
 const TRIAL_BLOCK_DATES: u64 = 1024;
 
 /// The block streams of that trial: none a run's own blocks use (a pseudo-random run's
-/// from 0, a Sobol run's from 2⁴⁰).
+/// from 0, a Sobol run's from 2⁴⁰), nor a joint run's pilot ([`joint`], from 2⁶¹).
 const TRIAL_STREAMS: u64 = 1 << 62;
 
 /// What one normal probability of a surprise (with its gathers) costs against one step of
@@ -424,7 +424,7 @@ pub(crate) fn controls_for(program: &Program, settings: &Settings) -> Controls {
 
 /// [`controls_for`], the trial replaced by `surprises` when it is given; with whether the
 /// surprises were kept (false for a product that has none).
-fn controls_deciding(program: &Program, settings: &Settings, surprises: Option<bool>) -> (Controls, bool) {
+pub(crate) fn controls_deciding(program: &Program, settings: &Settings, surprises: Option<bool>) -> (Controls, bool) {
     let controls = Controls::for_run(program, settings);
     if controls.surprises().is_empty() {
         return (controls, false);
