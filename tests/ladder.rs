@@ -76,3 +76,35 @@ fn a_ladder_refuses_bad_axes() {
     assert_eq!(code, Some(2));
     assert!(err.contains("no underlying `QMEN`"), "{err}");
 }
+
+#[test]
+fn the_autocallables_ladder_with_control_variates_agrees_with_the_plain_one() {
+    // Reference: the plain ladder on the same seed and paths (--no-control); every price
+    // and every change within 4 of the two standard errors combined, the prices' errors
+    // several times smaller with the controls (each scenario's own, fitted on a pilot).
+    let ladder = |extra: &[&str]| {
+        let mut args =
+            vec!["ladder", "payoffs/worst_of_autocall.payoff", "--spot", "-10%..10%/10%", "--paths", "20000"];
+        args.extend_from_slice(&["--seed", "4", "--format", "json"]);
+        args.extend_from_slice(extra);
+        let (out, err, code) = run(&args);
+        assert_eq!(code, Some(0), "{err}");
+        serde_json::from_str::<serde_json::Value>(&out).expect("json")
+    };
+    let (controlled, plain) = (ladder(&[]), ladder(&["--no-control"]));
+    assert_eq!((&controlled["control_variates"], &plain["control_variates"]), (&true.into(), &false.into()));
+    let rows = |v: &serde_json::Value| v["rows"].as_array().unwrap().clone();
+    for (c, p) in rows(&controlled).iter().zip(&rows(&plain)) {
+        for (value, error) in [("price", "std_error"), ("change", "change_std_error")] {
+            let (x, y) = (c[value].as_f64().unwrap(), p[value].as_f64().unwrap());
+            let combined = c[error].as_f64().unwrap().hypot(p[error].as_f64().unwrap());
+            assert!(
+                (x - y).abs() <= 4.0 * combined + 1e-9,
+                "{value} at {}: {x} vs plain {y} (± {combined})",
+                c["shifts"]
+            );
+        }
+        let (se, plain_se) = (c["std_error"].as_f64().unwrap(), p["std_error"].as_f64().unwrap());
+        assert!(se < 0.3 * plain_se, "price error {se} vs plain {plain_se}");
+    }
+}
