@@ -35,18 +35,19 @@ def _path(p):
 
 
 def price(file, *, market=None, paths=DEFAULT_PATHS, seed=DEFAULT_SEED, set=None, antithetic=True,
-          control_variates=True):
-    """Prices a payoff file: the dict of ``pathfold price FILE --format json``."""
+          control_variates=True, sampler="random"):
+    """Prices a payoff file: the dict of ``pathfold price FILE --format json``. ``sampler``
+    is ``"random"`` or ``"sobol"``, as the command line's ``--sampler``."""
     return json.loads(_pathfold.price(os.fspath(file), _path(market), paths, seed, _sets(set), antithetic,
-                                      control_variates))
+                                      control_variates, sampler))
 
 
 def price_text(text, *, market=None, name="<text>", paths=DEFAULT_PATHS, seed=DEFAULT_SEED, set=None,
-               antithetic=True, control_variates=True):
+               antithetic=True, control_variates=True, sampler="random"):
     """Prices a payoff given as text. ``name`` stands for it in messages; a market file the
     payoff names is looked for in the current folder unless ``market`` is given."""
     return json.loads(_pathfold.price_text(text, _path(market), name, paths, seed, _sets(set), antithetic,
-                                           control_variates))
+                                           control_variates, sampler))
 
 
 def check(folder="payoffs/validation", *, paths=DEFAULT_PATHS, seed=DEFAULT_SEED):
@@ -55,10 +56,10 @@ def check(folder="payoffs/validation", *, paths=DEFAULT_PATHS, seed=DEFAULT_SEED
 
 
 def compare(prices, files=(), *, max_z=3.0, market=None, paths=DEFAULT_PATHS, seed=DEFAULT_SEED, set=None,
-            antithetic=True, control_variates=True):
+            antithetic=True, control_variates=True, sampler="random"):
     """Compares a price list (CSV) with pathfold's prices: ``pathfold compare --format json``."""
     return json.loads(_pathfold.compare(os.fspath(prices), [os.fspath(f) for f in files], max_z, _path(market),
-                                        paths, seed, _sets(set), antithetic, control_variates))
+                                        paths, seed, _sets(set), antithetic, control_variates, sampler))
 
 
 def price_part(file, part, *, market=None, paths=DEFAULT_PATHS, seed=DEFAULT_SEED, set=None, antithetic=True,

@@ -41,6 +41,18 @@ fn settings(paths: u64, seed: u64, antithetic: bool, control_variates: bool) -> 
     Ok(s)
 }
 
+/// [`settings`] with the sampler named as on the command line (`random` or `sobol`).
+fn sampled(paths: u64, seed: u64, antithetic: bool, control_variates: bool, sampler: &str) -> PyResult<Settings> {
+    let sampler = match sampler {
+        "random" => sim::Sampler::Random,
+        "sobol" => sim::Sampler::Sobol,
+        other => return Err(refused(format!("sampler {other:?}: name \"random\" or \"sobol\""))),
+    };
+    let s = Settings { sampler, ..settings(paths, seed, antithetic, control_variates)? };
+    s.validate().map_err(refused)?;
+    Ok(s)
+}
+
 fn overrides(set: &[String]) -> PyResult<Vec<Override>> {
     set.iter().map(|s| Override::parse(s).map_err(|d| refused(d.render(None)))).collect()
 }
@@ -57,7 +69,7 @@ fn priced_json(p: &pricing::Priced) -> PyResult<String> {
 
 /// Prices one payoff file; the JSON of `pathfold price FILE --format json`.
 #[pyfunction]
-#[pyo3(signature = (file, market=None, paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true))]
+#[pyo3(signature = (file, market=None, paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true, sampler="random"))]
 fn price(
     py: Python<'_>,
     file: PathBuf,
@@ -67,8 +79,9 @@ fn price(
     set: Vec<String>,
     antithetic: bool,
     control_variates: bool,
+    sampler: &str,
 ) -> PyResult<String> {
-    let settings = settings(paths, seed, antithetic, control_variates)?;
+    let settings = sampled(paths, seed, antithetic, control_variates, sampler)?;
     let overrides = overrides(&set)?;
     let priced = pooled(py, || pricing::price_file(&file, market.as_deref(), &overrides, &settings))?;
     priced_json(&priced.map_err(|f| failure(&f))?)
@@ -77,7 +90,7 @@ fn price(
 /// Prices a payoff given as text; `name` stands for it in messages, and a market file the
 /// payoff names is looked for in the current folder.
 #[pyfunction]
-#[pyo3(signature = (text, market=None, name=String::from("<text>"), paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true))]
+#[pyo3(signature = (text, market=None, name=String::from("<text>"), paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true, sampler="random"))]
 fn price_text(
     py: Python<'_>,
     text: String,
@@ -88,8 +101,9 @@ fn price_text(
     set: Vec<String>,
     antithetic: bool,
     control_variates: bool,
+    sampler: &str,
 ) -> PyResult<String> {
-    let settings = settings(paths, seed, antithetic, control_variates)?;
+    let settings = sampled(paths, seed, antithetic, control_variates, sampler)?;
     let overrides = overrides(&set)?;
     let priced = pooled(py, || {
         let compiled = pricing::compile_source(Path::new(&name), text, market.as_deref(), &overrides)?;
@@ -114,7 +128,7 @@ fn check(py: Python<'_>, folder: PathBuf, paths: u64, seed: u64) -> PyResult<Str
 
 /// Compares a price list with pathfold's prices; the JSON of `pathfold compare --format json`.
 #[pyfunction]
-#[pyo3(signature = (prices, files=Vec::new(), max_z=3.0, market=None, paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true))]
+#[pyo3(signature = (prices, files=Vec::new(), max_z=3.0, market=None, paths=sim::DEFAULT_PATHS, seed=sim::DEFAULT_SEED, set=Vec::new(), antithetic=true, control_variates=true, sampler="random"))]
 fn compare(
     py: Python<'_>,
     prices: PathBuf,
@@ -126,11 +140,12 @@ fn compare(
     set: Vec<String>,
     antithetic: bool,
     control_variates: bool,
+    sampler: &str,
 ) -> PyResult<String> {
     if !(max_z.is_finite() && max_z > 0.0) {
         return Err(refused(format!("max_z must be a positive number, not {max_z}")));
     }
-    let settings = settings(paths, seed, antithetic, control_variates)?;
+    let settings = sampled(paths, seed, antithetic, control_variates, sampler)?;
     let overrides = overrides(&set)?;
     let list = pathfold::comparison::read_list(&prices)
         .map_err(|d| refused(d.render(pathfold::files::read_regular_file(&prices).ok().as_deref())))?;

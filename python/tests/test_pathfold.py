@@ -140,3 +140,12 @@ def test_the_newer_features_price_as_on_the_command_line(cli, payoff, extra):
     mine = pathfold.price(payoff, paths=20_000, seed=5, antithetic=antithetic)
     theirs = run_cli(cli, "price", payoff, "--paths", "20000", "--seed", "5", "--format", "json", *extra)
     assert without_time(mine) == without_time(theirs)
+
+
+def test_the_sobol_sampler_prices_as_on_the_command_line(cli):
+    mine = pathfold.price(AUTOCALL, paths=16_384, seed=2, sampler="sobol")
+    theirs = run_cli(cli, "price", AUTOCALL, "--paths", "16384", "--seed", "2", "--sampler", "sobol",
+                     "--format", "json")
+    assert without_time(mine) == without_time(theirs)
+    with pytest.raises(pathfold.PathfoldError, match="sobol"):
+        pathfold.price(AUTOCALL, paths=16_384, sampler="quasi")
