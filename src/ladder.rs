@@ -117,6 +117,7 @@ pub struct Ladder {
     pub seed: u64,
     /// Whether every scenario's samples use its control variates.
     pub control_variates: bool,
+    pub sampler: crate::sim::Sampler,
 }
 
 fn shifted(market: &Market, names: &[String], axes: &[Axis], shifts: &[f64]) -> Result<Market, String> {
@@ -197,6 +198,7 @@ pub fn ladder_file(
         paths: joint.paths,
         seed: settings.seed,
         control_variates: settings.control_variates,
+        sampler: settings.sampler,
     })
 }
 

@@ -107,6 +107,7 @@ pub struct Risk {
     pub seed: u64,
     /// Whether every scenario's samples use its control variates ([`crate::sim::joint`]).
     pub control_variates: bool,
+    pub sampler: crate::sim::Sampler,
     pub sensitivities: Vec<Sensitivity>,
     /// Sensitivities that could not be computed, and why.
     pub notes: Vec<String>,
@@ -306,6 +307,7 @@ pub fn risk_of(loaded: &Loaded, settings: &Settings, bumps: &Bumps) -> Result<Ri
         paths: joint.paths,
         seed: settings.seed,
         control_variates: settings.control_variates,
+        sampler: settings.sampler,
         sensitivities: out,
         notes,
     })

@@ -9,7 +9,7 @@ use std::path::Path;
 use common::*;
 use pathfold::closed_form::{black_scholes, black_scholes_greeks, OptionKind};
 use pathfold::risk::{risk_file, Bumps, Risk, Subject};
-use pathfold::sim::Settings;
+use pathfold::sim::{Sampler, Settings};
 
 const S: f64 = 49.0;
 const K: f64 = 50.0;
@@ -26,7 +26,11 @@ fn risk(file: &str, paths: u64, seed: u64) -> Risk {
 }
 
 fn risk_with(file: &str, paths: u64, seed: u64, control_variates: bool) -> Risk {
-    let settings = Settings { paths, seed, antithetic: true, control_variates, ..Settings::default() };
+    risk_sampled(file, paths, seed, control_variates, Sampler::Random)
+}
+
+fn risk_sampled(file: &str, paths: u64, seed: u64, control_variates: bool, sampler: Sampler) -> Risk {
+    let settings = Settings { paths, seed, antithetic: true, control_variates, sampler };
     risk_file(Path::new(file), None, &[], &settings, &Bumps::default()).expect("risk runs")
 }
 
@@ -48,7 +52,17 @@ fn check(what: &str, mc: (f64, f64), analytic: f64, closed_form_difference: f64)
 
 #[test]
 fn greeks_of_hulls_call_agree_with_black_scholes() {
-    greeks_of_hulls_call(false);
+    greeks_of_hulls_call(false, Sampler::Random);
+}
+
+#[test]
+fn greeks_of_hulls_call_on_sobol_points_agree_with_black_scholes() {
+    // The same references with every scenario on the same 16 randomisations of Sobol
+    // points (plain, so the points do the work): each Greek's error is the spread of its
+    // 16 estimates.
+    let r = greeks_of_hulls_call(false, Sampler::Sobol);
+    assert_eq!(r.sampler, Sampler::Sobol);
+    assert_eq!(r.paths, 200_704, "16 randomisations of whole blocks");
 }
 
 #[test]
@@ -56,16 +70,16 @@ fn greeks_of_hulls_call_with_control_variates_agree_with_black_scholes() {
     // Each scenario's samples less its own controls (the forward and the call of the
     // bumped market), with coefficients from a pilot on streams of its own: the same
     // references, and a price error far below the plain one's on the same paths.
-    let r = greeks_of_hulls_call(true);
+    let r = greeks_of_hulls_call(true, Sampler::Random);
     let plain = risk("tests/risk/hull_call.payoff", 200_000, 3);
     assert!(r.control_variates && !plain.control_variates);
     assert!(r.price_std_error < 0.1 * plain.price_std_error, "{} vs {}", r.price_std_error, plain.price_std_error);
 }
 
-fn greeks_of_hulls_call(control_variates: bool) -> Risk {
+fn greeks_of_hulls_call(control_variates: bool, sampler: Sampler) -> Risk {
     // Reference: black_scholes_greeks (Hull's example S=49, K=50, r=5%, σ=20%, T=20 weeks:
     // delta 0.522, gamma 0.066, vega 12.1, theta −4.31/yr, rho 8.91; from memory).
-    let r = risk_with("tests/risk/hull_call.payoff", 200_000, 3, control_variates);
+    let r = risk_sampled("tests/risk/hull_call.payoff", 200_000, 3, control_variates, sampler);
     let g = black_scholes_greeks(OptionKind::Call, S, K, T, R, R, SIGMA);
     let b = Bumps::default();
     assert_within("price", r.price, r.price_std_error, bs(S, T, R, 0.0, SIGMA), 4.0);
@@ -195,13 +209,16 @@ fn correlation_sensitivity_of_the_demo_is_reported_per_pair() {
 
 #[test]
 fn same_seed_same_bits_on_one_thread_or_two() {
-    let args = |t: &'static str| {
-        ["risk", "payoffs/worst_of_autocall.payoff", "--paths", "3000", "--format", "json", "--threads", t]
-    };
-    let (one, err, code) = run(&args("1"));
-    assert_eq!(code, Some(0), "{err}");
-    let (two, _, _) = run(&args("2"));
-    assert_eq!(one, two);
+    for sampler in ["random", "sobol"] {
+        let args = |t: &'static str| {
+            let file = "payoffs/worst_of_autocall.payoff";
+            ["risk", file, "--paths", "3000", "--format", "json", "--sampler", sampler, "--threads", t]
+        };
+        let (one, err, code) = run(&args("1"));
+        assert_eq!(code, Some(0), "{err}");
+        let (two, _, _) = run(&args("2"));
+        assert_eq!(one, two, "{sampler}");
+    }
 }
 
 #[test]

@@ -5,11 +5,10 @@ use std::process::ExitCode;
 
 use clap::Args;
 
+use super::emit;
 use super::risk::ScenarioArgs;
-use super::{emit, SamplerArg};
 use crate::output::solve::write_solved;
 use crate::pricing::Target;
-use crate::sim::Settings;
 use crate::solve::{parse_between, solve_file};
 
 #[derive(Debug, Args)]
@@ -26,10 +25,6 @@ pub struct SolveArgs {
     /// to four times the parameter's value.
     #[arg(long, value_name = "LO..HI")]
     pub between: Option<String>,
-    /// Where the paths' random numbers come from: `random` (pseudo-random) or `sobol`
-    /// (Sobol points, randomised 16 times, through a Brownian bridge).
-    #[arg(long, value_enum, default_value_t = SamplerArg::Random)]
-    pub sampler: SamplerArg,
 }
 
 pub fn run(args: &SolveArgs) -> ExitCode {
@@ -49,14 +44,7 @@ pub fn run(args: &SolveArgs) -> ExitCode {
         }
     };
     let (overrides, settings) = match a.prepare() {
-        Ok((overrides, plain)) => {
-            let settings = Settings { sampler: args.sampler.sampler(), ..plain };
-            if let Err(e) = settings.validate() {
-                eprintln!("{e}");
-                return ExitCode::from(2);
-            }
-            (overrides, settings)
-        }
+        Ok(x) => x,
         Err(code) => return code,
     };
     let result = match a.on_threads(|| {

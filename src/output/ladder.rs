@@ -97,6 +97,7 @@ pub fn to_json(l: &Ladder) -> serde_json::Value {
         "paths": l.paths,
         "seed": l.seed,
         "control_variates": l.control_variates,
+        "sampler": l.sampler.name(),
         "rows": l.points.iter().map(|p| json!({
             "shifts": p.shifts,
             "price": p.price,

@@ -60,6 +60,7 @@ pub fn to_json(r: &Risk) -> serde_json::Value {
         "paths": r.paths,
         "seed": r.seed,
         "control_variates": r.control_variates,
+        "sampler": r.sampler.name(),
         "method": if r.control_variates {
             "central finite differences on common random numbers; standard errors from the paired differences path by path; each scenario with its control variates, coefficients fitted on a pilot of its own"
         } else {
@@ -109,11 +110,12 @@ fn write_table(out: &mut dyn Write, r: &Risk) -> io::Result<()> {
     let d = decimals(r.price_std_error);
     writeln!(
         out,
-        "price {} {} ± {} ({}, {} paths, seed {})",
+        "price {} {} ± {} ({}{}, {} paths, seed {})",
         r.currency,
         group(r.price, d),
         group(r.price_std_error, d),
         if r.control_variates { "control variates" } else { "plain Monte Carlo" },
+        if r.sampler == crate::sim::Sampler::Sobol { ", Sobol points" } else { "" },
         r.paths,
         r.seed
     )?;

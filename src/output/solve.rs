@@ -121,10 +121,7 @@ pub fn to_json(s: &Solved) -> serde_json::Value {
         "control_variates": s.control_variates,
         "controls": s.controls,
         "warnings": s.warnings,
-        "sampler": match s.sampler {
-            Sampler::Random => "random",
-            Sampler::Sobol => "sobol",
-        },
+        "sampler": s.sampler.name(),
         "method": "every trial on the same paths (and the same control variates, if any); affine check then one step, else Brent's method",
         "caution": CAUTION,
     })

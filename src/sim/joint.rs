@@ -19,11 +19,12 @@
 
 use rayon::prelude::*;
 
-use super::exec::Workspace;
+use super::exec::{self, Workspace};
 use super::paths::{Controls, Model};
 use super::regress::{self, Known};
+use super::sobol::{Qmc, RANDOMISATIONS};
 use super::stats::{BlockResult, Moments};
-use super::{controls_deciding, Settings, BLOCK};
+use super::{controls_deciding, Sampler, Settings, BLOCK};
 use crate::compile::Program;
 use crate::diagnostic::Diagnostic;
 
@@ -105,23 +106,34 @@ pub struct Joint {
     pub moments: Moments,
     /// Paths simulated (antithetic partners counted).
     pub paths: u64,
+    /// A Sobol run's mean of each program over each randomisation (its error is their
+    /// spread); `None` for pseudo-random paths.
+    pub randomisations: Option<Vec<Vec<f64>>>,
 }
 
 impl Joint {
     /// The price of program `k`.
     pub fn price(&self, k: usize) -> f64 {
-        self.moments.mean(k)
+        self.combination(&[(k, 1.0)]).0
     }
 
     /// The standard error of program `k`'s price.
     pub fn std_error(&self, k: usize) -> f64 {
-        (self.moments.variance(k) / self.moments.count()).sqrt()
+        self.combination(&[(k, 1.0)]).1
     }
 
-    /// The estimate of `Σ w_k · price_k` and its standard error from the paths (the
-    /// weighted sum path by path).
+    /// The estimate of `Σ w_k · price_k` and its standard error: from the paths (the
+    /// weighted sum path by path), or for a Sobol run from the spread of the weighted sum
+    /// over the randomisations.
     pub fn combination(&self, weights: &[(usize, f64)]) -> (f64, f64) {
-        let value = weights.iter().map(|&(k, w)| w * self.price(k)).sum();
+        if let Some(means) = &self.randomisations {
+            let sums: Vec<f64> = means.iter().map(|m| weights.iter().map(|&(k, w)| w * m[k]).sum()).collect();
+            let n = sums.len() as f64;
+            let value = sums.iter().sum::<f64>() / n;
+            let spread = sums.iter().map(|x| (x - value) * (x - value)).sum::<f64>() / (n - 1.0);
+            return (value, (spread / n).sqrt());
+        }
+        let value = weights.iter().map(|&(k, w)| w * self.moments.mean(k)).sum();
         let mut var = 0.0;
         for &(i, wi) in weights {
             for &(j, wj) in weights {
@@ -153,7 +165,40 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
     let paths = if settings.antithetic { settings.paths.div_ceil(2) * 2 } else { settings.paths };
     let models: Vec<Model> = programs.iter().map(Model::new).collect();
     let fitted = fit(programs, &models, settings);
+    if settings.sampler == Sampler::Sobol {
+        // Each randomisation of the points on every program, `per` paths each; every
+        // program has the points laid over its own grid by its own bridge.
+        let qmcs: Vec<Qmc> = programs.iter().map(|p| Qmc::new(&p.grid, p.assets.len(), settings.seed)).collect();
+        let count = RANDOMISATIONS as u64;
+        let per = settings.paths.div_ceil(count).div_ceil(BLOCK as u64) * BLOCK as u64;
+        let mut total = Moments::new(k);
+        let mut means = Vec::with_capacity(RANDOMISATIONS);
+        for r in 0..RANDOMISATIONS {
+            let m = run_blocks(programs, &models, &fitted, settings, per, Some((&qmcs, r)))?;
+            means.push((0..k).map(|j| m.mean(j)).collect());
+            total.merge(&m);
+        }
+        return Ok(Joint { moments: total, paths: per * count, randomisations: Some(means) });
+    }
+    let total = run_blocks(programs, &models, &fitted, settings, paths, None)?;
+    Ok(Joint { moments: total, paths, randomisations: None })
+}
+
+/// `paths` paths of every program on common paths, block `b` from its own stream (for a
+/// Sobol run, randomisation `r` of each program's points: the streams and points of
+/// [`super::simulate`]'s run), their samples' moments merged in block order.
+fn run_blocks(
+    programs: &[Program],
+    models: &[Model],
+    fitted: &[Fitted],
+    settings: &Settings,
+    paths: u64,
+    sobol: Option<(&[Qmc], usize)>,
+) -> Result<Moments, Diagnostic> {
     let blocks = paths.div_ceil(BLOCK as u64);
+    let drawn = if settings.antithetic { BLOCK / 2 } else { BLOCK } as u64;
+    let stream = |b: u64| sobol.map_or(b, |(_, r)| ((r as u64 + 1) << 40) | b);
+    let k = programs.len();
     let mut total = Moments::new(k);
     let mut next = 0;
     while next < blocks {
@@ -164,8 +209,8 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
                 || {
                     let spaces: Vec<Workspace> = programs
                         .iter()
-                        .zip(&models)
-                        .zip(&fitted)
+                        .zip(models)
+                        .zip(fitted)
                         .map(|((p, m), f)| {
                             let mut ws = Workspace::new(p, m, &f.controls);
                             ws.simulate_whole_paths();
@@ -178,9 +223,10 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
                     let lanes = (paths - b * BLOCK as u64).min(BLOCK as u64) as usize;
                     let units = if settings.antithetic { lanes / 2 } else { lanes };
                     for (j, (((p, m), ws), f)) in
-                        programs.iter().zip(&models).zip(spaces.iter_mut()).zip(&fitted).enumerate()
+                        programs.iter().zip(models).zip(spaces.iter_mut()).zip(fitted).enumerate()
                     {
-                        ws.run_block_into(p, m, &f.controls, settings, b, lanes, None, r);
+                        let own = sobol.map(|(qmcs, r)| exec::Points { qmc: &qmcs[j], r, first: (b * drawn) as u32 });
+                        ws.run_block_into(p, m, &f.controls, settings, stream(b), lanes, own, r);
                         if !r.is_finite() {
                             return Err(j);
                         }
@@ -207,7 +253,7 @@ pub fn simulate_joint(programs: &[Program], settings: &Settings) -> Result<Joint
     if (0..k).any(|j| !(total.mean(j).is_finite() && total.variance(j).is_finite())) {
         return Err(Diagnostic::new("the scenario prices overflow: pay in a larger unit"));
     }
-    Ok(Joint { moments: total, paths })
+    Ok(total)
 }
 
 #[cfg(test)]
@@ -218,7 +264,7 @@ mod tests {
     fn combination_of_one_program_with_itself_has_no_error() {
         let mut m = Moments::of_columns(&[&[1.0, 2.0, 4.0], &[1.0, 2.0, 4.0]]);
         m.merge(&Moments::new(2));
-        let j = Joint { moments: m, paths: 3 };
+        let j = Joint { moments: m, paths: 3, randomisations: None };
         let (v, se) = j.combination(&[(0, 1.0), (1, -1.0)]);
         assert_eq!(v, 0.0);
         assert!(se.abs() < 1e-12);

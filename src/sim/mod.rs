@@ -95,6 +95,16 @@ pub enum Sampler {
     Sobol,
 }
 
+impl Sampler {
+    /// The name `--sampler` takes.
+    pub fn name(self) -> &'static str {
+        match self {
+            Sampler::Random => "random",
+            Sampler::Sobol => "sobol",
+        }
+    }
+}
+
 /// The default number of paths of `pathfold price`.
 pub const DEFAULT_PATHS: u64 = 200_000;
 /// The fewest paths a run may use: one block, 128 antithetic pairs, enough for a standard
