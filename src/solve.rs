@@ -211,19 +211,9 @@ pub fn solve_file(
     })
 }
 
-/// The price (and SE) of the payoff with `parameter` set to `x`, on the settings' paths.
-pub fn price_with(
-    loaded: &Loaded,
-    overrides: &[Override],
-    parameter: &str,
-    x: f64,
-    settings: &Settings,
-) -> Result<(f64, f64), Failure> {
-    price_sharing(loaded, overrides, parameter, x, settings, None).map(|(e, _)| (e.price, e.std_error))
-}
-
-/// [`price_with`], the surprises kept or dropped as `surprises` says when it is given
-/// ([`simulate_sharing`]); with the decision taken.
+/// The estimate of the payoff with `parameter` set to `x`, on the settings' paths, the
+/// surprises kept or dropped as `surprises` says when it is given ([`simulate_sharing`]);
+/// with the decision taken.
 fn price_sharing(
     loaded: &Loaded,
     overrides: &[Override],

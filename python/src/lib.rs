@@ -43,10 +43,8 @@ fn settings(paths: u64, seed: u64, antithetic: bool, control_variates: bool) -> 
 
 /// [`settings`] with the sampler named as on the command line (`random` or `sobol`).
 fn sampled(paths: u64, seed: u64, antithetic: bool, control_variates: bool, sampler: &str) -> PyResult<Settings> {
-    let sampler = match sampler {
-        "random" => sim::Sampler::Random,
-        "sobol" => sim::Sampler::Sobol,
-        other => return Err(refused(format!("sampler {other:?}: name \"random\" or \"sobol\""))),
+    let Some(sampler) = sim::Sampler::from_name(sampler) else {
+        return Err(refused(format!("sampler {sampler:?}: name \"random\" or \"sobol\"")));
     };
     let s = Settings { sampler, ..settings(paths, seed, antithetic, control_variates)? };
     s.validate().map_err(refused)?;

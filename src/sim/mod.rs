@@ -103,6 +103,11 @@ impl Sampler {
             Sampler::Sobol => "sobol",
         }
     }
+
+    /// The sampler of a [`Sampler::name`].
+    pub fn from_name(name: &str) -> Option<Sampler> {
+        [Sampler::Random, Sampler::Sobol].into_iter().find(|s| s.name() == name)
+    }
 }
 
 /// The default number of paths of `pathfold price`.
